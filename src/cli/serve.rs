@@ -1,0 +1,37 @@
+//! `lineside serve`: bind the listener, then hand over to [`crate::server::run`].
+
+use anyhow::Context as _;
+
+use super::{ConfigArg, Outcome};
+use crate::config::{Config, Overrides};
+
+/// Arguments of `lineside serve`.
+#[derive(Debug, clap::Args)]
+pub struct ServeArgs {
+    /// Config file.
+    #[command(flatten)]
+    pub config: ConfigArg,
+    /// Address to listen on (overrides `[server] listen`), e.g. 0.0.0.0:8080.
+    #[arg(long, value_name = "ADDR")]
+    pub listen: Option<String>,
+}
+
+/// Run the server until Ctrl-C or SIGTERM.
+///
+/// # Errors
+/// Config errors, a port that cannot be bound, a model that fails to load.
+pub fn run(args: ServeArgs) -> anyhow::Result<Outcome> {
+    let config = Config::load(args.config.config.as_deref(), &Overrides { listen: args.listen })?;
+    let runtime = tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .thread_name("lineside-http")
+        .build()
+        .context("cannot start the async runtime")?;
+    runtime.block_on(async move {
+        let addr = config.server.listen;
+        let listener = tokio::net::TcpListener::bind(addr).await.with_context(|| format!("cannot listen on {addr}"))?;
+        tracing::info!(config = %config.origin, "starting");
+        crate::server::run(config, listener, crate::shutdown::signal(), Default::default()).await
+    })?;
+    Ok(Outcome::Ok)
+}

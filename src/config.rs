@@ -1,0 +1,658 @@
+//! Configuration: built-in defaults, then the TOML file, then command-line flags, validated
+//! once into the types the rest of lineside uses.
+//!
+//! `RawConfig` mirrors the TOML file (every key optional where a default exists, unknown keys
+//! refused with their line). [`Config::from_toml`] resolves paths against the config file's
+//! folder and checks every value, so that no module past this one sees TOML, clap or an
+//! unchecked number. The built-in washer default is the repository's own
+//! `config/lineside.toml`, compiled in, with its model files embedded in the binary.
+
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use serde::Deserialize;
+
+/// The documented example config, which is also the built-in default.
+const BUILTIN_TOML: &str = include_str!("../config/lineside.toml");
+
+/// Files the built-in config refers to, embedded so that `lineside serve` works anywhere.
+/// Keys are the paths exactly as `config/lineside.toml` writes them.
+const EMBEDDED: &[(&str, &[u8])] = &[
+    (
+        "../models/washers/classifier.onnx",
+        include_bytes!("../models/washers/classifier.onnx"),
+    ),
+    (
+        "../models/washers/classes.txt",
+        include_bytes!("../models/washers/classes.txt"),
+    ),
+];
+
+/// Where a config value came from, for error messages.
+pub const BUILTIN_NAME: &str = "<built-in washer config>";
+
+/// A validated configuration.
+#[derive(Debug, Clone)]
+pub struct Config {
+    /// Where the config was read from (a path, or [`BUILTIN_NAME`]).
+    pub origin: String,
+    /// Server-wide settings.
+    pub server: ServerConfig,
+    /// The models to serve, in config order; names are unique.
+    pub models: Vec<ModelConfig>,
+}
+
+/// Server-wide settings (`[server]`).
+#[derive(Debug, Clone)]
+pub struct ServerConfig {
+    /// Address to listen on.
+    pub listen: SocketAddr,
+    /// Largest request body accepted, in bytes; larger gets 413 `too_large`.
+    pub body_limit_bytes: usize,
+    /// Largest decoded image accepted, in pixels (width x height), checked from the header.
+    pub max_pixels: u64,
+    /// Threads that decode and preprocess images (a bounded pool beside the lanes).
+    pub decode_threads: usize,
+    /// Images waiting for a decode thread before new ones get 503 `overloaded`.
+    pub decode_backlog: usize,
+    /// Longest a client may take to send its request headers.
+    pub header_timeout: Duration,
+    /// Longest shutdown waits for requests in flight.
+    pub drain: Duration,
+}
+
+/// A file the config names, on disk or embedded in the binary.
+#[derive(Debug, Clone)]
+pub enum Source {
+    /// A file on disk (already resolved against the config's folder).
+    File(PathBuf),
+    /// A file compiled into the binary (the built-in demo).
+    Embedded {
+        /// The path as the built-in config writes it.
+        name: &'static str,
+        /// The file's bytes.
+        bytes: &'static [u8],
+    },
+}
+
+impl Source {
+    /// Read the whole file.
+    ///
+    /// # Errors
+    /// The I/O error, with the path.
+    pub fn read(&self) -> anyhow::Result<Vec<u8>> {
+        use anyhow::Context as _;
+        match self {
+            Source::File(p) => std::fs::read(p).with_context(|| format!("cannot read {}", p.display())),
+            Source::Embedded { bytes, .. } => Ok(bytes.to_vec()),
+        }
+    }
+
+    /// A name for messages.
+    pub fn display(&self) -> String {
+        match self {
+            Source::File(p) => p.display().to_string(),
+            Source::Embedded { name, .. } => format!("{name} (embedded)"),
+        }
+    }
+}
+
+/// One model (`[[models]]`).
+#[derive(Debug, Clone)]
+pub struct ModelConfig {
+    /// Name used in URLs (`/classify/{name}`) and metric labels.
+    pub name: String,
+    /// The ONNX file.
+    pub onnx: Source,
+    /// The labels file, one label a line, in the model's output order.
+    pub labels: Source,
+    /// How images become the model's input tensor.
+    pub preprocess: PreprocessConfig,
+    /// How requests are gathered into inference passes.
+    pub batching: BatchingConfig,
+}
+
+/// How to resize a frame to the model's input size.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum ResizeMode {
+    /// To width x height, ignoring aspect.
+    Stretch,
+}
+
+/// Resampling filter, with Pillow's (antialiased) semantics.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Filter {
+    /// Nearest neighbour.
+    Nearest,
+    /// Triangle filter, widened when downscaling.
+    Bilinear,
+    /// Cubic (a = -0.5), widened when downscaling.
+    Bicubic,
+    /// Lanczos, 3 lobes.
+    Lanczos,
+    /// Box filter (Pillow's BOX): the area average.
+    Area,
+}
+
+/// Channel order of the model's input.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Channels {
+    /// Red, green, blue.
+    Rgb,
+    /// Blue, green, red (models trained on OpenCV-loaded frames).
+    Bgr,
+    /// One luma channel (ITU-R BT.601 weights).
+    Gray,
+}
+
+impl Channels {
+    /// Number of channels in the tensor.
+    pub fn count(self) -> usize {
+        match self {
+            Channels::Rgb | Channels::Bgr => 3,
+            Channels::Gray => 1,
+        }
+    }
+}
+
+/// Memory layout of the input tensor.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, serde::Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Layout {
+    /// Batch, channels, height, width.
+    Nchw,
+    /// Batch, height, width, channels.
+    Nhwc,
+}
+
+impl std::fmt::Display for Layout {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(match self {
+            Layout::Nchw => "nchw",
+            Layout::Nhwc => "nhwc",
+        })
+    }
+}
+
+/// Validated `[models.preprocess]`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PreprocessConfig {
+    /// Model input width in pixels.
+    pub width: u32,
+    /// Model input height in pixels.
+    pub height: u32,
+    /// Resize mode.
+    pub resize: ResizeMode,
+    /// Resampling filter.
+    pub filter: Filter,
+    /// Channel order.
+    pub channels: Channels,
+    /// Layout, when the config states one (otherwise detected from the model).
+    pub layout: Option<Layout>,
+    /// x = (pixel / divisor - mean\[c\]) / std\[c\].
+    pub divisor: f32,
+    /// Per-channel mean, in the model's channel order.
+    pub mean: Vec<f32>,
+    /// Per-channel standard deviation, in the model's channel order.
+    pub std: Vec<f32>,
+}
+
+/// How many inference lanes a model gets.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Lanes {
+    /// One lane per available core (see `batch` for the rule).
+    Auto,
+    /// Exactly this many.
+    Fixed(usize),
+}
+
+/// Validated `[models.batching]`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct BatchingConfig {
+    /// Most requests one inference pass takes.
+    pub batch_cap: usize,
+    /// Longest the first request of a pass may wait for company (engines that stack only).
+    pub gather: Duration,
+    /// Requests waiting per model before new ones get 503 `overloaded`.
+    pub backlog: usize,
+    /// Parallel inference lanes.
+    pub lanes: Lanes,
+    /// Threads inside one lane's inference.
+    pub lane_threads: usize,
+}
+
+// ----------------------------------------------------------------------------- raw TOML
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawConfig {
+    #[serde(default)]
+    server: RawServer,
+    #[serde(default)]
+    models: Vec<RawModel>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawServer {
+    listen: Option<String>,
+    body_limit_bytes: Option<u64>,
+    max_pixels: Option<u64>,
+    decode_threads: Option<usize>,
+    decode_backlog: Option<usize>,
+    header_timeout_ms: Option<u64>,
+    drain_ms: Option<u64>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawModel {
+    name: String,
+    onnx: PathBuf,
+    labels: PathBuf,
+    preprocess: RawPreprocess,
+    #[serde(default)]
+    batching: RawBatching,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawPreprocess {
+    width: u32,
+    height: u32,
+    #[serde(default = "default_resize")]
+    resize: ResizeMode,
+    #[serde(default = "default_filter")]
+    filter: Filter,
+    #[serde(default = "default_channels")]
+    channels: Channels,
+    layout: Option<Layout>,
+    #[serde(default = "default_divisor")]
+    divisor: f32,
+    mean: Option<Vec<f32>>,
+    std: Option<Vec<f32>>,
+}
+
+fn default_resize() -> ResizeMode {
+    ResizeMode::Stretch
+}
+fn default_filter() -> Filter {
+    Filter::Bilinear
+}
+fn default_channels() -> Channels {
+    Channels::Rgb
+}
+fn default_divisor() -> f32 {
+    255.0
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawBatching {
+    batch_cap: Option<usize>,
+    gather_us: Option<u64>,
+    backlog: Option<usize>,
+    lanes: Option<RawLanes>,
+    lane_threads: Option<usize>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(untagged)]
+enum RawLanes {
+    Count(i64),
+    Word(String),
+}
+
+/// Defaults, in one place (README's config table lists the same).
+pub mod defaults {
+    /// `[server] listen`.
+    pub const LISTEN: &str = "127.0.0.1:8080";
+    /// `[server] body_limit_bytes`: 16 MiB.
+    pub const BODY_LIMIT_BYTES: u64 = 16 * 1024 * 1024;
+    /// `[server] max_pixels`: 40 megapixels.
+    pub const MAX_PIXELS: u64 = 40_000_000;
+    /// `[server] header_timeout_ms`.
+    pub const HEADER_TIMEOUT_MS: u64 = 5_000;
+    /// `[server] drain_ms`.
+    pub const DRAIN_MS: u64 = 10_000;
+    /// `[server] decode_backlog`.
+    pub const DECODE_BACKLOG: usize = 256;
+    /// `[models.batching] batch_cap`.
+    pub const BATCH_CAP: usize = 8;
+    /// `[models.batching] gather_us`.
+    pub const GATHER_US: u64 = 2_000;
+    /// `[models.batching] backlog`.
+    pub const BACKLOG: usize = 64;
+    /// `[models.batching] lane_threads`.
+    pub const LANE_THREADS: usize = 1;
+}
+
+/// Flags from the command line that override the file.
+#[derive(Debug, Default, Clone)]
+pub struct Overrides {
+    /// `--listen ADDR`.
+    pub listen: Option<String>,
+}
+
+impl Config {
+    /// Load the config the CLI asks for: `path`, else `./config/lineside.toml` if present,
+    /// else the built-in washer default.
+    ///
+    /// # Errors
+    /// An unreadable file, a TOML syntax error or unknown key (with its line), or a value
+    /// that fails validation (naming the key).
+    pub fn load(path: Option<&Path>, overrides: &Overrides) -> anyhow::Result<Config> {
+        let local = Path::new("config/lineside.toml");
+        match path {
+            Some(p) => Self::from_file(p, overrides),
+            None if local.is_file() => Self::from_file(local, overrides),
+            None => Self::builtin(overrides),
+        }
+    }
+
+    /// Read and validate a config file; paths inside are relative to its folder.
+    ///
+    /// # Errors
+    /// As [`Config::load`].
+    pub fn from_file(path: &Path, overrides: &Overrides) -> anyhow::Result<Config> {
+        use anyhow::Context as _;
+        let text = std::fs::read_to_string(path).with_context(|| format!("cannot read config {}", path.display()))?;
+        let base = path.parent().unwrap_or(Path::new("."));
+        let origin = path.display().to_string();
+        Self::from_toml(&text, &origin, &|p| Source::File(base.join(p)), overrides)
+    }
+
+    /// The built-in washer config, with its files embedded.
+    ///
+    /// # Errors
+    /// Only if the listen override is not an address.
+    pub fn builtin(overrides: &Overrides) -> anyhow::Result<Config> {
+        let embedded = |p: &Path| {
+            let key = p.to_string_lossy();
+            match EMBEDDED.iter().find(|(name, _)| *name == key) {
+                Some((name, bytes)) => Source::Embedded { name, bytes },
+                // Unreachable for the shipped config (a unit test checks every path).
+                None => Source::File(p.to_path_buf()),
+            }
+        };
+        Self::from_toml(BUILTIN_TOML, BUILTIN_NAME, &embedded, overrides)
+    }
+
+    /// Parse and validate TOML text. `resolve` turns a path written in the file into a source.
+    ///
+    /// # Errors
+    /// As [`Config::load`].
+    pub fn from_toml(
+        text: &str,
+        origin: &str,
+        resolve: &dyn Fn(&Path) -> Source,
+        overrides: &Overrides,
+    ) -> anyhow::Result<Config> {
+        let raw: RawConfig = toml::from_str(text).map_err(|e| anyhow::anyhow!("{origin}: {e}"))?;
+        validate(raw, origin, resolve, overrides).map_err(|e| anyhow::anyhow!("{origin}: {e}"))
+    }
+
+    /// The model called `name`.
+    pub fn model(&self, name: &str) -> Option<&ModelConfig> {
+        self.models.iter().find(|m| m.name == name)
+    }
+}
+
+fn validate(raw: RawConfig, origin: &str, resolve: &dyn Fn(&Path) -> Source, overrides: &Overrides) -> Result<Config, String> {
+    let s = raw.server;
+    let listen_text = overrides.listen.clone().or(s.listen).unwrap_or_else(|| defaults::LISTEN.into());
+    let listen: SocketAddr = listen_text
+        .parse()
+        .map_err(|_| format!("server.listen = {listen_text:?} is not an address like \"127.0.0.1:8080\""))?;
+    let body_limit = s.body_limit_bytes.unwrap_or(defaults::BODY_LIMIT_BYTES);
+    if body_limit == 0 || body_limit > 1 << 30 {
+        return Err(format!("server.body_limit_bytes = {body_limit}: expected 1 ..= 1073741824"));
+    }
+    let max_pixels = s.max_pixels.unwrap_or(defaults::MAX_PIXELS);
+    if max_pixels == 0 {
+        return Err("server.max_pixels = 0: expected at least 1".into());
+    }
+    let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
+    let decode_threads = s.decode_threads.unwrap_or(cores);
+    if decode_threads == 0 || decode_threads > 256 {
+        return Err(format!("server.decode_threads = {decode_threads}: expected 1 ..= 256"));
+    }
+    let decode_backlog = s.decode_backlog.unwrap_or(defaults::DECODE_BACKLOG);
+    if decode_backlog == 0 {
+        return Err("server.decode_backlog = 0: expected at least 1".into());
+    }
+    let server = ServerConfig {
+        listen,
+        body_limit_bytes: body_limit as usize,
+        max_pixels,
+        decode_threads,
+        decode_backlog,
+        header_timeout: Duration::from_millis(positive("server.header_timeout_ms", s.header_timeout_ms, defaults::HEADER_TIMEOUT_MS)?),
+        drain: Duration::from_millis(s.drain_ms.unwrap_or(defaults::DRAIN_MS)),
+    };
+
+    if raw.models.is_empty() {
+        return Err("no [[models]] table: add at least one model (see config/lineside.toml)".into());
+    }
+    let mut models: Vec<ModelConfig> = Vec::new();
+    for (i, m) in raw.models.into_iter().enumerate() {
+        let ctx = format!("[[models]] #{} ({:?})", i + 1, m.name);
+        if m.name.is_empty() || !m.name.chars().all(|c| c.is_ascii_alphanumeric() || c == '_' || c == '-' || c == '.') {
+            return Err(format!("{ctx}: name must be non-empty and use only letters, digits, '_', '-', '.'"));
+        }
+        if models.iter().any(|o| o.name == m.name) {
+            return Err(format!("{ctx}: the name {:?} is used twice", m.name));
+        }
+        let preprocess = validate_preprocess(m.preprocess).map_err(|e| format!("{ctx}: {e}"))?;
+        let batching = validate_batching(m.batching).map_err(|e| format!("{ctx}: {e}"))?;
+        models.push(ModelConfig {
+            name: m.name,
+            onnx: resolve(&m.onnx),
+            labels: resolve(&m.labels),
+            preprocess,
+            batching,
+        });
+    }
+    Ok(Config { origin: origin.to_string(), server, models })
+}
+
+fn positive(key: &str, v: Option<u64>, default: u64) -> Result<u64, String> {
+    match v.unwrap_or(default) {
+        0 => Err(format!("{key} = 0: expected at least 1")),
+        n => Ok(n),
+    }
+}
+
+fn validate_preprocess(p: RawPreprocess) -> Result<PreprocessConfig, String> {
+    for (key, v) in [("width", p.width), ("height", p.height)] {
+        if !(1..=8192).contains(&v) {
+            return Err(format!("preprocess.{key} = {v}: expected 1 ..= 8192"));
+        }
+    }
+    if !(p.divisor.is_finite() && p.divisor > 0.0) {
+        return Err(format!("preprocess.divisor = {}: expected a positive number (255.0 for [0, 1] inputs)", p.divisor));
+    }
+    let n = p.channels.count();
+    let name = format!("{:?}", p.channels).to_lowercase();
+    let per_channel = |key: &str, v: Option<Vec<f32>>, default: f32| -> Result<Vec<f32>, String> {
+        let v = v.unwrap_or_else(|| vec![default; n]);
+        if v.len() != n {
+            return Err(format!(
+                "preprocess.{key} has {} values, expected {n} for channels = {name:?} (in the model's channel order)",
+                v.len()
+            ));
+        }
+        if let Some(bad) = v.iter().find(|x| !x.is_finite()) {
+            return Err(format!("preprocess.{key} contains {bad}: expected finite numbers"));
+        }
+        Ok(v)
+    };
+    let mean = per_channel("mean", p.mean, 0.0)?;
+    let std = per_channel("std", p.std, 1.0)?;
+    if let Some(bad) = std.iter().find(|x| **x <= 0.0) {
+        return Err(format!("preprocess.std contains {bad}: every std must be > 0"));
+    }
+    Ok(PreprocessConfig {
+        width: p.width,
+        height: p.height,
+        resize: p.resize,
+        filter: p.filter,
+        channels: p.channels,
+        layout: p.layout,
+        divisor: p.divisor,
+        mean,
+        std,
+    })
+}
+
+fn validate_batching(b: RawBatching) -> Result<BatchingConfig, String> {
+    let batch_cap = b.batch_cap.unwrap_or(defaults::BATCH_CAP);
+    if !(1..=256).contains(&batch_cap) {
+        return Err(format!("batching.batch_cap = {batch_cap}: expected 1 ..= 256"));
+    }
+    let gather_us = b.gather_us.unwrap_or(defaults::GATHER_US);
+    if gather_us > 1_000_000 {
+        return Err(format!("batching.gather_us = {gather_us}: expected at most 1000000 (one second)"));
+    }
+    let backlog = b.backlog.unwrap_or(defaults::BACKLOG);
+    if backlog == 0 {
+        return Err("batching.backlog = 0: expected at least 1".into());
+    }
+    let lanes = match b.lanes {
+        None => Lanes::Auto,
+        Some(RawLanes::Word(w)) if w == "auto" => Lanes::Auto,
+        Some(RawLanes::Count(n)) if (1..=64).contains(&n) => Lanes::Fixed(n as usize),
+        Some(RawLanes::Word(w)) => return Err(format!("batching.lanes = {w:?}: expected \"auto\" or a number 1 ..= 64")),
+        Some(RawLanes::Count(n)) => return Err(format!("batching.lanes = {n}: expected \"auto\" or a number 1 ..= 64")),
+    };
+    let lane_threads = b.lane_threads.unwrap_or(defaults::LANE_THREADS);
+    if lane_threads != 1 {
+        // Multi-threaded inference inside a lane needs tract's multithread-mm executor,
+        // which lineside does not build yet; refusing beats silently ignoring the key.
+        return Err(format!(
+            "batching.lane_threads = {lane_threads}: only 1 is supported by this build; use more lanes instead"
+        ));
+    }
+    Ok(BatchingConfig { batch_cap, gather: Duration::from_micros(gather_us), backlog, lanes, lane_threads })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn parse(text: &str) -> Result<Config, String> {
+        Config::from_toml(text, "test.toml", &|p| Source::File(PathBuf::from("/base").join(p)), &Overrides::default())
+            .map_err(|e| format!("{e:#}"))
+    }
+
+    const MINIMAL: &str = r#"
+[[models]]
+name = "m"
+onnx = "m.onnx"
+labels = "m.txt"
+[models.preprocess]
+width = 32
+height = 32
+"#;
+
+    #[test]
+    fn builtin_config_embeds_every_file_it_names() {
+        let cfg = Config::builtin(&Overrides::default()).expect("built-in config is valid");
+        assert_eq!(cfg.models.len(), 1);
+        let m = &cfg.models[0];
+        assert_eq!(m.name, "washers");
+        for src in [&m.onnx, &m.labels] {
+            assert!(matches!(src, Source::Embedded { .. }), "not embedded: {src:?}");
+        }
+        assert_eq!(cfg.server.listen.to_string(), "127.0.0.1:8080");
+    }
+
+    #[test]
+    fn defaults_fill_missing_keys() {
+        let cfg = parse(MINIMAL).unwrap();
+        let m = &cfg.models[0];
+        assert_eq!(m.batching.batch_cap, 8);
+        assert_eq!(m.batching.gather, Duration::from_micros(2000));
+        assert_eq!(m.batching.backlog, 64);
+        assert_eq!(m.batching.lanes, Lanes::Auto);
+        assert_eq!(m.preprocess.mean, vec![0.0; 3]);
+        assert_eq!(m.preprocess.std, vec![1.0; 3]);
+        assert_eq!(cfg.server.body_limit_bytes, 16 * 1024 * 1024);
+        assert!(matches!(&m.onnx, Source::File(p) if p == Path::new("/base/m.onnx")));
+    }
+
+    #[test]
+    fn unknown_key_is_named_with_its_line() {
+        let text = format!("{MINIMAL}colour = \"red\"\n");
+        let err = parse(&text).unwrap_err();
+        assert!(err.contains("colour"), "{err}");
+        assert!(err.contains("line 10"), "{err}");
+        assert!(err.starts_with("test.toml"), "{err}");
+    }
+
+    #[test]
+    fn unknown_key_in_server_is_refused() {
+        let err = parse(&format!("[server]\nlisten_port = 1\n{MINIMAL}")).unwrap_err();
+        assert!(err.contains("listen_port") && err.contains("line 2"), "{err}");
+    }
+
+    #[test]
+    fn mean_length_must_match_channels() {
+        let text = MINIMAL.replace("height = 32", "height = 32\nmean = [0.5, 0.5]");
+        let err = parse(&text).unwrap_err();
+        assert!(err.contains("preprocess.mean has 2 values, expected 3"), "{err}");
+        let gray = MINIMAL.replace("height = 32", "height = 32\nchannels = \"gray\"\nmean = [0.5]\nstd = [0.25]");
+        assert_eq!(parse(&gray).unwrap().models[0].preprocess.std, vec![0.25]);
+    }
+
+    #[test]
+    fn bad_values_are_refused_with_the_key() {
+        for (edit, needle) in [
+            ("height = 32\nstd = [1.0, 0.0, 1.0]", "every std must be > 0"),
+            ("height = 32\ndivisor = 0.0", "preprocess.divisor"),
+            ("height = 32\nresize = \"squash\"", "squash"),
+            ("height = 0", "preprocess.height = 0"),
+        ] {
+            let err = parse(&MINIMAL.replace("height = 32", edit)).unwrap_err();
+            assert!(err.contains(needle), "{edit}: {err}");
+        }
+        for (batching, needle) in [
+            ("batch_cap = 0", "batching.batch_cap = 0"),
+            ("lanes = \"many\"", "batching.lanes"),
+            ("lanes = 0", "batching.lanes = 0"),
+            ("backlog = 0", "batching.backlog = 0"),
+            ("lane_threads = 2", "lane_threads = 2"),
+        ] {
+            let err = parse(&format!("{MINIMAL}[models.batching]\n{batching}\n")).unwrap_err();
+            assert!(err.contains(needle), "{batching}: {err}");
+        }
+        let err = parse(&format!("[server]\nlisten = \"localhost\"\n{MINIMAL}")).unwrap_err();
+        assert!(err.contains("server.listen"), "{err}");
+    }
+
+    #[test]
+    fn duplicate_model_names_and_no_models_are_refused() {
+        let twice = format!("{MINIMAL}{MINIMAL}");
+        assert!(parse(&twice).unwrap_err().contains("used twice"));
+        assert!(parse("[server]\n").unwrap_err().contains("no [[models]]"));
+    }
+
+    #[test]
+    fn listen_flag_overrides_file() {
+        let o = Overrides { listen: Some("0.0.0.0:9000".into()) };
+        let cfg = Config::builtin(&o).unwrap();
+        assert_eq!(cfg.server.listen.to_string(), "0.0.0.0:9000");
+    }
+
+    #[test]
+    fn lanes_accepts_number_or_auto() {
+        let cfg = parse(&format!("{MINIMAL}[models.batching]\nlanes = 3\n")).unwrap();
+        assert_eq!(cfg.models[0].batching.lanes, Lanes::Fixed(3));
+        let cfg = parse(&format!("{MINIMAL}[models.batching]\nlanes = \"auto\"\n")).unwrap();
+        assert_eq!(cfg.models[0].batching.lanes, Lanes::Auto);
+    }
+}

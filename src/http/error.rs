@@ -1,0 +1,202 @@
+//! The one error type every handler returns, and the table mapping error kinds to statuses.
+//!
+//! Every error body has one shape, `{"error": {"kind": "...", "message": "..."}}`, extractor
+//! rejections and unknown routes included. Client faults show their message; internal faults
+//! answer a generic 500 and carry the details in a response extension for the log.
+
+use axum::Json;
+use axum::http::{HeaderValue, StatusCode, header};
+use axum::response::{IntoResponse, Response};
+use serde::Serialize;
+
+use crate::batch::BatchError;
+use crate::preprocess::PreprocessError;
+use crate::preprocess::pool::PoolError;
+
+/// What went wrong, as a client can act on it. The README's error table lists the same.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ErrorKind {
+    /// No model by that name.
+    UnknownModel,
+    /// The body is not a decodable image (empty, truncated, corrupt, not an image).
+    BadImage,
+    /// Body or image above the configured limits.
+    TooLarge,
+    /// A recognised image format this build cannot decode.
+    UnsupportedFormat,
+    /// Backlog or decode queue full: retry after the `Retry-After` seconds.
+    Overloaded,
+    /// Malformed request parameters.
+    BadRequest,
+    /// Models still loading, or the server is stopping.
+    NotReady,
+    /// No such route.
+    NotFound,
+    /// The route exists but not with this method.
+    MethodNotAllowed,
+    /// A fault inside lineside (details in the server log).
+    Internal,
+}
+
+impl ErrorKind {
+    /// The HTTP status for this kind.
+    pub fn status(self) -> StatusCode {
+        match self {
+            ErrorKind::UnknownModel | ErrorKind::NotFound => StatusCode::NOT_FOUND,
+            ErrorKind::BadImage | ErrorKind::BadRequest => StatusCode::BAD_REQUEST,
+            ErrorKind::TooLarge => StatusCode::PAYLOAD_TOO_LARGE,
+            ErrorKind::UnsupportedFormat => StatusCode::UNSUPPORTED_MEDIA_TYPE,
+            ErrorKind::Overloaded | ErrorKind::NotReady => StatusCode::SERVICE_UNAVAILABLE,
+            ErrorKind::MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
+            ErrorKind::Internal => StatusCode::INTERNAL_SERVER_ERROR,
+        }
+    }
+
+    /// The kind as it appears in JSON and in metric labels.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ErrorKind::UnknownModel => "unknown_model",
+            ErrorKind::BadImage => "bad_image",
+            ErrorKind::TooLarge => "too_large",
+            ErrorKind::UnsupportedFormat => "unsupported_format",
+            ErrorKind::Overloaded => "overloaded",
+            ErrorKind::BadRequest => "bad_request",
+            ErrorKind::NotReady => "not_ready",
+            ErrorKind::NotFound => "not_found",
+            ErrorKind::MethodNotAllowed => "method_not_allowed",
+            ErrorKind::Internal => "internal",
+        }
+    }
+}
+
+/// Details of an internal fault, attached to the response for the logging middleware.
+#[derive(Debug, Clone)]
+pub struct InternalDetail(pub String);
+
+/// An error answer.
+#[derive(Debug)]
+pub struct ApiError {
+    /// The kind.
+    pub kind: ErrorKind,
+    /// Message shown to the client (generic for internal faults).
+    pub message: String,
+    detail: Option<String>,
+}
+
+impl ApiError {
+    /// A client-facing error with its message.
+    pub fn new(kind: ErrorKind, message: impl Into<String>) -> ApiError {
+        ApiError { kind, message: message.into(), detail: None }
+    }
+
+    /// An internal fault: the client sees a generic message, the log sees `detail`.
+    pub fn internal(detail: impl Into<String>) -> ApiError {
+        ApiError {
+            kind: ErrorKind::Internal,
+            message: "internal error in lineside; the server log has the details".into(),
+            detail: Some(detail.into()),
+        }
+    }
+}
+
+#[derive(Serialize)]
+struct Body<'a> {
+    error: Inner<'a>,
+}
+
+#[derive(Serialize)]
+struct Inner<'a> {
+    kind: &'a str,
+    message: &'a str,
+}
+
+impl IntoResponse for ApiError {
+    fn into_response(self) -> Response {
+        let body = Body { error: Inner { kind: self.kind.as_str(), message: &self.message } };
+        let mut resp = (self.kind.status(), Json(body)).into_response();
+        if matches!(self.kind, ErrorKind::Overloaded | ErrorKind::NotReady) {
+            resp.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from_static("1"));
+        }
+        if let Some(d) = self.detail {
+            resp.extensions_mut().insert(InternalDetail(d));
+        }
+        resp
+    }
+}
+
+impl From<PreprocessError> for ApiError {
+    fn from(e: PreprocessError) -> Self {
+        let kind = match &e {
+            PreprocessError::Empty | PreprocessError::BadImage(_) => ErrorKind::BadImage,
+            PreprocessError::Unsupported(_) => ErrorKind::UnsupportedFormat,
+            PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. } => ErrorKind::TooLarge,
+            PreprocessError::Internal(_) => return ApiError::internal(e.to_string()),
+        };
+        ApiError::new(kind, e.to_string())
+    }
+}
+
+impl From<BatchError> for ApiError {
+    fn from(e: BatchError) -> Self {
+        match e {
+            BatchError::QueueFull { .. } => ApiError::new(ErrorKind::Overloaded, e.to_string()),
+            BatchError::ShuttingDown => ApiError::new(ErrorKind::NotReady, e.to_string()),
+            BatchError::Inference(_) => ApiError::internal(e.to_string()),
+        }
+    }
+}
+
+impl From<PoolError> for ApiError {
+    fn from(e: PoolError) -> Self {
+        match e {
+            PoolError::Full(_) => ApiError::new(ErrorKind::Overloaded, format!("{e}; retry shortly")),
+            PoolError::Closed => ApiError::new(ErrorKind::NotReady, e.to_string()),
+            PoolError::Panicked => ApiError::internal(e.to_string()),
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn every_kind_maps_to_its_documented_status() {
+        // The README's error table, row by row.
+        let table = [
+            (ErrorKind::UnknownModel, 404, "unknown_model"),
+            (ErrorKind::BadImage, 400, "bad_image"),
+            (ErrorKind::TooLarge, 413, "too_large"),
+            (ErrorKind::UnsupportedFormat, 415, "unsupported_format"),
+            (ErrorKind::Overloaded, 503, "overloaded"),
+            (ErrorKind::BadRequest, 400, "bad_request"),
+            (ErrorKind::NotReady, 503, "not_ready"),
+            (ErrorKind::NotFound, 404, "not_found"),
+            (ErrorKind::MethodNotAllowed, 405, "method_not_allowed"),
+            (ErrorKind::Internal, 500, "internal"),
+        ];
+        for (kind, status, name) in table {
+            assert_eq!(kind.status().as_u16(), status, "{name}");
+            assert_eq!(kind.as_str(), name);
+            assert_eq!(serde_json::to_value(kind).unwrap(), name);
+        }
+    }
+
+    #[test]
+    fn overloaded_carries_retry_after_and_internal_hides_detail() {
+        let r = ApiError::new(ErrorKind::Overloaded, "full").into_response();
+        assert_eq!(r.status(), 503);
+        assert_eq!(r.headers()[header::RETRY_AFTER], "1");
+        let r = ApiError::internal("secret stack").into_response();
+        assert_eq!(r.status(), 500);
+        assert_eq!(r.extensions().get::<InternalDetail>().unwrap().0, "secret stack");
+    }
+
+    #[test]
+    fn client_faults_never_become_500() {
+        for e in [PreprocessError::Empty, PreprocessError::BadImage("x".into()), PreprocessError::Unsupported("gif".into())] {
+            assert_ne!(ApiError::from(e).kind, ErrorKind::Internal);
+        }
+    }
+}

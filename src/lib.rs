@@ -1,0 +1,32 @@
+//! lineside: a CPU inference server for small ONNX image classifiers beside a production line.
+//!
+//! `check` loads a model and verifies its input/output contract, `serve` answers images over
+//! HTTP (decode, preprocess, batch, infer) with health probes and Prometheus metrics.
+//!
+//! # Layout
+//!
+//! One module per stage of an image's path:
+//!
+//! | module | stage |
+//! |---|---|
+//! | [`config`] | TOML + flags, validated once into typed settings |
+//! | [`model`] | load the ONNX file, check its contract, plan and run it (tract stays here) |
+//! | [`preprocess`] | decode, convert, resize, normalise; the bounded decode pool |
+//! | [`batch`] | per-model backlog, inference lanes, pass formation |
+//! | [`http`] | router, handlers, the one error type |
+//! | [`metrics`] | the registry and the response-counting middleware |
+//! | [`server`] | bind, load, serve, drain |
+//! | [`cli`] | the subcommands, as library calls |
+//!
+//! lineside assists visual inspection; it does not replace the plant's safety systems or
+//! qualified sign-off of accept/reject decisions.
+
+pub mod batch;
+pub mod cli;
+pub mod config;
+pub mod http;
+pub mod metrics;
+pub mod model;
+pub mod preprocess;
+pub mod server;
+pub mod shutdown;

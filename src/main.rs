@@ -1,0 +1,26 @@
+//! The `lineside` binary: parse arguments, start logging, run a subcommand, map its result
+//! to an exit code (0 ok, 1 `check` found a model unservable, 2 usage, config or I/O error).
+
+use std::process::ExitCode;
+
+use clap::Parser as _;
+use lineside::cli::{Cli, Command, Outcome};
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let filter = tracing_subscriber::EnvFilter::try_from_env("LINESIDE_LOG")
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
+    tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).init();
+    let result = match cli.command {
+        Command::Serve(args) => lineside::cli::serve::run(args),
+        Command::Check(args) => lineside::cli::check::run(args),
+    };
+    match result {
+        Ok(Outcome::Ok) => ExitCode::SUCCESS,
+        Ok(Outcome::ModelUnservable) => ExitCode::from(1),
+        Err(e) => {
+            eprintln!("lineside: {e:#}");
+            ExitCode::from(2)
+        }
+    }
+}

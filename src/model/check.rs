@@ -1,0 +1,189 @@
+//! The input/output contract: what a model takes and gives, derived from its typed graph
+//! and checked against the config and the labels file.
+//!
+//! lineside serves classifiers with one image input of rank 4 (NCHW or NHWC, 1 or 3
+//! channels, float32) and one output `[N, K]` or `[N, K, 1, 1]` with K = number of labels.
+//! Anything else is refused here with a message that names the file, the input or output,
+//! and what was expected.
+
+use serde::Serialize;
+use tract_onnx::prelude::*;
+
+use crate::config::{Layout, PreprocessConfig};
+
+/// What the model's batch axis allows.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum BatchAxis {
+    /// Symbolic (any batch size), with the symbol's name.
+    Dynamic(String),
+    /// Fixed by the model.
+    Fixed(usize),
+}
+
+/// How raw outputs become probabilities.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ScoreTransform {
+    /// The graph ends in Softmax: outputs are used as they are.
+    FromGraph,
+    /// lineside applies softmax to the outputs (logits).
+    Softmax,
+}
+
+impl ScoreTransform {
+    /// Turn one image's raw output into probabilities.
+    pub fn apply(self, raw: &[f32]) -> Vec<f32> {
+        match self {
+            ScoreTransform::FromGraph => raw.to_vec(),
+            ScoreTransform::Softmax => super::softmax(raw),
+        }
+    }
+}
+
+/// A model's checked input/output contract.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Contract {
+    /// Name of the image input.
+    pub input_name: String,
+    /// Input shape as the model declares it (symbols by name).
+    pub input_shape: Vec<String>,
+    /// Layout of the image input.
+    pub layout: Layout,
+    /// Channels the model takes (1 or 3).
+    pub channels: usize,
+    /// Input height served.
+    pub height: u32,
+    /// Input width served.
+    pub width: u32,
+    /// The batch axis.
+    pub batch: BatchAxis,
+    /// Name of the scores output.
+    pub output_name: String,
+    /// Output shape as the model declares it.
+    pub output_shape: Vec<String>,
+    /// Number of classes (K).
+    pub classes: usize,
+    /// How outputs become probabilities.
+    pub scores: ScoreTransform,
+}
+
+fn dims(shape: &ShapeFact) -> Vec<String> {
+    shape.iter().map(|d| d.to_string()).collect()
+}
+
+fn fixed(d: &TDim) -> Option<usize> {
+    d.to_i64().ok().and_then(|v| usize::try_from(v).ok())
+}
+
+/// Derive and check the contract of a typed (decluttered) model.
+///
+/// # Errors
+/// A message naming `file` and the offending input or output, saying what was expected.
+pub fn contract(
+    model: &TypedModel,
+    file: &str,
+    pre: &PreprocessConfig,
+    labels: usize,
+) -> Result<Contract, String> {
+    if model.inputs.len() != 1 {
+        let names: Vec<&str> = model.inputs.iter().map(|o| model.node(o.node).name.as_str()).collect();
+        return Err(format!("{file}: has {} inputs {names:?}; lineside serves models with exactly one image input", names.len()));
+    }
+    if model.outputs.len() != 1 {
+        return Err(format!("{file}: has {} outputs; lineside serves models with exactly one scores output", model.outputs.len()));
+    }
+    let input_name = model.node(model.inputs[0].node).name.clone();
+    let fact = model.input_fact(0).map_err(|e| format!("{file}: input {input_name:?}: {e}"))?;
+    let shape = dims(&fact.shape);
+    let at = |what: &str| format!("{file}: input {input_name:?} (shape [{}])", shape.join(", ")) + what;
+    if fact.datum_type != f32::datum_type() {
+        return Err(at(&format!(": element type {:?}, expected float32", fact.datum_type)));
+    }
+    if fact.rank() != 4 {
+        return Err(at(&format!(
+            ": rank {}, expected 4 ([N, C, H, W] or [N, H, W, C])",
+            fact.rank()
+        )));
+    }
+    let d: Vec<&TDim> = fact.shape.iter().collect();
+    let is_chan = |x: &TDim| matches!(fixed(x), Some(1 | 3));
+    let detected = match (is_chan(d[1]), is_chan(d[3])) {
+        (true, false) => Some(Layout::Nchw),
+        (false, true) => Some(Layout::Nhwc),
+        (true, true) => None, // e.g. [N, 3, 3, 3]: ambiguous, the config decides
+        (false, false) => {
+            return Err(at(": no channel axis of size 1 or 3 at position 1 (NCHW) or 3 (NHWC); \
+                           lineside serves gray or colour image models"));
+        }
+    };
+    let layout = match (detected, pre.layout) {
+        (Some(found), Some(want)) if found != want => {
+            return Err(at(&format!(
+                ": the model is {found} but the config says layout = \"{want}\"; remove the key or set it to \"{found}\""
+            )));
+        }
+        (Some(found), _) => found,
+        (None, Some(want)) => want,
+        (None, None) => Layout::Nchw,
+    };
+    let (c, h, w) = match layout {
+        Layout::Nchw => (d[1], d[2], d[3]),
+        Layout::Nhwc => (d[3], d[1], d[2]),
+    };
+    let channels = fixed(c).unwrap_or(0);
+    if channels != pre.channels.count() {
+        return Err(at(&format!(
+            ": takes {channels} channel(s) but preprocess.channels gives {}; use channels = {}",
+            pre.channels.count(),
+            if channels == 1 { "\"gray\"" } else { "\"rgb\" or \"bgr\"" }
+        )));
+    }
+    for (axis, dim, want, key) in [("height", h, pre.height, "height"), ("width", w, pre.width, "width")] {
+        if let Some(v) = fixed(dim) {
+            if v != want as usize {
+                return Err(at(&format!(": {axis} is fixed at {v} but preprocess.{key} = {want}; set {key} = {v}")));
+            }
+        }
+    }
+    let batch = match fixed(d[0]) {
+        Some(1) => BatchAxis::Fixed(1),
+        Some(n) => {
+            return Err(at(&format!(
+                ": batch axis fixed at {n}; lineside needs a dynamic batch axis or a batch of 1 (re-export with a dynamic axis)"
+            )));
+        }
+        None => BatchAxis::Dynamic(d[0].to_string()),
+    };
+
+    let out_outlet = model.outputs[0];
+    let output_name = model.outlet_label(out_outlet).unwrap_or(&model.node(out_outlet.node).name).to_string();
+    let ofact = model.outlet_fact(out_outlet).map_err(|e| format!("{file}: output {output_name:?}: {e}"))?;
+    let output_shape = dims(&ofact.shape);
+    let oat = |what: &str| format!("{file}: output {output_name:?} (shape [{}])", output_shape.join(", ")) + what;
+    let od: Vec<&TDim> = ofact.shape.iter().collect();
+    let trailing_ones = od.len() == 4 && fixed(od[2]) == Some(1) && fixed(od[3]) == Some(1);
+    if !(od.len() == 2 || trailing_ones) {
+        return Err(oat(": expected [N, K] or [N, K, 1, 1] class scores"));
+    }
+    let classes = fixed(od[1]).ok_or_else(|| oat(": the class axis is not fixed"))?;
+    if classes != labels {
+        return Err(oat(&format!(": gives {classes} class scores but the labels file has {labels} labels")));
+    }
+    let last_op = model.node(out_outlet.node).op.name();
+    let scores = if last_op.contains("Softmax") { ScoreTransform::FromGraph } else { ScoreTransform::Softmax };
+
+    Ok(Contract {
+        input_name,
+        input_shape: shape,
+        layout,
+        channels,
+        height: pre.height,
+        width: pre.width,
+        batch,
+        output_name,
+        output_shape,
+        classes,
+        scores,
+    })
+}

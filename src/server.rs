@@ -1,0 +1,178 @@
+//! The server's life: bind first, then load; serve; on shutdown, drain and stop the lanes.
+//!
+//! [`run`] takes a bound listener and a shutdown future, so tests drive it on port 0 with a
+//! future they control. It marks the server `Loading`, loads every model on a blocking
+//! thread (optionally held by a test's `load_gate`), and serves meanwhile, so `/healthz`
+//! answers and `/readyz` says 503 until the models are warm.
+//!
+//! The accept loop is our own (hyper-util) rather than `axum::serve`: the latter has no
+//! header-read timeout, and a client that sends half its headers held its graceful shutdown
+//! for over 45 s (FACTS.md). Here HTTP/1 connections must send their headers within
+//! `header_timeout_ms`, and the drain is bounded by `drain_ms`.
+
+use std::future::Future;
+use std::sync::Arc;
+
+use anyhow::Context as _;
+use hyper_util::rt::{TokioExecutor, TokioIo, TokioTimer};
+use hyper_util::server::conn::auto::Builder;
+use hyper_util::server::graceful::GracefulShutdown;
+use hyper_util::service::TowerToHyperService;
+use tokio::net::TcpListener;
+use tokio::sync::{oneshot, watch};
+
+use crate::batch::{Batcher, BatcherGuard};
+use crate::config::Config;
+use crate::http::state::{AppState, Readiness, Served, ServedModel};
+use crate::metrics::Metrics;
+use crate::model::load;
+use crate::preprocess::Pipeline;
+use crate::preprocess::pool::CpuPool;
+
+/// Extra controls for tests.
+#[derive(Default)]
+pub struct RunOptions {
+    /// Loading starts only when this resolves (tests hold it to observe `/readyz` = 503).
+    pub load_gate: Option<oneshot::Receiver<()>>,
+}
+
+/// Serve `config` on `listener` until `shutdown` resolves, then drain.
+///
+/// # Errors
+/// When a model fails to load (the process should exit non-zero so that the orchestrator
+/// sees it), or the decode pool cannot start.
+pub async fn run(
+    config: Config,
+    listener: TcpListener,
+    shutdown: impl Future<Output = ()> + Send,
+    options: RunOptions,
+) -> anyhow::Result<()> {
+    let metrics = Metrics::new();
+    let pool = CpuPool::new("decode", config.server.decode_threads, config.server.decode_backlog)
+        .context("cannot start the decode threads")?;
+    let (ready_tx, ready_rx) = watch::channel(Readiness::Loading("waiting to start".into()));
+    let state = AppState {
+        readiness: ready_rx,
+        metrics: metrics.clone(),
+        pool,
+        body_limit: config.server.body_limit_bytes,
+    };
+    let app = crate::http::router(state);
+
+    // The loader owns nothing the server needs; it reports back once.
+    let (loaded_tx, mut loaded_rx) = oneshot::channel::<anyhow::Result<(Arc<Served>, Vec<BatcherGuard>)>>();
+    {
+        let config = config.clone();
+        let ready_tx = ready_tx.clone();
+        let gate = options.load_gate;
+        tokio::spawn(async move {
+            if let Some(gate) = gate {
+                let _ = gate.await;
+            }
+            let _ = ready_tx.send(Readiness::Loading(format!("loading {} model(s)", config.models.len())));
+            let result = tokio::task::spawn_blocking(move || load_all(&config, &metrics))
+                .await
+                .unwrap_or_else(|e| Err(anyhow::anyhow!("model loader panicked: {e}")));
+            let _ = loaded_tx.send(result);
+        });
+    }
+
+    let mut builder = Builder::new(TokioExecutor::new());
+    builder.http1().timer(TokioTimer::new()).header_read_timeout(config.server.header_timeout);
+    let graceful = GracefulShutdown::new();
+    let mut guards: Vec<BatcherGuard> = Vec::new();
+    let mut served: Option<Arc<Served>> = None;
+    let mut load_pending = true;
+    let mut failure: Option<anyhow::Error> = None;
+    tokio::pin!(shutdown);
+    tracing::info!(addr = %listener.local_addr()?, "listening");
+
+    loop {
+        tokio::select! {
+            conn = listener.accept() => {
+                let (stream, _peer) = match conn {
+                    Ok(c) => c,
+                    Err(e) => {
+                        // Typically EMFILE: back off instead of spinning.
+                        tracing::warn!(cause = %e, "accept failed");
+                        tokio::time::sleep(std::time::Duration::from_millis(50)).await;
+                        continue;
+                    }
+                };
+                let _ = stream.set_nodelay(true);
+                let svc = TowerToHyperService::new(app.clone());
+                let conn = builder.serve_connection_with_upgrades(TokioIo::new(stream), svc).into_owned();
+                let conn = graceful.watch(conn);
+                tokio::spawn(async move {
+                    if let Err(e) = conn.await {
+                        tracing::debug!(cause = %e, "connection ended with an error");
+                    }
+                });
+            }
+            loaded = &mut loaded_rx, if load_pending => {
+                load_pending = false;
+                match loaded {
+                    Ok(Ok((s, g))) => {
+                        tracing::info!(models = s.len(), "ready");
+                        served = Some(s.clone());
+                        guards = g;
+                        let _ = ready_tx.send(Readiness::Ready(s));
+                    }
+                    Ok(Err(e)) => {
+                        tracing::error!(cause = %format!("{e:#}"), "model loading failed");
+                        let _ = ready_tx.send(Readiness::Failed(format!("{e:#}")));
+                        failure = Some(e);
+                        break;
+                    }
+                    Err(_) => {
+                        failure = Some(anyhow::anyhow!("model loader vanished"));
+                        break;
+                    }
+                }
+            }
+            () = &mut shutdown => break,
+        }
+    }
+
+    if let Some(s) = served {
+        let _ = ready_tx.send(Readiness::Draining(s));
+    }
+    drop(listener);
+    let drain = config.server.drain;
+    if tokio::time::timeout(drain, graceful.shutdown()).await.is_err() {
+        tracing::warn!(drain_ms = drain.as_millis() as u64, "drain deadline passed; closing remaining connections");
+    }
+    // Stops the lanes; anything still queued is answered `ShuttingDown`.
+    drop(guards);
+    match failure {
+        Some(e) => Err(e),
+        None => {
+            tracing::info!("stopped");
+            Ok(())
+        }
+    }
+}
+
+/// Load every model and start its lanes.
+fn load_all(config: &Config, metrics: &Metrics) -> anyhow::Result<(Arc<Served>, Vec<BatcherGuard>)> {
+    let mut served = Served::new();
+    let mut guards = Vec::new();
+    for mc in &config.models {
+        let model = Arc::new(load::load(mc).with_context(|| format!("model {:?}", mc.name))?);
+        tracing::info!(
+            model = %model.name,
+            version = %model.version,
+            load_ms = model.load_time.as_millis() as u64,
+            "model loaded"
+        );
+        let mm = metrics.for_model(&mc.name);
+        let (batcher, guard) = Batcher::start(Arc::clone(&model), &mc.batching, mm.clone())?;
+        let pipeline = Pipeline::new(mc.preprocess.clone(), model.contract.layout, config.server.max_pixels);
+        guards.push(guard);
+        served.insert(
+            mc.name.clone(),
+            ServedModel { model, pipeline: Arc::new(pipeline), batcher, metrics: mm },
+        );
+    }
+    Ok((Arc::new(served), guards))
+}

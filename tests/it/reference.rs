@@ -1,0 +1,113 @@
+//! lineside against references outside the project, on the washer samples.
+//!
+//! Source of every expected number: `tests/fixtures/washers/reference.json` and
+//! `tests/fixtures/washers/pillow96/*.png`, written by `tools/reference.py` with
+//! onnxruntime 1.32.0 (PyPI, CPU, 1 thread) on tensors from Pillow 13.0.0's
+//! `Image.resize((96, 96), BILINEAR)` / 255 (versions pinned in tools/requirements.txt).
+
+use serde_json::Value;
+
+use crate::util::{TestServer, root, samples, washer_config};
+use lineside::config::Layout;
+use lineside::model::load;
+use lineside::preprocess::Pipeline;
+
+fn reference() -> Value {
+    serde_json::from_slice(&std::fs::read(root().join("tests/fixtures/washers/reference.json")).unwrap()).unwrap()
+}
+
+fn reference_probs(r: &Value, name: &str) -> Vec<f64> {
+    r["samples"][name]["probabilities"]
+        .as_array()
+        .unwrap_or_else(|| panic!("reference.json has no {name}: rerun tools/reference.py"))
+        .iter()
+        .map(|v| v.as_f64().unwrap())
+        .collect()
+}
+
+/// Pillow's 96x96 pixels for a sample, as 8-bit RGB.
+fn pillow_pixels(name: &str) -> image::RgbImage {
+    image::open(root().join("tests/fixtures/washers/pillow96").join(name)).unwrap().into_rgb8()
+}
+
+#[test]
+fn engine_matches_onnxruntime_on_the_same_tensor() {
+    let cfg = washer_config();
+    let model = load::load(&cfg.models[0]).unwrap();
+    let mut runner = model.runner().unwrap();
+    let r = reference();
+    let mut worst = 0.0f64;
+    for s in samples() {
+        let px = pillow_pixels(&s.name);
+        // The same tensor onnxruntime saw: pixel / 255, NCHW.
+        let mut t = vec![0f32; 3 * 96 * 96];
+        for (i, p) in px.pixels().enumerate() {
+            for c in 0..3 {
+                t[c * 96 * 96 + i] = f32::from(p.0[c]) / 255.0;
+            }
+        }
+        let ours = runner.run(&t).unwrap();
+        let theirs = reference_probs(&r, &s.name);
+        for (a, b) in ours.iter().zip(&theirs) {
+            worst = worst.max((f64::from(*a) - b).abs());
+        }
+    }
+    // tract vs onnxruntime measured at <= 6e-6 on five architectures (FACTS.md).
+    assert!(worst <= 1e-5, "max |tract - onnxruntime| = {worst:e}");
+}
+
+#[test]
+fn preprocessing_matches_pillow_bilinear_within_one_level() {
+    let cfg = washer_config();
+    let m = &cfg.models[0];
+    let pipeline = Pipeline::new(m.preprocess.clone(), Layout::Nchw, cfg.server.max_pixels);
+    let (mut worst, mut total, mut count) = (0i32, 0i64, 0i64);
+    for s in samples() {
+        let ours = pipeline.run(&s.bytes).unwrap().tensor;
+        let px = pillow_pixels(&s.name);
+        for (i, p) in px.pixels().enumerate() {
+            for c in 0..3 {
+                let level = (ours[c * 96 * 96 + i] * 255.0).round() as i32;
+                let d = (level - i32::from(p.0[c])).abs();
+                worst = worst.max(d);
+                total += i64::from(d);
+                count += 1;
+            }
+        }
+    }
+    // fast_image_resize's bilinear convolution is within +-1 level of Pillow's (FACTS.md,
+    // measured); a different filter or a missing antialias would differ by tens of levels.
+    assert!(worst <= 1, "max pixel difference from Pillow = {worst} levels");
+    let mean = total as f64 / count as f64;
+    assert!(mean < 0.05, "mean pixel difference from Pillow = {mean:.4} levels");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn served_scores_match_onnxruntime() {
+    let server = TestServer::start(washer_config()).await;
+    let c = reqwest::Client::new();
+    let r = reference();
+    let labels: Vec<String> = r["labels"].as_array().unwrap().iter().map(|l| l.as_str().unwrap().into()).collect();
+    let mut worst = 0.0f64;
+    for s in samples() {
+        let v: Value = c
+            .post(server.url("/classify/washers?top=all"))
+            .body(s.bytes.clone())
+            .send()
+            .await
+            .unwrap()
+            .json()
+            .await
+            .unwrap();
+        let theirs = reference_probs(&r, &s.name);
+        assert_eq!(v["label"], r["samples"][&s.name]["label"], "{}: top-1 differs from onnxruntime", s.name);
+        for t in v["top"].as_array().unwrap() {
+            let i = labels.iter().position(|l| l == t["label"].as_str().unwrap()).unwrap();
+            worst = worst.max((t["score"].as_f64().unwrap() - theirs[i]).abs());
+        }
+    }
+    // The only difference left is preprocessing within one level (test above); it moves a
+    // probability by far less than this on these frames.
+    assert!(worst <= 5e-3, "max |served - onnxruntime| = {worst:e}");
+    server.stop().await.unwrap();
+}

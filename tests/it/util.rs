@@ -1,0 +1,188 @@
+//! Shared test helpers: start the real server on a loopback port, read the washer fixtures,
+//! and call the Python reference tools from the project's venv.
+
+use std::collections::HashMap;
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::time::Duration;
+
+use lineside::config::{Config, Overrides};
+use lineside::server::{RunOptions, run};
+use tokio::sync::oneshot;
+use tokio::task::JoinHandle;
+
+/// The repository root.
+pub(crate) fn root() -> PathBuf {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+}
+
+/// The documented washer config, listening on an ephemeral loopback port.
+pub(crate) fn washer_config() -> Config {
+    config_from_text(&std::fs::read_to_string(root().join("config/lineside.toml")).unwrap())
+}
+
+/// A config from TOML text, with paths relative to `config/` and an ephemeral port.
+pub(crate) fn config_from_text(text: &str) -> Config {
+    let base = root().join("config");
+    Config::from_toml(
+        text,
+        "test config",
+        &|p: &Path| lineside::config::Source::File(base.join(p)),
+        &Overrides { listen: Some("127.0.0.1:0".into()) },
+    )
+    .expect("test config is valid")
+}
+
+/// A running in-process server.
+pub(crate) struct TestServer {
+    /// Where it listens.
+    pub(crate) addr: SocketAddr,
+    shutdown: Option<oneshot::Sender<()>>,
+    gate: Option<oneshot::Sender<()>>,
+    handle: JoinHandle<anyhow::Result<()>>,
+}
+
+impl TestServer {
+    /// Start and wait until ready.
+    pub(crate) async fn start(config: Config) -> TestServer {
+        let mut s = Self::start_gated(config).await;
+        s.release_load();
+        s.wait_ready().await;
+        s
+    }
+
+    /// Start with model loading held until [`TestServer::release_load`].
+    pub(crate) async fn start_gated(config: Config) -> TestServer {
+        let listener = tokio::net::TcpListener::bind(config.server.listen).await.unwrap();
+        let addr = listener.local_addr().unwrap();
+        let (stop_tx, stop_rx) = oneshot::channel::<()>();
+        let (gate_tx, gate_rx) = oneshot::channel::<()>();
+        let shutdown = async move {
+            let _ = stop_rx.await;
+        };
+        let handle = tokio::spawn(run(config, listener, shutdown, RunOptions { load_gate: Some(gate_rx) }));
+        TestServer { addr, shutdown: Some(stop_tx), gate: Some(gate_tx), handle }
+    }
+
+    /// Let the models load.
+    pub(crate) fn release_load(&mut self) {
+        if let Some(g) = self.gate.take() {
+            let _ = g.send(());
+        }
+    }
+
+    /// Full URL of `path`.
+    pub(crate) fn url(&self, path: &str) -> String {
+        format!("http://{}{}", self.addr, path)
+    }
+
+    /// Poll `/readyz` until 200 (at most 60 s: a cold CI machine loads slowly).
+    pub(crate) async fn wait_ready(&self) {
+        let client = reqwest::Client::new();
+        for _ in 0..600 {
+            if let Ok(r) = client.get(self.url("/readyz")).send().await {
+                if r.status() == 200 {
+                    return;
+                }
+            }
+            tokio::time::sleep(Duration::from_millis(100)).await;
+        }
+        panic!("server at {} did not become ready in 60 s", self.addr);
+    }
+
+    /// Ask the server to stop.
+    pub(crate) fn trigger_shutdown(&mut self) {
+        if let Some(s) = self.shutdown.take() {
+            let _ = s.send(());
+        }
+    }
+
+    /// Stop and return what `server::run` returned.
+    pub(crate) async fn stop(mut self) -> anyhow::Result<()> {
+        self.trigger_shutdown();
+        tokio::time::timeout(Duration::from_secs(30), self.handle).await.expect("server stopped within 30 s").unwrap()
+    }
+
+    /// Await the server's end without asking it to stop.
+    pub(crate) async fn join(self) -> anyhow::Result<()> {
+        tokio::time::timeout(Duration::from_secs(30), self.handle).await.expect("server ended within 30 s").unwrap()
+    }
+}
+
+/// A washer sample: file name, bytes, expected top-1 label.
+pub(crate) struct Sample {
+    pub(crate) name: String,
+    pub(crate) bytes: Vec<u8>,
+    pub(crate) label: String,
+}
+
+/// Every sample frame listed in `models/washers/samples/expected.json`.
+pub(crate) fn samples() -> Vec<Sample> {
+    let dir = root().join("models/washers/samples");
+    let expected: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(dir.join("expected.json")).unwrap()).unwrap();
+    let mut out: Vec<Sample> = expected
+        .as_object()
+        .unwrap()
+        .iter()
+        .map(|(name, v)| Sample {
+            name: name.clone(),
+            bytes: std::fs::read(dir.join(name)).unwrap(),
+            label: v["label"].as_str().unwrap().to_string(),
+        })
+        .collect();
+    out.sort_by(|a, b| a.name.cmp(&b.name));
+    assert!(out.len() >= 10, "expected at least two samples per class");
+    out
+}
+
+/// The Python interpreter of the project's venv (created by `tools/test`). A missing
+/// reference tool fails the test: it never skips silently.
+pub(crate) fn python() -> PathBuf {
+    let p = std::env::var_os("LINESIDE_PYTHON").map(PathBuf::from).unwrap_or_else(|| root().join(".venv/bin/python"));
+    assert!(
+        p.exists(),
+        "the reference tools need {}: run `tools/test` (it creates the venv from tools/requirements.txt) \
+         or set LINESIDE_PYTHON",
+        p.display()
+    );
+    p
+}
+
+/// Parse Prometheus text with prometheus_client's parser (via tools/check_metrics.py, which
+/// also checks bucket monotonicity and +Inf == _count). Keys are `name{k="v",...}` with
+/// labels sorted.
+pub(crate) fn parse_metrics(text: &str) -> HashMap<String, f64> {
+    use std::io::Write as _;
+    let mut child = Command::new(python())
+        .arg(root().join("tools/check_metrics.py"))
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("run tools/check_metrics.py");
+    child.stdin.take().unwrap().write_all(text.as_bytes()).unwrap();
+    let out = child.wait_with_output().unwrap();
+    assert!(
+        out.status.success(),
+        "prometheus_client rejected /metrics: {}\n--- text ---\n{text}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    serde_json::from_slice(&out.stdout).unwrap()
+}
+
+/// Value of a parsed sample, 0 when absent.
+pub(crate) fn metric(m: &HashMap<String, f64>, key: &str) -> f64 {
+    m.get(key).copied().unwrap_or(0.0)
+}
+
+/// Check an error answer: status, JSON shape and kind. Returns the message.
+pub(crate) async fn expect_error(resp: reqwest::Response, status: u16, kind: &str) -> String {
+    assert_eq!(resp.status().as_u16(), status, "status for kind {kind}");
+    let body: serde_json::Value = resp.json().await.expect("error body is JSON");
+    assert_eq!(body["error"]["kind"], kind, "{body}");
+    let msg = body["error"]["message"].as_str().expect("error.message is a string").to_string();
+    assert!(!msg.is_empty());
+    msg
+}
