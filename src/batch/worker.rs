@@ -39,7 +39,14 @@ impl Lane {
         metrics: ModelMetrics,
     ) -> anyhow::Result<Lane> {
         let runner = model.runner()?;
-        Ok(Lane { model, runner, jobs, stop, gather, metrics })
+        Ok(Lane {
+            model,
+            runner,
+            jobs,
+            stop,
+            gather,
+            metrics,
+        })
     }
 
     /// Serve until the stop channel closes, then answer what is left and return.
@@ -73,7 +80,9 @@ impl Lane {
                 Err(TryRecvError::Disconnected) => break,
                 Err(TryRecvError::Empty) => {}
             }
-            let Some(until) = self.gather.wait_until(first_at, pass.len(), Instant::now()) else { break };
+            let Some(until) = self.gather.wait_until(first_at, pass.len(), Instant::now()) else {
+                break;
+            };
             match self.jobs.recv_deadline(until) {
                 Ok(job) => pass.push(job),
                 Err(RecvTimeoutError::Timeout | RecvTimeoutError::Disconnected) => break,
@@ -86,39 +95,62 @@ impl Lane {
         let started = Instant::now();
         let size = pass.len();
         self.metrics.pass_size.observe(size as f64);
-        for job in pass {
+        let mut last = None;
+        for (i, job) in pass.into_iter().enumerate() {
             // The client hung up while queued: do not spend the engine on it.
             if job.reply.is_closed() {
                 self.metrics.abandoned.inc();
                 continue;
             }
-            let t = Instant::now();
-            let result = catch_unwind(AssertUnwindSafe(|| self.runner.run(&job.tensor)));
-            let infer = t.elapsed();
-            let answer = match result {
-                Ok(Ok(scores)) => Ok(Scored { scores, wait: started - job.enqueued, infer, pass_size: size }),
-                Ok(Err(e)) => {
-                    self.metrics.lane_failures.inc();
-                    tracing::error!(model = %self.model.name, cause = %e, "inference failed");
-                    Err(BatchError::Inference(e.to_string()))
-                }
-                Err(_) => {
-                    self.metrics.lane_failures.inc();
-                    tracing::error!(model = %self.model.name, "inference panicked; replacing the lane's engine state");
-                    self.replace_runner();
-                    Err(BatchError::Inference("the engine panicked".into()))
-                }
-            };
+            let answer = self.run_one(&job, started, size);
+            if i + 1 == size {
+                last = Some((job, answer));
+            } else {
+                let _ = job.reply.send(answer);
+            }
+        }
+        // Record the pass before its last answer leaves, so that a client that reads
+        // /metrics right after its answer sees its pass counted.
+        self.metrics
+            .inference_duration
+            .observe(started.elapsed().as_secs_f64());
+        if let Some((job, answer)) = last {
             let _ = job.reply.send(answer);
         }
-        self.metrics.inference_duration.observe(started.elapsed().as_secs_f64());
+    }
+
+    fn run_one(&mut self, job: &Job, started: Instant, size: usize) -> Result<Scored, BatchError> {
+        let t = Instant::now();
+        let result = catch_unwind(AssertUnwindSafe(|| self.runner.run(&job.tensor)));
+        let infer = t.elapsed();
+        match result {
+            Ok(Ok(scores)) => Ok(Scored {
+                scores,
+                wait: started - job.enqueued,
+                infer,
+                pass_size: size,
+            }),
+            Ok(Err(e)) => {
+                self.metrics.lane_failures.inc();
+                tracing::error!(model = %self.model.name, cause = %e, "inference failed");
+                Err(BatchError::Inference(e.to_string()))
+            }
+            Err(_) => {
+                self.metrics.lane_failures.inc();
+                tracing::error!(model = %self.model.name, "inference panicked; replacing the lane's engine state");
+                self.replace_runner();
+                Err(BatchError::Inference("the engine panicked".into()))
+            }
+        }
     }
 
     fn replace_runner(&mut self) {
         match self.model.runner() {
             Ok(r) => self.runner = r,
             // Keep the old state: it may still work, and a lane with none cannot serve.
-            Err(e) => tracing::error!(model = %self.model.name, cause = %e, "cannot replace engine state"),
+            Err(e) => {
+                tracing::error!(model = %self.model.name, cause = %e, "cannot replace engine state")
+            }
         }
     }
 }

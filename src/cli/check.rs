@@ -77,14 +77,24 @@ pub fn report(mc: &ModelConfig, model: &Model, single: Option<Duration>) -> Stri
         ScoreTransform::FromGraph => "graph ends in Softmax: used as they are",
         ScoreTransform::Softmax => "logits: lineside applies softmax",
     };
-    let _ = writeln!(s, "  output      {:?} [{}], {} classes; {scores}", c.output_name, c.output_shape.join(", "), c.classes);
+    let _ = writeln!(
+        s,
+        "  output      {:?} [{}], {} classes; {scores}",
+        c.output_name,
+        c.output_shape.join(", "),
+        c.classes
+    );
     let _ = writeln!(s, "  labels      {}", model.labels.join(", "));
     let _ = writeln!(
         s,
         "  preprocess  {:?} {:?} to {}x{}, {:?}, x = (p / {} - mean) / std, mean {:?}, std {:?}",
         p.resize, p.filter, p.width, p.height, p.channels, p.divisor, p.mean, p.std
     );
-    let _ = writeln!(s, "  load        {:.0} ms (parse, check, plan, warm)", model.load_time.as_secs_f64() * 1e3);
+    let _ = writeln!(
+        s,
+        "  load        {:.0} ms (parse, check, plan, warm)",
+        model.load_time.as_secs_f64() * 1e3
+    );
     match single {
         Some(d) => {
             let _ = writeln!(

@@ -8,7 +8,7 @@
 
 use std::io::Cursor;
 
-use image::{DynamicImage, ImageDecoder, ImageError, ImageReader, Limits, RgbImage};
+use image::{DynamicImage, ImageDecoder, ImageError, ImageFormat, ImageReader, Limits, RgbImage};
 
 use super::PreprocessError;
 
@@ -25,10 +25,20 @@ pub fn decode(bytes: &[u8], max_pixels: u64) -> Result<RgbImage, PreprocessError
     let mut reader = ImageReader::new(Cursor::new(bytes))
         .with_guessed_format()
         .map_err(|e| PreprocessError::BadImage(e.to_string()))?;
-    if reader.format().is_none() {
-        return Err(PreprocessError::BadImage(
-            "not a recognised image format (expected JPEG, PNG, BMP, TIFF or WebP)".into(),
-        ));
+    match reader.format() {
+        None => {
+            return Err(PreprocessError::BadImage(
+                "not a recognised image format (expected JPEG, PNG, BMP, TIFF or WebP)".into(),
+            ));
+        }
+        // The JPEG decoder fills a truncated scan with grey and reports success; a cut-off
+        // frame (a dropped camera connection) must not be classified as if it were whole.
+        Some(ImageFormat::Jpeg) if !ends_with_eoi(bytes) => {
+            return Err(PreprocessError::BadImage(
+                "truncated JPEG: the data does not end with the end-of-image marker (FF D9)".into(),
+            ));
+        }
+        Some(_) => {}
     }
     let side = u32::try_from(max_pixels).unwrap_or(u32::MAX);
     let mut limits = Limits::default();
@@ -47,17 +57,31 @@ pub fn decode(bytes: &[u8], max_pixels: u64) -> Result<RgbImage, PreprocessError
     Ok(img.into_rgb8())
 }
 
+/// Whether JPEG data ends with its EOI marker (ITU-T T.81, B.2.1), ignoring zero padding that
+/// some cameras append after it.
+fn ends_with_eoi(bytes: &[u8]) -> bool {
+    let end = bytes.iter().rposition(|&b| b != 0).map_or(0, |i| i + 1);
+    bytes[..end].ends_with(&[0xff, 0xd9])
+}
+
 /// Refuse a frame larger than `max_pixels`.
 fn check_pixels(w: u32, h: u32, max_pixels: u64) -> Result<(), PreprocessError> {
     if u64::from(w) * u64::from(h) > max_pixels {
-        return Err(PreprocessError::TooLarge { width: w, height: h, max_pixels });
+        return Err(PreprocessError::TooLarge {
+            width: w,
+            height: h,
+            max_pixels,
+        });
     }
     Ok(())
 }
 
 fn classify(e: ImageError, max_pixels: u64) -> PreprocessError {
     match e {
-        ImageError::Limits(l) => PreprocessError::TooLargeUnknown { max_pixels, detail: l.to_string() },
+        ImageError::Limits(l) => PreprocessError::TooLargeUnknown {
+            max_pixels,
+            detail: l.to_string(),
+        },
         ImageError::Unsupported(u) => PreprocessError::Unsupported(u.to_string()),
         other => PreprocessError::BadImage(other.to_string()),
     }
@@ -70,7 +94,8 @@ mod tests {
     fn png(w: u32, h: u32) -> Vec<u8> {
         let img = RgbImage::from_fn(w, h, |x, y| image::Rgb([x as u8, y as u8, 7]));
         let mut out = Vec::new();
-        img.write_to(&mut Cursor::new(&mut out), image::ImageFormat::Png).unwrap();
+        img.write_to(&mut Cursor::new(&mut out), image::ImageFormat::Png)
+            .unwrap();
         out
     }
 
@@ -84,15 +109,52 @@ mod tests {
     #[test]
     fn empty_random_and_truncated_bodies_are_bad_images() {
         assert!(matches!(decode(b"", 1000), Err(PreprocessError::Empty)));
-        assert!(matches!(decode(b"hello, this is text", 1000), Err(PreprocessError::BadImage(_))));
+        assert!(matches!(
+            decode(b"hello, this is text", 1000),
+            Err(PreprocessError::BadImage(_))
+        ));
         let p = png(20, 20);
-        assert!(matches!(decode(&p[..p.len() / 2], 1000), Err(PreprocessError::BadImage(_))));
+        assert!(matches!(
+            decode(&p[..p.len() / 2], 1000),
+            Err(PreprocessError::BadImage(_))
+        ));
+    }
+
+    #[test]
+    fn truncated_jpeg_is_a_bad_image_and_padding_after_eoi_is_fine() {
+        let img = RgbImage::from_fn(64, 48, |x, y| {
+            image::Rgb([(x * 4) as u8, (y * 5) as u8, 90])
+        });
+        let mut jpeg = Vec::new();
+        img.write_to(&mut Cursor::new(&mut jpeg), ImageFormat::Jpeg)
+            .unwrap();
+        assert!(decode(&jpeg, 1 << 20).is_ok());
+        for cut in [jpeg.len() / 3, jpeg.len() - 2] {
+            let err = decode(&jpeg[..cut], 1 << 20).unwrap_err();
+            assert!(
+                matches!(err, PreprocessError::BadImage(ref m) if m.contains("truncated JPEG")),
+                "{cut}: {err:?}"
+            );
+        }
+        let mut padded = jpeg.clone();
+        padded.extend_from_slice(&[0, 0, 0, 0]);
+        assert!(decode(&padded, 1 << 20).is_ok());
     }
 
     #[test]
     fn pixel_limit_is_checked_from_the_header() {
         let err = decode(&png(40, 30), 1199).unwrap_err();
-        assert!(matches!(err, PreprocessError::TooLarge { width: 40, height: 30, max_pixels: 1199 }), "{err:?}");
+        assert!(
+            matches!(
+                err,
+                PreprocessError::TooLarge {
+                    width: 40,
+                    height: 30,
+                    max_pixels: 1199
+                }
+            ),
+            "{err:?}"
+        );
         assert!(decode(&png(40, 30), 1200).is_ok());
     }
 
@@ -106,7 +168,13 @@ mod tests {
         let crc = crc32(&p[12..29]);
         p[29..33].copy_from_slice(&crc.to_be_bytes());
         let err = decode(&p, 40_000_000).unwrap_err();
-        assert!(matches!(err, PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. }), "{err:?}");
+        assert!(
+            matches!(
+                err,
+                PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. }
+            ),
+            "{err:?}"
+        );
     }
 
     /// CRC-32 (ISO 3309 / PNG spec section 5.5), bitwise.
@@ -115,7 +183,11 @@ mod tests {
         for &b in data {
             c ^= u32::from(b);
             for _ in 0..8 {
-                c = if c & 1 != 0 { 0xedb8_8320 ^ (c >> 1) } else { c >> 1 };
+                c = if c & 1 != 0 {
+                    0xedb8_8320 ^ (c >> 1)
+                } else {
+                    c >> 1
+                };
             }
         }
         !c

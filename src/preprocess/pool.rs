@@ -46,14 +46,19 @@ impl CpuPool {
         let (tx, rx) = bounded::<Job>(capacity);
         for i in 0..threads {
             let rx = rx.clone();
-            std::thread::Builder::new().name(format!("{name}-{i}")).spawn(move || {
-                // Ends when every sender is gone.
-                for job in rx {
-                    job();
-                }
-            })?;
+            std::thread::Builder::new()
+                .name(format!("{name}-{i}"))
+                .spawn(move || {
+                    // Ends when every sender is gone.
+                    for job in rx {
+                        job();
+                    }
+                })?;
         }
-        Ok(CpuPool { tx: Arc::new(tx), capacity })
+        Ok(CpuPool {
+            tx: Arc::new(tx),
+            capacity,
+        })
     }
 
     /// Run `f` on a pool thread and await its result.
@@ -102,7 +107,8 @@ mod tests {
         assert_eq!(pool.run(|| "still here").await, Ok("still here"));
     }
 
-    #[tokio::test]
+    // Multi-threaded: the test thread blocks on a std channel while a task submits the job.
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
     async fn full_queue_is_refused_at_once() {
         let pool = CpuPool::new("t", 1, 1).unwrap();
         let (hold_tx, hold_rx) = std::sync::mpsc::channel::<()>();
@@ -118,7 +124,9 @@ mod tests {
                 .await
             })
         };
-        started_rx.recv().unwrap();
+        started_rx
+            .recv_timeout(std::time::Duration::from_secs(10))
+            .unwrap();
         // One job fits in the queue...
         let queued = {
             let pool = pool.clone();
