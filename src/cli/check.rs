@@ -85,10 +85,18 @@ pub fn report(mc: &ModelConfig, model: &Model, single: Option<Duration>) -> Stri
         c.classes
     );
     let _ = writeln!(s, "  labels      {}", model.labels.join(", "));
+    let word = |d: &dyn std::fmt::Debug| format!("{d:?}").to_lowercase();
     let _ = writeln!(
         s,
-        "  preprocess  {:?} {:?} to {}x{}, {:?}, x = (p / {} - mean) / std, mean {:?}, std {:?}",
-        p.resize, p.filter, p.width, p.height, p.channels, p.divisor, p.mean, p.std
+        "  preprocess  resize = \"{}\" to {}x{}, filter = \"{}\", channels = \"{}\", x = (pixel / {} - mean) / std, mean {:?}, std {:?}",
+        word(&p.resize),
+        p.width,
+        p.height,
+        word(&p.filter),
+        word(&p.channels),
+        p.divisor,
+        p.mean,
+        p.std
     );
     let _ = writeln!(
         s,

@@ -74,3 +74,92 @@ async fn sixteen_clients_for_three_seconds_all_answered_and_counted() {
     eprintln!("16 clients, 3 s: {n} requests answered 200");
     server.stop().await.unwrap();
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_burst_beyond_the_queues_gets_503_overloaded_at_once_and_the_rest_are_answered() {
+    // One decode thread with one queue slot, one lane with a backlog of one: a burst of 64
+    // simultaneous requests cannot all wait, and those that cannot are refused, not lost.
+    let text = std::fs::read_to_string(crate::util::root().join("config/lineside.toml"))
+        .unwrap()
+        .replace("# decode_threads = 2", "decode_threads = 1")
+        .replace("# decode_backlog = 256", "decode_backlog = 1")
+        .replace("backlog = 64 ", "backlog = 1 ")
+        .replace("lanes = \"auto\"", "lanes = 1");
+    let server = TestServer::start(crate::util::config_from_text(&text)).await;
+    // A 1600x1200 JPEG takes ~10 ms to decode, so the burst's requests overlap even on a
+    // slow machine that opens its 64 connections one after another.
+    let big = image::imageops::resize(
+        &image::load_from_memory(&samples()[0].bytes)
+            .unwrap()
+            .into_rgb8(),
+        1600,
+        1200,
+        image::imageops::FilterType::Triangle,
+    );
+    let mut body = Vec::new();
+    big.write_to(
+        &mut std::io::Cursor::new(&mut body),
+        image::ImageFormat::Jpeg,
+    )
+    .unwrap();
+    let c = reqwest::Client::builder()
+        .timeout(Duration::from_secs(30))
+        .build()
+        .unwrap();
+    let burst: Vec<_> = (0..64)
+        .map(|_| {
+            let (c, url, body) = (c.clone(), server.url("/classify/washers"), body.clone());
+            tokio::spawn(async move {
+                let r = c.post(url).body(body).send().await.unwrap();
+                let status = r.status().as_u16();
+                let retry = r
+                    .headers()
+                    .get("retry-after")
+                    .map(|v| v.to_str().unwrap().to_string());
+                let v: serde_json::Value = r.json().await.unwrap();
+                (status, retry, v)
+            })
+        })
+        .collect();
+    let (mut ok, mut refused) = (0.0, 0.0);
+    for t in burst {
+        let (status, retry, v) = t.await.unwrap();
+        match status {
+            200 => ok += 1.0,
+            503 => {
+                assert_eq!(v["error"]["kind"], "overloaded", "{v}");
+                assert!(retry.is_some(), "503 overloaded carries Retry-After");
+                refused += 1.0;
+            }
+            other => panic!("unexpected status {other}: {v}"),
+        }
+    }
+    assert!(
+        refused >= 1.0,
+        "a 64-request burst into queues of one refuses some ({ok} ok)"
+    );
+    assert!(ok >= 1.0);
+    let m = parse_metrics(
+        &reqwest::get(server.url("/metrics"))
+            .await
+            .unwrap()
+            .text()
+            .await
+            .unwrap(),
+    );
+    assert_eq!(
+        metric(
+            &m,
+            r#"lineside_request_duration_seconds_count{model="washers",outcome="ok"}"#
+        ),
+        ok
+    );
+    assert_eq!(
+        metric(
+            &m,
+            r#"lineside_request_duration_seconds_count{model="washers",outcome="overloaded"}"#
+        ),
+        refused
+    );
+    server.stop().await.unwrap();
+}
