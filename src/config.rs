@@ -19,14 +19,8 @@ const BUILTIN_TOML: &str = include_str!("../config/lineside.toml");
 /// Files the built-in config refers to, embedded so that `lineside serve` works anywhere.
 /// Keys are the paths exactly as `config/lineside.toml` writes them.
 const EMBEDDED: &[(&str, &[u8])] = &[
-    (
-        "../models/washers/classifier.onnx",
-        include_bytes!("../models/washers/classifier.onnx"),
-    ),
-    (
-        "../models/washers/classes.txt",
-        include_bytes!("../models/washers/classes.txt"),
-    ),
+    ("../models/washers/classifier.onnx", include_bytes!("../models/washers/classifier.onnx")),
+    ("../models/washers/classes.txt", include_bytes!("../models/washers/classes.txt")),
 ];
 
 /// Where a config value came from, for error messages.
@@ -84,9 +78,7 @@ impl Source {
     pub fn read(&self) -> anyhow::Result<Vec<u8>> {
         use anyhow::Context as _;
         match self {
-            Source::File(p) => {
-                std::fs::read(p).with_context(|| format!("cannot read {}", p.display()))
-            }
+            Source::File(p) => std::fs::read(p).with_context(|| format!("cannot read {}", p.display())),
             Source::Embedded { bytes, .. } => Ok(bytes.to_vec()),
         }
     }
@@ -362,8 +354,7 @@ impl Config {
     /// As [`Config::load`].
     pub fn from_file(path: &Path, overrides: &Overrides) -> anyhow::Result<Config> {
         use anyhow::Context as _;
-        let text = std::fs::read_to_string(path)
-            .with_context(|| format!("cannot read config {}", path.display()))?;
+        let text = std::fs::read_to_string(path).with_context(|| format!("cannot read config {}", path.display()))?;
         let base = path.parent().unwrap_or(Path::new("."));
         let origin = path.display().to_string();
         Self::from_toml(&text, &origin, &|p| Source::File(base.join(p)), overrides)
@@ -412,32 +403,22 @@ fn validate(
     overrides: &Overrides,
 ) -> Result<Config, String> {
     let s = raw.server;
-    let listen_text = overrides
-        .listen
-        .clone()
-        .or(s.listen)
-        .unwrap_or_else(|| defaults::LISTEN.into());
-    let listen: SocketAddr = listen_text.parse().map_err(|_| {
-        format!("server.listen = {listen_text:?} is not an address like \"127.0.0.1:8080\"")
-    })?;
+    let listen_text = overrides.listen.clone().or(s.listen).unwrap_or_else(|| defaults::LISTEN.into());
+    let listen: SocketAddr = listen_text
+        .parse()
+        .map_err(|_| format!("server.listen = {listen_text:?} is not an address like \"127.0.0.1:8080\""))?;
     let body_limit = s.body_limit_bytes.unwrap_or(defaults::BODY_LIMIT_BYTES);
     if body_limit == 0 || body_limit > 1 << 30 {
-        return Err(format!(
-            "server.body_limit_bytes = {body_limit}: expected 1 ..= 1073741824"
-        ));
+        return Err(format!("server.body_limit_bytes = {body_limit}: expected 1 ..= 1073741824"));
     }
     let max_pixels = s.max_pixels.unwrap_or(defaults::MAX_PIXELS);
     if max_pixels == 0 {
         return Err("server.max_pixels = 0: expected at least 1".into());
     }
-    let cores = std::thread::available_parallelism()
-        .map(|n| n.get())
-        .unwrap_or(1);
+    let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
     let decode_threads = s.decode_threads.unwrap_or(cores);
     if decode_threads == 0 || decode_threads > 256 {
-        return Err(format!(
-            "server.decode_threads = {decode_threads}: expected 1 ..= 256"
-        ));
+        return Err(format!("server.decode_threads = {decode_threads}: expected 1 ..= 256"));
     }
     let decode_backlog = s.decode_backlog.unwrap_or(defaults::DECODE_BACKLOG);
     if decode_backlog == 0 {
@@ -458,22 +439,13 @@ fn validate(
     };
 
     if raw.models.is_empty() {
-        return Err(
-            "no [[models]] table: add at least one model (see config/lineside.toml)".into(),
-        );
+        return Err("no [[models]] table: add at least one model (see config/lineside.toml)".into());
     }
     let mut models: Vec<ModelConfig> = Vec::new();
     for (i, m) in raw.models.into_iter().enumerate() {
         let ctx = format!("[[models]] #{} ({:?})", i + 1, m.name);
-        if m.name.is_empty()
-            || !m
-                .name
-                .chars()
-                .all(|c| c.is_ascii_alphanumeric() || c == '_' || c == '-' || c == '.')
-        {
-            return Err(format!(
-                "{ctx}: name must be non-empty and use only letters, digits, '_', '-', '.'"
-            ));
+        if m.name.is_empty() || !m.name.chars().all(|c| c.is_ascii_alphanumeric() || c == '_' || c == '-' || c == '.') {
+            return Err(format!("{ctx}: name must be non-empty and use only letters, digits, '_', '-', '.'"));
         }
         if models.iter().any(|o| o.name == m.name) {
             return Err(format!("{ctx}: the name {:?} is used twice", m.name));
@@ -488,11 +460,7 @@ fn validate(
             batching,
         });
     }
-    Ok(Config {
-        origin: origin.to_string(),
-        server,
-        models,
-    })
+    Ok(Config { origin: origin.to_string(), server, models })
 }
 
 fn positive(key: &str, v: Option<u64>, default: u64) -> Result<u64, String> {
@@ -525,18 +493,14 @@ fn validate_preprocess(p: RawPreprocess) -> Result<PreprocessConfig, String> {
             ));
         }
         if let Some(bad) = v.iter().find(|x| !x.is_finite()) {
-            return Err(format!(
-                "preprocess.{key} contains {bad}: expected finite numbers"
-            ));
+            return Err(format!("preprocess.{key} contains {bad}: expected finite numbers"));
         }
         Ok(v)
     };
     let mean = per_channel("mean", p.mean, 0.0)?;
     let std = per_channel("std", p.std, 1.0)?;
     if let Some(bad) = std.iter().find(|x| **x <= 0.0) {
-        return Err(format!(
-            "preprocess.std contains {bad}: every std must be > 0"
-        ));
+        return Err(format!("preprocess.std contains {bad}: every std must be > 0"));
     }
     Ok(PreprocessConfig {
         width: p.width,
@@ -554,15 +518,11 @@ fn validate_preprocess(p: RawPreprocess) -> Result<PreprocessConfig, String> {
 fn validate_batching(b: RawBatching) -> Result<BatchingConfig, String> {
     let batch_cap = b.batch_cap.unwrap_or(defaults::BATCH_CAP);
     if !(1..=256).contains(&batch_cap) {
-        return Err(format!(
-            "batching.batch_cap = {batch_cap}: expected 1 ..= 256"
-        ));
+        return Err(format!("batching.batch_cap = {batch_cap}: expected 1 ..= 256"));
     }
     let gather_us = b.gather_us.unwrap_or(defaults::GATHER_US);
     if gather_us > 1_000_000 {
-        return Err(format!(
-            "batching.gather_us = {gather_us}: expected at most 1000000 (one second)"
-        ));
+        return Err(format!("batching.gather_us = {gather_us}: expected at most 1000000 (one second)"));
     }
     let backlog = b.backlog.unwrap_or(defaults::BACKLOG);
     if backlog == 0 {
@@ -573,14 +533,10 @@ fn validate_batching(b: RawBatching) -> Result<BatchingConfig, String> {
         Some(RawLanes::Word(w)) if w == "auto" => Lanes::Auto,
         Some(RawLanes::Count(n)) if (1..=64).contains(&n) => Lanes::Fixed(n as usize),
         Some(RawLanes::Word(w)) => {
-            return Err(format!(
-                "batching.lanes = {w:?}: expected \"auto\" or a number 1 ..= 64"
-            ));
+            return Err(format!("batching.lanes = {w:?}: expected \"auto\" or a number 1 ..= 64"));
         }
         Some(RawLanes::Count(n)) => {
-            return Err(format!(
-                "batching.lanes = {n}: expected \"auto\" or a number 1 ..= 64"
-            ));
+            return Err(format!("batching.lanes = {n}: expected \"auto\" or a number 1 ..= 64"));
         }
     };
     let lane_threads = b.lane_threads.unwrap_or(defaults::LANE_THREADS);
@@ -591,13 +547,7 @@ fn validate_batching(b: RawBatching) -> Result<BatchingConfig, String> {
             "batching.lane_threads = {lane_threads}: only 1 is supported by this build; use more lanes instead"
         ));
     }
-    Ok(BatchingConfig {
-        batch_cap,
-        gather: Duration::from_micros(gather_us),
-        backlog,
-        lanes,
-        lane_threads,
-    })
+    Ok(BatchingConfig { batch_cap, gather: Duration::from_micros(gather_us), backlog, lanes, lane_threads })
 }
 
 #[cfg(test)]
@@ -605,13 +555,8 @@ mod tests {
     use super::*;
 
     fn parse(text: &str) -> Result<Config, String> {
-        Config::from_toml(
-            text,
-            "test.toml",
-            &|p| Source::File(PathBuf::from("/base").join(p)),
-            &Overrides::default(),
-        )
-        .map_err(|e| format!("{e:#}"))
+        Config::from_toml(text, "test.toml", &|p| Source::File(PathBuf::from("/base").join(p)), &Overrides::default())
+            .map_err(|e| format!("{e:#}"))
     }
 
     const MINIMAL: &str = r#"
@@ -631,10 +576,7 @@ height = 32
         let m = &cfg.models[0];
         assert_eq!(m.name, "washers");
         for src in [&m.onnx, &m.labels] {
-            assert!(
-                matches!(src, Source::Embedded { .. }),
-                "not embedded: {src:?}"
-            );
+            assert!(matches!(src, Source::Embedded { .. }), "not embedded: {src:?}");
         }
         assert_eq!(cfg.server.listen.to_string(), "127.0.0.1:8080");
     }
@@ -665,34 +607,22 @@ height = 32
     #[test]
     fn unknown_key_in_server_is_refused() {
         let err = parse(&format!("[server]\nlisten_port = 1\n{MINIMAL}")).unwrap_err();
-        assert!(
-            err.contains("listen_port") && err.contains("line 2"),
-            "{err}"
-        );
+        assert!(err.contains("listen_port") && err.contains("line 2"), "{err}");
     }
 
     #[test]
     fn mean_length_must_match_channels() {
         let text = MINIMAL.replace("height = 32", "height = 32\nmean = [0.5, 0.5]");
         let err = parse(&text).unwrap_err();
-        assert!(
-            err.contains("preprocess.mean has 2 values, expected 3"),
-            "{err}"
-        );
-        let gray = MINIMAL.replace(
-            "height = 32",
-            "height = 32\nchannels = \"gray\"\nmean = [0.5]\nstd = [0.25]",
-        );
+        assert!(err.contains("preprocess.mean has 2 values, expected 3"), "{err}");
+        let gray = MINIMAL.replace("height = 32", "height = 32\nchannels = \"gray\"\nmean = [0.5]\nstd = [0.25]");
         assert_eq!(parse(&gray).unwrap().models[0].preprocess.std, vec![0.25]);
     }
 
     #[test]
     fn bad_values_are_refused_with_the_key() {
         for (edit, needle) in [
-            (
-                "height = 32\nstd = [1.0, 0.0, 1.0]",
-                "every std must be > 0",
-            ),
+            ("height = 32\nstd = [1.0, 0.0, 1.0]", "every std must be > 0"),
             ("height = 32\ndivisor = 0.0", "preprocess.divisor"),
             ("height = 32\nresize = \"squash\"", "squash"),
             ("height = 0", "preprocess.height = 0"),
@@ -723,9 +653,7 @@ height = 32
 
     #[test]
     fn listen_flag_overrides_file() {
-        let o = Overrides {
-            listen: Some("0.0.0.0:9000".into()),
-        };
+        let o = Overrides { listen: Some("0.0.0.0:9000".into()) };
         let cfg = Config::builtin(&o).unwrap();
         assert_eq!(cfg.server.listen.to_string(), "0.0.0.0:9000");
     }

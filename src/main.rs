@@ -10,10 +10,7 @@ fn main() -> ExitCode {
     let cli = Cli::parse();
     let filter = tracing_subscriber::EnvFilter::try_from_env("LINESIDE_LOG")
         .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
-    tracing_subscriber::fmt()
-        .with_env_filter(filter)
-        .with_writer(std::io::stderr)
-        .init();
+    tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).init();
     let result = match cli.command {
         Command::Serve(args) => lineside::cli::serve::run(args),
         Command::Check(args) => lineside::cli::check::run(args),

@@ -10,26 +10,18 @@ use axum::extract::{MatchedPath, Request, State};
 use axum::middleware::Next;
 use axum::response::Response;
 use prometheus::{
-    Encoder, Histogram, HistogramOpts, HistogramVec, IntCounter, IntCounterVec, IntGauge,
-    IntGaugeVec, Opts, Registry, TextEncoder,
+    Encoder, Histogram, HistogramOpts, HistogramVec, IntCounter, IntCounterVec, IntGauge, IntGaugeVec, Opts, Registry,
+    TextEncoder,
 };
 
 /// Outcome label values of `lineside_request_duration_seconds` (the error kinds, and `ok`).
-pub const OUTCOMES: &[&str] = &[
-    "ok",
-    "bad_request",
-    "bad_image",
-    "too_large",
-    "unsupported_format",
-    "overloaded",
-    "not_ready",
-    "internal",
-];
+pub const OUTCOMES: &[&str] =
+    &["ok", "bad_request", "bad_image", "too_large", "unsupported_format", "overloaded", "not_ready", "internal"];
 
 /// Duration buckets in seconds: 0.25 ms to 10 s, dense where a line's cycle time sits.
 const LATENCY_BUCKETS: &[f64] = &[
-    0.000_25, 0.000_5, 0.001, 0.002, 0.003, 0.005, 0.007_5, 0.01, 0.015, 0.02, 0.03, 0.05, 0.075,
-    0.1, 0.15, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0,
+    0.000_25, 0.000_5, 0.001, 0.002, 0.003, 0.005, 0.007_5, 0.01, 0.015, 0.02, 0.03, 0.05, 0.075, 0.1, 0.15, 0.25, 0.5,
+    1.0, 2.5, 5.0, 10.0,
 ];
 
 /// All of the server's metrics.
@@ -71,9 +63,7 @@ pub struct ModelMetrics {
 impl ModelMetrics {
     /// Record one classify request's total duration under its outcome.
     pub fn observe_request(&self, outcome: &str, seconds: f64) {
-        self.request_duration
-            .with_label_values(&[self.model.as_str(), outcome])
-            .observe(seconds);
+        self.request_duration.with_label_values(&[self.model.as_str(), outcome]).observe(seconds);
     }
 }
 
@@ -87,10 +77,7 @@ impl Metrics {
     pub fn new() -> Metrics {
         let registry = must(Registry::new_custom(Some("lineside".into()), None));
         let hist = |name: &str, help: &str, labels: &[&str], buckets: Vec<f64>| {
-            let h = must(HistogramVec::new(
-                HistogramOpts::new(name, help).buckets(buckets),
-                labels,
-            ));
+            let h = must(HistogramVec::new(HistogramOpts::new(name, help).buckets(buckets), labels));
             must(registry.register(Box::new(h.clone())));
             h
         };
@@ -130,21 +117,14 @@ impl Metrics {
             must(registry.register(Box::new(c.clone())));
             c
         };
-        let lane_failures = counter(
-            "lane_failures_total",
-            "Inference errors and panics inside a lane.",
-            &["model"],
-        );
+        let lane_failures = counter("lane_failures_total", "Inference errors and panics inside a lane.", &["model"]);
         let abandoned = counter(
             "abandoned_total",
             "Requests dropped before inference because the client disconnected.",
             &["model"],
         );
-        let http_requests = counter(
-            "http_requests_total",
-            "HTTP responses, by matched route and status.",
-            &["route", "status"],
-        );
+        let http_requests =
+            counter("http_requests_total", "HTTP responses, by matched route and status.", &["route", "status"]);
         Metrics {
             registry,
             request_duration,
@@ -196,16 +176,10 @@ impl Default for Metrics {
 
 /// Middleware: count every response by matched route and status.
 pub async fn track_http(State(metrics): State<Metrics>, req: Request, next: Next) -> Response {
-    let route = req
-        .extensions()
-        .get::<MatchedPath>()
-        .map(|p| p.as_str().to_owned())
-        .unwrap_or_else(|| "unmatched".to_owned());
+    let route =
+        req.extensions().get::<MatchedPath>().map(|p| p.as_str().to_owned()).unwrap_or_else(|| "unmatched".to_owned());
     let resp = next.run(req).await;
-    metrics
-        .http_requests
-        .with_label_values(&[route.as_str(), resp.status().as_str()])
-        .inc();
+    metrics.http_requests.with_label_values(&[route.as_str(), resp.status().as_str()]).inc();
     resp
 }
 
@@ -220,25 +194,12 @@ mod tests {
         mm.observe_request("ok", 0.004);
         mm.pass_size.observe(3.0);
         let text = m.render();
+        assert!(text.contains("lineside_request_duration_seconds_count{model=\"washers\",outcome=\"ok\"} 1"), "{text}");
         assert!(
-            text.contains(
-                "lineside_request_duration_seconds_count{model=\"washers\",outcome=\"ok\"} 1"
-            ),
+            text.contains("lineside_request_duration_seconds_count{model=\"washers\",outcome=\"bad_image\"} 0"),
             "{text}"
         );
-        assert!(
-            text.contains(
-                "lineside_request_duration_seconds_count{model=\"washers\",outcome=\"bad_image\"} 0"
-            ),
-            "{text}"
-        );
-        assert!(
-            text.contains("lineside_pass_size_requests_bucket{model=\"washers\",le=\"4\"} 1"),
-            "{text}"
-        );
-        assert!(
-            text.contains("lineside_backlog_depth{model=\"washers\"} 0"),
-            "{text}"
-        );
+        assert!(text.contains("lineside_pass_size_requests_bucket{model=\"washers\",le=\"4\"} 1"), "{text}");
+        assert!(text.contains("lineside_backlog_depth{model=\"washers\"} 0"), "{text}");
     }
 }

@@ -48,24 +48,15 @@ pub async fn run(
     options: RunOptions,
 ) -> anyhow::Result<()> {
     let metrics = Metrics::new();
-    let pool = CpuPool::new(
-        "decode",
-        config.server.decode_threads,
-        config.server.decode_backlog,
-    )
-    .context("cannot start the decode threads")?;
+    let pool = CpuPool::new("decode", config.server.decode_threads, config.server.decode_backlog)
+        .context("cannot start the decode threads")?;
     let (ready_tx, ready_rx) = watch::channel(Readiness::Loading("waiting to start".into()));
-    let state = AppState {
-        readiness: ready_rx,
-        metrics: metrics.clone(),
-        pool,
-        body_limit: config.server.body_limit_bytes,
-    };
+    let state =
+        AppState { readiness: ready_rx, metrics: metrics.clone(), pool, body_limit: config.server.body_limit_bytes };
     let app = crate::http::router(state);
 
     // The loader owns nothing the server needs; it reports back once.
-    let (loaded_tx, mut loaded_rx) =
-        oneshot::channel::<anyhow::Result<(Arc<Served>, Vec<BatcherGuard>)>>();
+    let (loaded_tx, mut loaded_rx) = oneshot::channel::<anyhow::Result<(Arc<Served>, Vec<BatcherGuard>)>>();
     {
         let config = config.clone();
         let ready_tx = ready_tx.clone();
@@ -74,10 +65,7 @@ pub async fn run(
             if let Some(gate) = gate {
                 let _ = gate.await;
             }
-            let _ = ready_tx.send(Readiness::Loading(format!(
-                "loading {} model(s)",
-                config.models.len()
-            )));
+            let _ = ready_tx.send(Readiness::Loading(format!("loading {} model(s)", config.models.len())));
             let result = tokio::task::spawn_blocking(move || load_all(&config, &metrics))
                 .await
                 .unwrap_or_else(|e| Err(anyhow::anyhow!("model loader panicked: {e}")));
@@ -86,10 +74,7 @@ pub async fn run(
     }
 
     let mut builder = Builder::new(TokioExecutor::new());
-    builder
-        .http1()
-        .timer(TokioTimer::new())
-        .header_read_timeout(config.server.header_timeout);
+    builder.http1().timer(TokioTimer::new()).header_read_timeout(config.server.header_timeout);
     let graceful = GracefulShutdown::new();
     let mut guards: Vec<BatcherGuard> = Vec::new();
     let mut served: Option<Arc<Served>> = None;
@@ -150,14 +135,8 @@ pub async fn run(
     }
     drop(listener);
     let drain = config.server.drain;
-    if tokio::time::timeout(drain, graceful.shutdown())
-        .await
-        .is_err()
-    {
-        tracing::warn!(
-            drain_ms = drain.as_millis() as u64,
-            "drain deadline passed; closing remaining connections"
-        );
+    if tokio::time::timeout(drain, graceful.shutdown()).await.is_err() {
+        tracing::warn!(drain_ms = drain.as_millis() as u64, "drain deadline passed; closing remaining connections");
     }
     // Stops the lanes; anything still queued is answered `ShuttingDown`.
     drop(guards);
@@ -171,10 +150,7 @@ pub async fn run(
 }
 
 /// Load every model and start its lanes.
-fn load_all(
-    config: &Config,
-    metrics: &Metrics,
-) -> anyhow::Result<(Arc<Served>, Vec<BatcherGuard>)> {
+fn load_all(config: &Config, metrics: &Metrics) -> anyhow::Result<(Arc<Served>, Vec<BatcherGuard>)> {
     let mut served = Served::new();
     let mut guards = Vec::new();
     for mc in &config.models {
@@ -187,21 +163,9 @@ fn load_all(
         );
         let mm = metrics.for_model(&mc.name);
         let (batcher, guard) = Batcher::start(Arc::clone(&model), &mc.batching, mm.clone())?;
-        let pipeline = Pipeline::new(
-            mc.preprocess.clone(),
-            model.contract.layout,
-            config.server.max_pixels,
-        );
+        let pipeline = Pipeline::new(mc.preprocess.clone(), model.contract.layout, config.server.max_pixels);
         guards.push(guard);
-        served.insert(
-            mc.name.clone(),
-            ServedModel {
-                model,
-                pipeline: Arc::new(pipeline),
-                batcher,
-                metrics: mm,
-            },
-        );
+        served.insert(mc.name.clone(), ServedModel { model, pipeline: Arc::new(pipeline), batcher, metrics: mm });
     }
     Ok((Arc::new(served), guards))
 }

@@ -108,9 +108,7 @@ pub struct BatcherGuard {
 /// Lanes for `Lanes::Auto`: one single-threaded lane per core. Two lanes x 1 thread used
 /// 1.95 of 2 cores here, against 1.2-1.8 for one 2-thread plan (FACTS.md).
 pub fn auto_lanes() -> usize {
-    std::thread::available_parallelism()
-        .map(|n| n.get())
-        .unwrap_or(1)
+    std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1)
 }
 
 impl Batcher {
@@ -129,30 +127,13 @@ impl Batcher {
             Lanes::Auto => auto_lanes(),
             Lanes::Fixed(n) => n,
         };
-        let gather = Gather {
-            cap: cfg.batch_cap,
-            window: cfg.gather,
-            stacks: false,
-        };
+        let gather = Gather { cap: cfg.batch_cap, window: cfg.gather, stacks: false };
         for i in 0..lanes {
-            let lane = worker::Lane::new(
-                Arc::clone(&model),
-                rx.clone(),
-                stop_rx.clone(),
-                gather,
-                metrics.clone(),
-            )?;
-            std::thread::Builder::new()
-                .name(format!("lane-{}-{i}", model.name))
-                .spawn(move || lane.run())?;
+            let lane = worker::Lane::new(Arc::clone(&model), rx.clone(), stop_rx.clone(), gather, metrics.clone())?;
+            std::thread::Builder::new().name(format!("lane-{}-{i}", model.name)).spawn(move || lane.run())?;
         }
         metrics.lanes.set(lanes as i64);
-        let batcher = Batcher {
-            tx,
-            model: model.name.clone(),
-            backlog: cfg.backlog,
-            metrics,
-        };
+        let batcher = Batcher { tx, model: model.name.clone(), backlog: cfg.backlog, metrics };
         Ok((batcher, BatcherGuard { _stop: stop_tx }))
     }
 
@@ -162,18 +143,11 @@ impl Batcher {
     /// `QueueFull` at once when the backlog is full; `ShuttingDown`; `Inference`.
     pub async fn infer(&self, tensor: Vec<f32>) -> Result<Scored, BatchError> {
         let (reply, answer) = oneshot::channel();
-        let job = Job {
-            tensor,
-            enqueued: Instant::now(),
-            reply,
-        };
+        let job = Job { tensor, enqueued: Instant::now(), reply };
         match self.tx.try_send(job) {
             Ok(()) => {}
             Err(TrySendError::Full(_)) => {
-                return Err(BatchError::QueueFull {
-                    model: self.model.clone(),
-                    backlog: self.backlog,
-                });
+                return Err(BatchError::QueueFull { model: self.model.clone(), backlog: self.backlog });
             }
             Err(TrySendError::Disconnected(_)) => return Err(BatchError::ShuttingDown),
         }
@@ -193,22 +167,14 @@ mod tests {
 
     #[test]
     fn non_stacking_engine_never_waits() {
-        let g = Gather {
-            cap: 8,
-            window: Duration::from_micros(2000),
-            stacks: false,
-        };
+        let g = Gather { cap: 8, window: Duration::from_micros(2000), stacks: false };
         let t0 = Instant::now();
         assert_eq!(g.wait_until(t0, 1, t0), None);
     }
 
     #[test]
     fn stacking_engine_waits_until_window_closes_after_first_arrival() {
-        let g = Gather {
-            cap: 4,
-            window: Duration::from_micros(2000),
-            stacks: true,
-        };
+        let g = Gather { cap: 4, window: Duration::from_micros(2000), stacks: true };
         let t0 = Instant::now();
         assert_eq!(g.wait_until(t0, 1, at(t0, 100)), Some(at(t0, 2000)));
         assert_eq!(g.wait_until(t0, 3, at(t0, 1999)), Some(at(t0, 2000)));
@@ -219,11 +185,7 @@ mod tests {
 
     #[test]
     fn full_pass_closes_at_once() {
-        let g = Gather {
-            cap: 4,
-            window: Duration::from_secs(1),
-            stacks: true,
-        };
+        let g = Gather { cap: 4, window: Duration::from_secs(1), stacks: true };
         let t0 = Instant::now();
         assert_eq!(g.wait_until(t0, 4, t0), None);
     }

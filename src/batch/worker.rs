@@ -39,14 +39,7 @@ impl Lane {
         metrics: ModelMetrics,
     ) -> anyhow::Result<Lane> {
         let runner = model.runner()?;
-        Ok(Lane {
-            model,
-            runner,
-            jobs,
-            stop,
-            gather,
-            metrics,
-        })
+        Ok(Lane { model, runner, jobs, stop, gather, metrics })
     }
 
     /// Serve until the stop channel closes, then answer what is left and return.
@@ -111,9 +104,7 @@ impl Lane {
         }
         // Record the pass before its last answer leaves, so that a client that reads
         // /metrics right after its answer sees its pass counted.
-        self.metrics
-            .inference_duration
-            .observe(started.elapsed().as_secs_f64());
+        self.metrics.inference_duration.observe(started.elapsed().as_secs_f64());
         if let Some((job, answer)) = last {
             let _ = job.reply.send(answer);
         }
@@ -124,12 +115,7 @@ impl Lane {
         let result = catch_unwind(AssertUnwindSafe(|| self.runner.run(&job.tensor)));
         let infer = t.elapsed();
         match result {
-            Ok(Ok(scores)) => Ok(Scored {
-                scores,
-                wait: started - job.enqueued,
-                infer,
-                pass_size: size,
-            }),
+            Ok(Ok(scores)) => Ok(Scored { scores, wait: started - job.enqueued, infer, pass_size: size }),
             Ok(Err(e)) => {
                 self.metrics.lane_failures.inc();
                 tracing::error!(model = %self.model.name, cause = %e, "inference failed");

@@ -98,11 +98,7 @@ pub fn report(mc: &ModelConfig, model: &Model, single: Option<Duration>) -> Stri
         p.mean,
         p.std
     );
-    let _ = writeln!(
-        s,
-        "  load        {:.0} ms (parse, check, plan, warm)",
-        model.load_time.as_secs_f64() * 1e3
-    );
+    let _ = writeln!(s, "  load        {:.0} ms (parse, check, plan, warm)", model.load_time.as_secs_f64() * 1e3);
     match single {
         Some(d) => {
             let _ = writeln!(

@@ -21,12 +21,7 @@ pub struct ServeArgs {
 /// # Errors
 /// Config errors, a port that cannot be bound, a model that fails to load.
 pub fn run(args: ServeArgs) -> anyhow::Result<Outcome> {
-    let config = Config::load(
-        args.config.config.as_deref(),
-        &Overrides {
-            listen: args.listen,
-        },
-    )?;
+    let config = Config::load(args.config.config.as_deref(), &Overrides { listen: args.listen })?;
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .thread_name("lineside-http")
@@ -34,17 +29,9 @@ pub fn run(args: ServeArgs) -> anyhow::Result<Outcome> {
         .context("cannot start the async runtime")?;
     runtime.block_on(async move {
         let addr = config.server.listen;
-        let listener = tokio::net::TcpListener::bind(addr)
-            .await
-            .with_context(|| format!("cannot listen on {addr}"))?;
+        let listener = tokio::net::TcpListener::bind(addr).await.with_context(|| format!("cannot listen on {addr}"))?;
         tracing::info!(config = %config.origin, "starting");
-        crate::server::run(
-            config,
-            listener,
-            crate::shutdown::signal(),
-            Default::default(),
-        )
-        .await
+        crate::server::run(config, listener, crate::shutdown::signal(), Default::default()).await
     })?;
     Ok(Outcome::Ok)
 }

@@ -98,16 +98,10 @@ pub async fn classify(
     let served = match &*state.readiness.borrow() {
         Readiness::Ready(s) | Readiness::Draining(s) => s.clone(),
         Readiness::Loading(what) => {
-            return Err(ApiError::new(
-                ErrorKind::NotReady,
-                format!("not ready yet: {what}"),
-            ));
+            return Err(ApiError::new(ErrorKind::NotReady, format!("not ready yet: {what}")));
         }
         Readiness::Failed(why) => {
-            return Err(ApiError::new(
-                ErrorKind::NotReady,
-                format!("model loading failed: {why}"),
-            ));
+            return Err(ApiError::new(ErrorKind::NotReady, format!("model loading failed: {why}")));
         }
     };
     let Some(m) = served.get(&name) else {
@@ -122,8 +116,7 @@ pub async fn classify(
         Ok(_) => "ok",
         Err(e) => e.kind.as_str(),
     };
-    m.metrics
-        .observe_request(outcome, arrived.elapsed().as_secs_f64());
+    m.metrics.observe_request(outcome, arrived.elapsed().as_secs_f64());
     result.map(Json)
 }
 
@@ -140,34 +133,23 @@ async fn answer(
         if e.status() == axum::http::StatusCode::PAYLOAD_TOO_LARGE {
             ApiError::new(
                 ErrorKind::TooLarge,
-                format!(
-                    "the body is larger than server.body_limit_bytes = {}",
-                    state.body_limit
-                ),
+                format!("the body is larger than server.body_limit_bytes = {}", state.body_limit),
             )
         } else {
-            ApiError::new(
-                ErrorKind::BadRequest,
-                format!("cannot read the body: {}", e.body_text()),
-            )
+            ApiError::new(ErrorKind::BadRequest, format!("cannot read the body: {}", e.body_text()))
         }
     })?;
 
     let pipeline = m.pipeline.clone();
     let prepared = state.pool.run(move || pipeline.run(&body)).await??;
-    m.metrics
-        .preprocess_duration
-        .observe((prepared.decode + prepared.preprocess).as_secs_f64());
+    m.metrics.preprocess_duration.observe((prepared.decode + prepared.preprocess).as_secs_f64());
     let (decode, preprocess) = (prepared.decode, prepared.preprocess);
     let scored = m.batcher.infer(prepared.tensor).await?;
 
     let labels = &m.model.labels;
     let ranked: Vec<Ranked> = top_k(&scored.scores, top)
         .into_iter()
-        .map(|i| Ranked {
-            label: labels[i].clone(),
-            score: scored.scores[i],
-        })
+        .map(|i| Ranked { label: labels[i].clone(), score: scored.scores[i] })
         .collect();
     // top >= 1 and labels >= 1 (checked at load), so ranked has a first entry.
     let best = top_k(&scored.scores, 1)[0];

@@ -87,11 +87,7 @@ pub struct ApiError {
 impl ApiError {
     /// A client-facing error with its message.
     pub fn new(kind: ErrorKind, message: impl Into<String>) -> ApiError {
-        ApiError {
-            kind,
-            message: message.into(),
-            detail: None,
-        }
+        ApiError { kind, message: message.into(), detail: None }
     }
 
     /// An internal fault: the client sees a generic message, the log sees `detail`.
@@ -117,16 +113,10 @@ struct Inner<'a> {
 
 impl IntoResponse for ApiError {
     fn into_response(self) -> Response {
-        let body = Body {
-            error: Inner {
-                kind: self.kind.as_str(),
-                message: &self.message,
-            },
-        };
+        let body = Body { error: Inner { kind: self.kind.as_str(), message: &self.message } };
         let mut resp = (self.kind.status(), Json(body)).into_response();
         if matches!(self.kind, ErrorKind::Overloaded | ErrorKind::NotReady) {
-            resp.headers_mut()
-                .insert(header::RETRY_AFTER, HeaderValue::from_static("1"));
+            resp.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from_static("1"));
         }
         if let Some(d) = self.detail {
             resp.extensions_mut().insert(InternalDetail(d));
@@ -140,9 +130,7 @@ impl From<PreprocessError> for ApiError {
         let kind = match &e {
             PreprocessError::Empty | PreprocessError::BadImage(_) => ErrorKind::BadImage,
             PreprocessError::Unsupported(_) => ErrorKind::UnsupportedFormat,
-            PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. } => {
-                ErrorKind::TooLarge
-            }
+            PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. } => ErrorKind::TooLarge,
             PreprocessError::Internal(_) => return ApiError::internal(e.to_string()),
         };
         ApiError::new(kind, e.to_string())
@@ -162,9 +150,7 @@ impl From<BatchError> for ApiError {
 impl From<PoolError> for ApiError {
     fn from(e: PoolError) -> Self {
         match e {
-            PoolError::Full(_) => {
-                ApiError::new(ErrorKind::Overloaded, format!("{e}; retry shortly"))
-            }
+            PoolError::Full(_) => ApiError::new(ErrorKind::Overloaded, format!("{e}; retry shortly")),
             PoolError::Closed => ApiError::new(ErrorKind::NotReady, e.to_string()),
             PoolError::Panicked => ApiError::internal(e.to_string()),
         }
@@ -204,19 +190,14 @@ mod tests {
         assert_eq!(r.headers()[header::RETRY_AFTER], "1");
         let r = ApiError::internal("secret stack").into_response();
         assert_eq!(r.status(), 500);
-        assert_eq!(
-            r.extensions().get::<InternalDetail>().unwrap().0,
-            "secret stack"
-        );
+        assert_eq!(r.extensions().get::<InternalDetail>().unwrap().0, "secret stack");
     }
 
     #[test]
     fn client_faults_never_become_500() {
-        for e in [
-            PreprocessError::Empty,
-            PreprocessError::BadImage("x".into()),
-            PreprocessError::Unsupported("gif".into()),
-        ] {
+        for e in
+            [PreprocessError::Empty, PreprocessError::BadImage("x".into()), PreprocessError::Unsupported("gif".into())]
+        {
             assert_ne!(ApiError::from(e).kind, ErrorKind::Internal);
         }
     }

@@ -19,34 +19,17 @@ pub async fn healthz() -> Json<Value> {
 pub async fn readyz(State(state): State<AppState>) -> Result<Json<Value>, ApiError> {
     match &*state.readiness.borrow() {
         Readiness::Ready(served) => {
-            let models: Vec<Value> = served
-                .values()
-                .map(|m| json!({ "name": m.model.name, "version": m.model.version }))
-                .collect();
+            let models: Vec<Value> =
+                served.values().map(|m| json!({ "name": m.model.name, "version": m.model.version })).collect();
             Ok(Json(json!({ "ready": true, "models": models })))
         }
-        Readiness::Loading(what) => Err(ApiError::new(
-            ErrorKind::NotReady,
-            format!("loading: {what}"),
-        )),
-        Readiness::Failed(why) => Err(ApiError::new(
-            ErrorKind::NotReady,
-            format!("model loading failed: {why}"),
-        )),
-        Readiness::Draining(_) => Err(ApiError::new(
-            ErrorKind::NotReady,
-            "shutting down: draining requests in flight",
-        )),
+        Readiness::Loading(what) => Err(ApiError::new(ErrorKind::NotReady, format!("loading: {what}"))),
+        Readiness::Failed(why) => Err(ApiError::new(ErrorKind::NotReady, format!("model loading failed: {why}"))),
+        Readiness::Draining(_) => Err(ApiError::new(ErrorKind::NotReady, "shutting down: draining requests in flight")),
     }
 }
 
 /// The registry in the Prometheus text format (version 0.0.4).
 pub async fn metrics(State(state): State<AppState>) -> impl IntoResponse {
-    (
-        [(
-            header::CONTENT_TYPE,
-            "text/plain; version=0.0.4; charset=utf-8",
-        )],
-        state.metrics.render(),
-    )
+    ([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], state.metrics.render())
 }

@@ -32,28 +32,18 @@ pub fn router(state: AppState) -> Router {
         .layer(DefaultBodyLimit::max(state.body_limit))
         .with_state(state)
         .layer(middleware::from_fn(log_internal))
-        .layer(middleware::from_fn_with_state(
-            metrics,
-            crate::metrics::track_http,
-        ))
+        .layer(middleware::from_fn_with_state(metrics, crate::metrics::track_http))
 }
 
 async fn not_found(req: Request) -> ApiError {
     ApiError::new(
         ErrorKind::NotFound,
-        format!(
-            "no route {} {}; see the README for the endpoints",
-            req.method(),
-            req.uri().path()
-        ),
+        format!("no route {} {}; see the README for the endpoints", req.method(), req.uri().path()),
     )
 }
 
 async fn method_not_allowed(req: Request) -> ApiError {
-    ApiError::new(
-        ErrorKind::MethodNotAllowed,
-        format!("{} is not allowed on {}", req.method(), req.uri().path()),
-    )
+    ApiError::new(ErrorKind::MethodNotAllowed, format!("{} is not allowed on {}", req.method(), req.uri().path()))
 }
 
 /// Log the details of internal faults, which the client does not see.

@@ -80,18 +80,9 @@ fn fixed(d: &TDim) -> Option<usize> {
 ///
 /// # Errors
 /// A message naming `file` and the offending input or output, saying what was expected.
-pub fn contract(
-    model: &TypedModel,
-    file: &str,
-    pre: &PreprocessConfig,
-    labels: usize,
-) -> Result<Contract, String> {
+pub fn contract(model: &TypedModel, file: &str, pre: &PreprocessConfig, labels: usize) -> Result<Contract, String> {
     if model.inputs.len() != 1 {
-        let names: Vec<&str> = model
-            .inputs
-            .iter()
-            .map(|o| model.node(o.node).name.as_str())
-            .collect();
+        let names: Vec<&str> = model.inputs.iter().map(|o| model.node(o.node).name.as_str()).collect();
         return Err(format!(
             "{file}: has {} inputs {names:?}; lineside serves models with exactly one image input",
             names.len()
@@ -104,27 +95,14 @@ pub fn contract(
         ));
     }
     let input_name = model.node(model.inputs[0].node).name.clone();
-    let fact = model
-        .input_fact(0)
-        .map_err(|e| format!("{file}: input {input_name:?}: {e}"))?;
+    let fact = model.input_fact(0).map_err(|e| format!("{file}: input {input_name:?}: {e}"))?;
     let shape = dims(&fact.shape);
-    let at = |what: &str| {
-        format!(
-            "{file}: input {input_name:?} (shape [{}])",
-            shape.join(", ")
-        ) + what
-    };
+    let at = |what: &str| format!("{file}: input {input_name:?} (shape [{}])", shape.join(", ")) + what;
     if fact.datum_type != f32::datum_type() {
-        return Err(at(&format!(
-            ": element type {:?}, expected float32",
-            fact.datum_type
-        )));
+        return Err(at(&format!(": element type {:?}, expected float32", fact.datum_type)));
     }
     if fact.rank() != 4 {
-        return Err(at(&format!(
-            ": rank {}, expected 4 ([N, C, H, W] or [N, H, W, C])",
-            fact.rank()
-        )));
+        return Err(at(&format!(": rank {}, expected 4 ([N, C, H, W] or [N, H, W, C])", fact.rank())));
     }
     let d: Vec<&TDim> = fact.shape.iter().collect();
     let is_chan = |x: &TDim| matches!(fixed(x), Some(1 | 3));
@@ -133,10 +111,8 @@ pub fn contract(
         (false, true) => Some(Layout::Nhwc),
         (true, true) => None, // e.g. [N, 3, 3, 3]: ambiguous, the config decides
         (false, false) => {
-            return Err(at(
-                ": no channel axis of size 1 or 3 at position 1 (NCHW) or 3 (NHWC); \
-                           lineside serves gray or colour image models",
-            ));
+            return Err(at(": no channel axis of size 1 or 3 at position 1 (NCHW) or 3 (NHWC); \
+                           lineside serves gray or colour image models"));
         }
     };
     let layout = match (detected, pre.layout) {
@@ -158,22 +134,13 @@ pub fn contract(
         return Err(at(&format!(
             ": takes {channels} channel(s) but preprocess.channels gives {}; use channels = {}",
             pre.channels.count(),
-            if channels == 1 {
-                "\"gray\""
-            } else {
-                "\"rgb\" or \"bgr\""
-            }
+            if channels == 1 { "\"gray\"" } else { "\"rgb\" or \"bgr\"" }
         )));
     }
-    for (axis, dim, want, key) in [
-        ("height", h, pre.height, "height"),
-        ("width", w, pre.width, "width"),
-    ] {
+    for (axis, dim, want, key) in [("height", h, pre.height, "height"), ("width", w, pre.width, "width")] {
         if let Some(v) = fixed(dim) {
             if v != want as usize {
-                return Err(at(&format!(
-                    ": {axis} is fixed at {v} but preprocess.{key} = {want}; set {key} = {v}"
-                )));
+                return Err(at(&format!(": {axis} is fixed at {v} but preprocess.{key} = {want}; set {key} = {v}")));
             }
         }
     }
@@ -188,20 +155,10 @@ pub fn contract(
     };
 
     let out_outlet = model.outputs[0];
-    let output_name = model
-        .outlet_label(out_outlet)
-        .unwrap_or(&model.node(out_outlet.node).name)
-        .to_string();
-    let ofact = model
-        .outlet_fact(out_outlet)
-        .map_err(|e| format!("{file}: output {output_name:?}: {e}"))?;
+    let output_name = model.outlet_label(out_outlet).unwrap_or(&model.node(out_outlet.node).name).to_string();
+    let ofact = model.outlet_fact(out_outlet).map_err(|e| format!("{file}: output {output_name:?}: {e}"))?;
     let output_shape = dims(&ofact.shape);
-    let oat = |what: &str| {
-        format!(
-            "{file}: output {output_name:?} (shape [{}])",
-            output_shape.join(", ")
-        ) + what
-    };
+    let oat = |what: &str| format!("{file}: output {output_name:?} (shape [{}])", output_shape.join(", ")) + what;
     let od: Vec<&TDim> = ofact.shape.iter().collect();
     let trailing_ones = od.len() == 4 && fixed(od[2]) == Some(1) && fixed(od[3]) == Some(1);
     if !(od.len() == 2 || trailing_ones) {
@@ -209,16 +166,10 @@ pub fn contract(
     }
     let classes = fixed(od[1]).ok_or_else(|| oat(": the class axis is not fixed"))?;
     if classes != labels {
-        return Err(oat(&format!(
-            ": gives {classes} class scores but the labels file has {labels} labels"
-        )));
+        return Err(oat(&format!(": gives {classes} class scores but the labels file has {labels} labels")));
     }
     let last_op = model.node(out_outlet.node).op.name();
-    let scores = if last_op.contains("Softmax") {
-        ScoreTransform::FromGraph
-    } else {
-        ScoreTransform::Softmax
-    };
+    let scores = if last_op.contains("Softmax") { ScoreTransform::FromGraph } else { ScoreTransform::Softmax };
 
     Ok(Contract {
         input_name,

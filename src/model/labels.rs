@@ -9,25 +9,17 @@ use std::collections::HashSet;
 /// A message naming the file, the line and what was wrong.
 pub fn parse(bytes: &[u8], file: &str) -> Result<Vec<String>, String> {
     let text = std::str::from_utf8(bytes).map_err(|e| format!("{file}: not UTF-8 text ({e})"))?;
-    let mut lines: Vec<&str> = text
-        .lines()
-        .map(|l| l.trim_end_matches('\r').trim())
-        .collect();
+    let mut lines: Vec<&str> = text.lines().map(|l| l.trim_end_matches('\r').trim()).collect();
     while lines.last().is_some_and(|l| l.is_empty()) {
         lines.pop();
     }
     if lines.is_empty() {
-        return Err(format!(
-            "{file}: no labels (expected one class name a line)"
-        ));
+        return Err(format!("{file}: no labels (expected one class name a line)"));
     }
     let mut seen = HashSet::new();
     for (i, l) in lines.iter().enumerate() {
         if l.is_empty() {
-            return Err(format!(
-                "{file}: line {} is blank (expected one class name a line)",
-                i + 1
-            ));
+            return Err(format!("{file}: line {} is blank (expected one class name a line)", i + 1));
         }
         if !seen.insert(*l) {
             return Err(format!("{file}: line {}: label {l:?} appears twice", i + 1));
@@ -48,25 +40,9 @@ mod tests {
 
     #[test]
     fn refuses_blank_repeated_or_empty() {
-        assert!(
-            parse(b"a\n\nb\n", "c.txt")
-                .unwrap_err()
-                .contains("line 2 is blank")
-        );
-        assert!(
-            parse(b"a\nb\na\n", "c.txt")
-                .unwrap_err()
-                .contains("line 3: label \"a\" appears twice")
-        );
-        assert!(
-            parse(b"\n\n", "c.txt")
-                .unwrap_err()
-                .contains("c.txt: no labels")
-        );
-        assert!(
-            parse(&[0xff, 0xfe], "c.txt")
-                .unwrap_err()
-                .contains("not UTF-8")
-        );
+        assert!(parse(b"a\n\nb\n", "c.txt").unwrap_err().contains("line 2 is blank"));
+        assert!(parse(b"a\nb\na\n", "c.txt").unwrap_err().contains("line 3: label \"a\" appears twice"));
+        assert!(parse(b"\n\n", "c.txt").unwrap_err().contains("c.txt: no labels"));
+        assert!(parse(&[0xff, 0xfe], "c.txt").unwrap_err().contains("not UTF-8"));
     }
 }

@@ -35,17 +35,10 @@ pub fn load(cfg: &ModelConfig) -> anyhow::Result<Model> {
         .clone()
         .into_typed()
         .and_then(|m| m.into_decluttered())
-        .with_context(|| {
-            format!("{file}: tract cannot type this graph (an unsupported operator or shape)")
-        })?;
-    let contract = check::contract(&typed, &file, &cfg.preprocess, labels.len())
-        .map_err(anyhow::Error::msg)?;
+        .with_context(|| format!("{file}: tract cannot type this graph (an unsupported operator or shape)"))?;
+    let contract = check::contract(&typed, &file, &cfg.preprocess, labels.len()).map_err(anyhow::Error::msg)?;
 
-    let (h, w, c) = (
-        contract.height as usize,
-        contract.width as usize,
-        contract.channels,
-    );
+    let (h, w, c) = (contract.height as usize, contract.width as usize, contract.channels);
     let shape: [usize; 4] = match contract.layout {
         Layout::Nchw => [1, c, h, w],
         Layout::Nhwc => [1, h, w, c],
@@ -54,9 +47,7 @@ pub fn load(cfg: &ModelConfig) -> anyhow::Result<Model> {
         .with_input_fact(0, f32::fact(shape).into())
         .and_then(|m| m.into_optimized())
         .and_then(|m| m.into_runnable())
-        .with_context(|| {
-            format!("{file}: tract cannot plan the graph for input shape {shape:?}")
-        })?;
+        .with_context(|| format!("{file}: tract cannot plan the graph for input shape {shape:?}"))?;
 
     let mut model = Model {
         name: cfg.name.clone(),

@@ -39,10 +39,7 @@ pub struct Model {
 
 impl std::fmt::Debug for Model {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.debug_struct("Model")
-            .field("name", &self.name)
-            .field("version", &self.version)
-            .finish_non_exhaustive()
+        f.debug_struct("Model").field("name", &self.name).field("version", &self.version).finish_non_exhaustive()
     }
 }
 
@@ -81,22 +78,14 @@ impl Model {
     /// # Errors
     /// When tract cannot allocate the state.
     pub fn runner(&self) -> Result<Runner, RunError> {
-        let state = self
-            .plan
-            .spawn()
-            .map_err(|e| RunError::Engine(format!("{e:#}")))?;
+        let state = self.plan.spawn().map_err(|e| RunError::Engine(format!("{e:#}")))?;
         let c = &self.contract;
         let (h, w, ch) = (c.height as usize, c.width as usize, c.channels);
         let shape = match c.layout {
             crate::config::Layout::Nchw => [1, ch, h, w],
             crate::config::Layout::Nhwc => [1, h, w, ch],
         };
-        Ok(Runner {
-            state,
-            shape,
-            transform: c.scores,
-            classes: c.classes,
-        })
+        Ok(Runner { state, shape, transform: c.scores, classes: c.classes })
     }
 }
 
@@ -108,27 +97,14 @@ impl Runner {
     pub fn run(&mut self, input: &[f32]) -> Result<Vec<f32>, RunError> {
         let expected: usize = self.shape.iter().product();
         if input.len() != expected {
-            return Err(RunError::InputSize {
-                expected,
-                found: input.len(),
-            });
+            return Err(RunError::InputSize { expected, found: input.len() });
         }
-        let tensor = Tensor::from_shape(&self.shape, input)
-            .map_err(|e| RunError::Engine(format!("{e:#}")))?;
-        let out = self
-            .state
-            .run(tvec![tensor.into()])
-            .map_err(|e| RunError::Engine(format!("{e:#}")))?;
-        let view = out[0]
-            .to_plain_array_view::<f32>()
-            .map_err(|e| RunError::Engine(format!("{e:#}")))?;
+        let tensor = Tensor::from_shape(&self.shape, input).map_err(|e| RunError::Engine(format!("{e:#}")))?;
+        let out = self.state.run(tvec![tensor.into()]).map_err(|e| RunError::Engine(format!("{e:#}")))?;
+        let view = out[0].to_plain_array_view::<f32>().map_err(|e| RunError::Engine(format!("{e:#}")))?;
         let raw: Vec<f32> = view.iter().copied().collect();
         if raw.len() != self.classes {
-            return Err(RunError::Engine(format!(
-                "output has {} values, expected {}",
-                raw.len(),
-                self.classes
-            )));
+            return Err(RunError::Engine(format!("output has {} values, expected {}", raw.len(), self.classes)));
         }
         Ok(self.transform.apply(&raw))
     }

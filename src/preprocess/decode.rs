@@ -67,21 +67,14 @@ fn ends_with_eoi(bytes: &[u8]) -> bool {
 /// Refuse a frame larger than `max_pixels`.
 fn check_pixels(w: u32, h: u32, max_pixels: u64) -> Result<(), PreprocessError> {
     if u64::from(w) * u64::from(h) > max_pixels {
-        return Err(PreprocessError::TooLarge {
-            width: w,
-            height: h,
-            max_pixels,
-        });
+        return Err(PreprocessError::TooLarge { width: w, height: h, max_pixels });
     }
     Ok(())
 }
 
 fn classify(e: ImageError, max_pixels: u64) -> PreprocessError {
     match e {
-        ImageError::Limits(l) => PreprocessError::TooLargeUnknown {
-            max_pixels,
-            detail: l.to_string(),
-        },
+        ImageError::Limits(l) => PreprocessError::TooLargeUnknown { max_pixels, detail: l.to_string() },
         ImageError::Unsupported(u) => PreprocessError::Unsupported(u.to_string()),
         other => PreprocessError::BadImage(other.to_string()),
     }
@@ -94,8 +87,7 @@ mod tests {
     fn png(w: u32, h: u32) -> Vec<u8> {
         let img = RgbImage::from_fn(w, h, |x, y| image::Rgb([x as u8, y as u8, 7]));
         let mut out = Vec::new();
-        img.write_to(&mut Cursor::new(&mut out), image::ImageFormat::Png)
-            .unwrap();
+        img.write_to(&mut Cursor::new(&mut out), image::ImageFormat::Png).unwrap();
         out
     }
 
@@ -109,32 +101,20 @@ mod tests {
     #[test]
     fn empty_random_and_truncated_bodies_are_bad_images() {
         assert!(matches!(decode(b"", 1000), Err(PreprocessError::Empty)));
-        assert!(matches!(
-            decode(b"hello, this is text", 1000),
-            Err(PreprocessError::BadImage(_))
-        ));
+        assert!(matches!(decode(b"hello, this is text", 1000), Err(PreprocessError::BadImage(_))));
         let p = png(20, 20);
-        assert!(matches!(
-            decode(&p[..p.len() / 2], 1000),
-            Err(PreprocessError::BadImage(_))
-        ));
+        assert!(matches!(decode(&p[..p.len() / 2], 1000), Err(PreprocessError::BadImage(_))));
     }
 
     #[test]
     fn truncated_jpeg_is_a_bad_image_and_padding_after_eoi_is_fine() {
-        let img = RgbImage::from_fn(64, 48, |x, y| {
-            image::Rgb([(x * 4) as u8, (y * 5) as u8, 90])
-        });
+        let img = RgbImage::from_fn(64, 48, |x, y| image::Rgb([(x * 4) as u8, (y * 5) as u8, 90]));
         let mut jpeg = Vec::new();
-        img.write_to(&mut Cursor::new(&mut jpeg), ImageFormat::Jpeg)
-            .unwrap();
+        img.write_to(&mut Cursor::new(&mut jpeg), ImageFormat::Jpeg).unwrap();
         assert!(decode(&jpeg, 1 << 20).is_ok());
         for cut in [jpeg.len() / 3, jpeg.len() - 2] {
             let err = decode(&jpeg[..cut], 1 << 20).unwrap_err();
-            assert!(
-                matches!(err, PreprocessError::BadImage(ref m) if m.contains("truncated JPEG")),
-                "{cut}: {err:?}"
-            );
+            assert!(matches!(err, PreprocessError::BadImage(ref m) if m.contains("truncated JPEG")), "{cut}: {err:?}");
         }
         let mut padded = jpeg.clone();
         padded.extend_from_slice(&[0, 0, 0, 0]);
@@ -144,17 +124,7 @@ mod tests {
     #[test]
     fn pixel_limit_is_checked_from_the_header() {
         let err = decode(&png(40, 30), 1199).unwrap_err();
-        assert!(
-            matches!(
-                err,
-                PreprocessError::TooLarge {
-                    width: 40,
-                    height: 30,
-                    max_pixels: 1199
-                }
-            ),
-            "{err:?}"
-        );
+        assert!(matches!(err, PreprocessError::TooLarge { width: 40, height: 30, max_pixels: 1199 }), "{err:?}");
         assert!(decode(&png(40, 30), 1200).is_ok());
     }
 
@@ -168,13 +138,7 @@ mod tests {
         let crc = crc32(&p[12..29]);
         p[29..33].copy_from_slice(&crc.to_be_bytes());
         let err = decode(&p, 40_000_000).unwrap_err();
-        assert!(
-            matches!(
-                err,
-                PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. }
-            ),
-            "{err:?}"
-        );
+        assert!(matches!(err, PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. }), "{err:?}");
     }
 
     /// CRC-32 (ISO 3309 / PNG spec section 5.5), bitwise.
@@ -183,11 +147,7 @@ mod tests {
         for &b in data {
             c ^= u32::from(b);
             for _ in 0..8 {
-                c = if c & 1 != 0 {
-                    0xedb8_8320 ^ (c >> 1)
-                } else {
-                    c >> 1
-                };
+                c = if c & 1 != 0 { 0xedb8_8320 ^ (c >> 1) } else { c >> 1 };
             }
         }
         !c

@@ -76,11 +76,7 @@ pub struct Pipeline {
 impl Pipeline {
     /// A pipeline for a model with this config, in the layout its contract says.
     pub fn new(cfg: PreprocessConfig, layout: Layout, max_pixels: u64) -> Pipeline {
-        Pipeline {
-            cfg,
-            layout,
-            max_pixels,
-        }
+        Pipeline { cfg, layout, max_pixels }
     }
 
     /// Decode and preprocess one request body.
@@ -92,12 +88,7 @@ impl Pipeline {
         let img = decode::decode(bytes, self.max_pixels)?;
         let t1 = Instant::now();
         let tensor = self.tensor(&img)?;
-        Ok(Prepared {
-            tensor,
-            source_size: img.dimensions(),
-            decode: t1 - t0,
-            preprocess: t1.elapsed(),
-        })
+        Ok(Prepared { tensor, source_size: img.dimensions(), decode: t1 - t0, preprocess: t1.elapsed() })
     }
 
     /// Preprocess an already decoded RGB frame.
@@ -116,15 +107,6 @@ impl Pipeline {
         };
         let n = c.channels.count();
         let small = resize::resize(src, w, h, n, c.width, c.height, c.filter)?;
-        Ok(normalize::to_tensor(
-            &small,
-            c.width,
-            c.height,
-            c.channels,
-            self.layout,
-            c.divisor,
-            &c.mean,
-            &c.std,
-        ))
+        Ok(normalize::to_tensor(&small, c.width, c.height, c.channels, self.layout, c.divisor, &c.mean, &c.std))
     }
 }

@@ -8,10 +8,7 @@ use crate::config::{Channels, Layout};
 /// source, and the unit test checks it against values Pillow printed).
 pub fn luma(rgb: &[u8]) -> Vec<u8> {
     rgb.chunks_exact(3)
-        .map(|p| {
-            ((u32::from(p[0]) * 19595 + u32::from(p[1]) * 38470 + u32::from(p[2]) * 7471 + 0x8000)
-                >> 16) as u8
-        })
+        .map(|p| ((u32::from(p[0]) * 19595 + u32::from(p[1]) * 38470 + u32::from(p[2]) * 7471 + 0x8000) >> 16) as u8)
         .collect()
 }
 
@@ -70,16 +67,7 @@ mod tests {
         // B: (0.0 - 0.406) / 0.225 = -1.804444
         let mean = [0.485, 0.456, 0.406];
         let std = [0.229, 0.224, 0.225];
-        let t = to_tensor(
-            &[255, 128, 0],
-            1,
-            1,
-            Channels::Rgb,
-            Layout::Nchw,
-            255.0,
-            &mean,
-            &std,
-        );
+        let t = to_tensor(&[255, 128, 0], 1, 1, Channels::Rgb, Layout::Nchw, 255.0, &mean, &std);
         for (a, b) in t.iter().zip([2.248_908, 0.205_182, -1.804_444]) {
             assert!((a - b).abs() < 1e-5, "{t:?}");
         }
@@ -91,22 +79,10 @@ mod tests {
         let px = [1, 2, 3, 4, 5, 6];
         let id = [0.0; 3];
         let one = [1.0; 3];
-        assert_eq!(
-            to_tensor(&px, 2, 1, Channels::Rgb, Layout::Nchw, 1.0, &id, &one),
-            [1., 4., 2., 5., 3., 6.]
-        );
-        assert_eq!(
-            to_tensor(&px, 2, 1, Channels::Rgb, Layout::Nhwc, 1.0, &id, &one),
-            [1., 2., 3., 4., 5., 6.]
-        );
-        assert_eq!(
-            to_tensor(&px, 2, 1, Channels::Bgr, Layout::Nchw, 1.0, &id, &one),
-            [3., 6., 2., 5., 1., 4.]
-        );
-        assert_eq!(
-            to_tensor(&px, 2, 1, Channels::Bgr, Layout::Nhwc, 1.0, &id, &one),
-            [3., 2., 1., 6., 5., 4.]
-        );
+        assert_eq!(to_tensor(&px, 2, 1, Channels::Rgb, Layout::Nchw, 1.0, &id, &one), [1., 4., 2., 5., 3., 6.]);
+        assert_eq!(to_tensor(&px, 2, 1, Channels::Rgb, Layout::Nhwc, 1.0, &id, &one), [1., 2., 3., 4., 5., 6.]);
+        assert_eq!(to_tensor(&px, 2, 1, Channels::Bgr, Layout::Nchw, 1.0, &id, &one), [3., 6., 2., 5., 1., 4.]);
+        assert_eq!(to_tensor(&px, 2, 1, Channels::Bgr, Layout::Nhwc, 1.0, &id, &one), [3., 2., 1., 6., 5., 4.]);
     }
 
     #[test]
@@ -114,12 +90,9 @@ mod tests {
         // 0.299*200 + 0.587*100 + 0.114*50 = 124.2 -> 124. Expected values printed by
         // Pillow 13.0.0, Image.convert("L"), for these exact pixels.
         let px = [
-            200, 100, 50, 255, 255, 255, 0, 0, 0, 68, 32, 130, 60, 253, 230, 241, 194, 107, 48,
-            249, 14, 199, 221, 1, 228, 136, 117, 52, 162, 15, 11, 13, 4,
+            200, 100, 50, 255, 255, 255, 0, 0, 0, 68, 32, 130, 60, 253, 230, 241, 194, 107, 48, 249, 14, 199, 221, 1,
+            228, 136, 117, 52, 162, 15, 11, 13, 4,
         ];
-        assert_eq!(
-            luma(&px),
-            [124, 255, 0, 54, 193, 198, 162, 189, 161, 112, 11]
-        );
+        assert_eq!(luma(&px), [124, 255, 0, 54, 193, 198, 162, 189, 161, 112, 11]);
     }
 }

@@ -46,19 +46,14 @@ impl CpuPool {
         let (tx, rx) = bounded::<Job>(capacity);
         for i in 0..threads {
             let rx = rx.clone();
-            std::thread::Builder::new()
-                .name(format!("{name}-{i}"))
-                .spawn(move || {
-                    // Ends when every sender is gone.
-                    for job in rx {
-                        job();
-                    }
-                })?;
+            std::thread::Builder::new().name(format!("{name}-{i}")).spawn(move || {
+                // Ends when every sender is gone.
+                for job in rx {
+                    job();
+                }
+            })?;
         }
-        Ok(CpuPool {
-            tx: Arc::new(tx),
-            capacity,
-        })
+        Ok(CpuPool { tx: Arc::new(tx), capacity })
     }
 
     /// Run `f` on a pool thread and await its result.
@@ -124,9 +119,7 @@ mod tests {
                 .await
             })
         };
-        started_rx
-            .recv_timeout(std::time::Duration::from_secs(10))
-            .unwrap();
+        started_rx.recv_timeout(std::time::Duration::from_secs(10)).unwrap();
         // One job fits in the queue...
         let queued = {
             let pool = pool.clone();

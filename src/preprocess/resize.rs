@@ -2,9 +2,7 @@
 //! (antialiased), via `fast_image_resize` (within one level of Pillow for bilinear, and
 //! about 13x faster than the `image` crate's own resize here: FACTS.md).
 
-use fast_image_resize::{
-    FilterType, PixelType, ResizeAlg, ResizeOptions, Resizer, images::Image, images::ImageRef,
-};
+use fast_image_resize::{FilterType, PixelType, ResizeAlg, ResizeOptions, Resizer, images::Image, images::ImageRef};
 
 use super::PreprocessError;
 use crate::config::Filter;
@@ -34,11 +32,7 @@ pub fn resize(
     height: u32,
     filter: Filter,
 ) -> Result<Vec<u8>, PreprocessError> {
-    let pixel = if channels == 1 {
-        PixelType::U8
-    } else {
-        PixelType::U8x3
-    };
+    let pixel = if channels == 1 { PixelType::U8 } else { PixelType::U8x3 };
     if (src_w, src_h) == (width, height) {
         return Ok(src.to_vec());
     }
@@ -46,11 +40,7 @@ pub fn resize(
     let src = ImageRef::new(src_w, src_h, src, pixel).map_err(|e| internal(&e))?;
     let mut dst = Image::new(width, height, pixel);
     Resizer::new()
-        .resize(
-            &src,
-            &mut dst,
-            &ResizeOptions::new().resize_alg(algorithm(filter)),
-        )
+        .resize(&src, &mut dst, &ResizeOptions::new().resize_alg(algorithm(filter)))
         .map_err(|e| internal(&e))?;
     Ok(dst.into_vec())
 }
@@ -62,13 +52,7 @@ mod tests {
     #[test]
     fn flat_image_stays_flat_under_every_filter() {
         let src = vec![77u8; 40 * 30 * 3];
-        for f in [
-            Filter::Nearest,
-            Filter::Bilinear,
-            Filter::Bicubic,
-            Filter::Lanczos,
-            Filter::Area,
-        ] {
+        for f in [Filter::Nearest, Filter::Bilinear, Filter::Bicubic, Filter::Lanczos, Filter::Area] {
             let out = resize(&src, 40, 30, 3, 7, 9, f).unwrap();
             assert_eq!(out.len(), 7 * 9 * 3);
             assert!(out.iter().all(|&v| v == 77), "{f:?}: {out:?}");

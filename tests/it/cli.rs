@@ -21,21 +21,10 @@ fn check_on_the_builtin_model_from_any_folder_exits_0() {
     let dir = temp_dir("check-builtin");
     let out = lineside().arg("check").current_dir(&dir).output().unwrap();
     let stdout = String::from_utf8_lossy(&out.stdout);
-    assert_eq!(
-        out.status.code(),
-        Some(0),
-        "{stdout}\n{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
+    assert_eq!(out.status.code(), Some(0), "{stdout}\n{}", String::from_utf8_lossy(&out.stderr));
     assert!(stdout.contains("built-in"), "{stdout}");
-    assert!(
-        stdout.contains("model \"washers\": ok, would serve"),
-        "{stdout}"
-    );
-    assert!(
-        stdout.contains("good, cracked, burr, no_hole, empty"),
-        "{stdout}"
-    );
+    assert!(stdout.contains("model \"washers\": ok, would serve"), "{stdout}");
+    assert!(stdout.contains("good, cracked, burr, no_hole, empty"), "{stdout}");
     assert!(stdout.contains("[N, 3, 96, 96]"), "{stdout}");
     assert!(stdout.contains("lineside applies softmax"), "{stdout}");
 }
@@ -53,31 +42,17 @@ fn check_exits_1_for_an_unservable_model_and_2_for_a_bad_config() {
     };
     let run = |text: String| {
         std::fs::write(dir.join("c.toml"), text).unwrap();
-        let out = lineside()
-            .args(["check", "--config"])
-            .arg(dir.join("c.toml"))
-            .output()
-            .unwrap();
-        (
-            out.status.code(),
-            String::from_utf8_lossy(&out.stdout).to_string()
-                + &String::from_utf8_lossy(&out.stderr),
-        )
+        let out = lineside().args(["check", "--config"]).arg(dir.join("c.toml")).output().unwrap();
+        (out.status.code(), String::from_utf8_lossy(&out.stdout).to_string() + &String::from_utf8_lossy(&out.stderr))
     };
 
     let (code, text) = run(cfg(onnx.to_str().unwrap(), "four.txt", ""));
     assert_eq!(code, Some(1), "{text}");
-    assert!(
-        text.contains("5 class scores but the labels file has 4 labels"),
-        "{text}"
-    );
+    assert!(text.contains("5 class scores but the labels file has 4 labels"), "{text}");
 
     let (code, text) = run(cfg("not.onnx", "four.txt", ""));
     assert_eq!(code, Some(1), "{text}");
-    assert!(
-        text.contains("not.onnx") && text.contains("not a loadable ONNX model"),
-        "{text}"
-    );
+    assert!(text.contains("not.onnx") && text.contains("not a loadable ONNX model"), "{text}");
 
     let (code, text) = run(cfg("not.onnx", "four.txt", "colour = \"red\"\n"));
     assert_eq!(code, Some(2), "{text}");
@@ -90,11 +65,7 @@ fn check_exits_1_for_an_unservable_model_and_2_for_a_bad_config() {
 #[test]
 fn serve_from_any_folder_answers_and_exits_0_on_sigterm() {
     let dir = temp_dir("serve");
-    let port = std::net::TcpListener::bind("127.0.0.1:0")
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port();
+    let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
     let mut child = lineside()
         .args(["serve", "--listen", &format!("127.0.0.1:{port}")])
         .current_dir(&dir)
@@ -103,10 +74,7 @@ fn serve_from_any_folder_answers_and_exits_0_on_sigterm() {
         .spawn()
         .unwrap();
     let base = format!("http://127.0.0.1:{port}");
-    let rt = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-        .unwrap();
+    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
     let label = rt.block_on(async {
         let c = reqwest::Client::new();
         for _ in 0..600 {
@@ -131,10 +99,7 @@ fn serve_from_any_folder_answers_and_exits_0_on_sigterm() {
         v["label"].clone()
     });
     assert!(label.is_string());
-    let killed = Command::new("kill")
-        .args(["-TERM", &child.id().to_string()])
-        .status()
-        .unwrap();
+    let killed = Command::new("kill").args(["-TERM", &child.id().to_string()]).status().unwrap();
     assert!(killed.success());
     let status = child.wait().unwrap();
     let mut log = String::new();

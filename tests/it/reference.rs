@@ -13,10 +13,7 @@ use lineside::model::load;
 use lineside::preprocess::Pipeline;
 
 fn reference() -> Value {
-    serde_json::from_slice(
-        &std::fs::read(root().join("tests/fixtures/washers/reference.json")).unwrap(),
-    )
-    .unwrap()
+    serde_json::from_slice(&std::fs::read(root().join("tests/fixtures/washers/reference.json")).unwrap()).unwrap()
 }
 
 fn reference_probs(r: &Value, name: &str) -> Vec<f64> {
@@ -30,9 +27,7 @@ fn reference_probs(r: &Value, name: &str) -> Vec<f64> {
 
 /// Pillow's 96x96 pixels for a sample, as 8-bit RGB.
 fn pillow_pixels(name: &str) -> image::RgbImage {
-    image::open(root().join("tests/fixtures/washers/pillow96").join(name))
-        .unwrap()
-        .into_rgb8()
+    image::open(root().join("tests/fixtures/washers/pillow96").join(name)).unwrap().into_rgb8()
 }
 
 #[test]
@@ -82,17 +77,11 @@ fn preprocessing_matches_pillow_bilinear_within_one_level() {
     }
     // fast_image_resize's bilinear convolution is within +-1 level of Pillow's (FACTS.md,
     // measured); a different filter or a missing antialias would differ by tens of levels.
-    assert!(
-        worst <= 1,
-        "max pixel difference from Pillow = {worst} levels"
-    );
+    assert!(worst <= 1, "max pixel difference from Pillow = {worst} levels");
     // Rounding differences only: 0.16 levels measured on these frames; a half-pixel shift or
     // a biased rounding would show as 0.5 or more.
     let mean = total as f64 / count as f64;
-    assert!(
-        mean < 0.25,
-        "mean pixel difference from Pillow = {mean:.4} levels"
-    );
+    assert!(mean < 0.25, "mean pixel difference from Pillow = {mean:.4} levels");
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -100,12 +89,7 @@ async fn served_scores_match_onnxruntime() {
     let server = TestServer::start(washer_config()).await;
     let c = reqwest::Client::new();
     let r = reference();
-    let labels: Vec<String> = r["labels"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|l| l.as_str().unwrap().into())
-        .collect();
+    let labels: Vec<String> = r["labels"].as_array().unwrap().iter().map(|l| l.as_str().unwrap().into()).collect();
     let mut worst = 0.0f64;
     for s in samples() {
         let v: Value = c
@@ -118,16 +102,9 @@ async fn served_scores_match_onnxruntime() {
             .await
             .unwrap();
         let theirs = reference_probs(&r, &s.name);
-        assert_eq!(
-            v["label"], r["samples"][&s.name]["label"],
-            "{}: top-1 differs from onnxruntime",
-            s.name
-        );
+        assert_eq!(v["label"], r["samples"][&s.name]["label"], "{}: top-1 differs from onnxruntime", s.name);
         for t in v["top"].as_array().unwrap() {
-            let i = labels
-                .iter()
-                .position(|l| l == t["label"].as_str().unwrap())
-                .unwrap();
+            let i = labels.iter().position(|l| l == t["label"].as_str().unwrap()).unwrap();
             worst = worst.max((t["score"].as_f64().unwrap() - theirs[i]).abs());
         }
     }

@@ -22,6 +22,17 @@ pub(crate) fn washer_config() -> Config {
     config_from_text(&std::fs::read_to_string(root().join("config/lineside.toml")).unwrap())
 }
 
+/// The washer config with some of its lines edited. Each `(from, to)` must match, so that an
+/// edit cannot silently do nothing when the example config changes.
+pub(crate) fn washer_config_with(edits: &[(&str, &str)]) -> Config {
+    let mut text = std::fs::read_to_string(root().join("config/lineside.toml")).unwrap();
+    for (from, to) in edits {
+        assert!(text.contains(from), "config/lineside.toml has no {from:?}");
+        text = text.replace(from, to);
+    }
+    config_from_text(&text)
+}
+
 /// A config from TOML text, with paths relative to `config/` and an ephemeral port.
 pub(crate) fn config_from_text(text: &str) -> Config {
     let base = root().join("config");
@@ -29,9 +40,7 @@ pub(crate) fn config_from_text(text: &str) -> Config {
         text,
         "test config",
         &|p: &Path| lineside::config::Source::File(base.join(p)),
-        &Overrides {
-            listen: Some("127.0.0.1:0".into()),
-        },
+        &Overrides { listen: Some("127.0.0.1:0".into()) },
     )
     .expect("test config is valid")
 }
@@ -56,29 +65,15 @@ impl TestServer {
 
     /// Start with model loading held until [`TestServer::release_load`].
     pub(crate) async fn start_gated(config: Config) -> TestServer {
-        let listener = tokio::net::TcpListener::bind(config.server.listen)
-            .await
-            .unwrap();
+        let listener = tokio::net::TcpListener::bind(config.server.listen).await.unwrap();
         let addr = listener.local_addr().unwrap();
         let (stop_tx, stop_rx) = oneshot::channel::<()>();
         let (gate_tx, gate_rx) = oneshot::channel::<()>();
         let shutdown = async move {
             let _ = stop_rx.await;
         };
-        let handle = tokio::spawn(run(
-            config,
-            listener,
-            shutdown,
-            RunOptions {
-                load_gate: Some(gate_rx),
-            },
-        ));
-        TestServer {
-            addr,
-            shutdown: Some(stop_tx),
-            gate: Some(gate_tx),
-            handle,
-        }
+        let handle = tokio::spawn(run(config, listener, shutdown, RunOptions { load_gate: Some(gate_rx) }));
+        TestServer { addr, shutdown: Some(stop_tx), gate: Some(gate_tx), handle }
     }
 
     /// Let the models load.
@@ -117,18 +112,12 @@ impl TestServer {
     /// Stop and return what `server::run` returned.
     pub(crate) async fn stop(mut self) -> anyhow::Result<()> {
         self.trigger_shutdown();
-        tokio::time::timeout(Duration::from_secs(30), self.handle)
-            .await
-            .expect("server stopped within 30 s")
-            .unwrap()
+        tokio::time::timeout(Duration::from_secs(30), self.handle).await.expect("server stopped within 30 s").unwrap()
     }
 
     /// Await the server's end without asking it to stop.
     pub(crate) async fn join(self) -> anyhow::Result<()> {
-        tokio::time::timeout(Duration::from_secs(30), self.handle)
-            .await
-            .expect("server ended within 30 s")
-            .unwrap()
+        tokio::time::timeout(Duration::from_secs(30), self.handle).await.expect("server ended within 30 s").unwrap()
     }
 }
 
@@ -162,9 +151,7 @@ pub(crate) fn samples() -> Vec<Sample> {
 /// The Python interpreter of the project's venv (created by `tools/test`). A missing
 /// reference tool fails the test: it never skips silently.
 pub(crate) fn python() -> PathBuf {
-    let p = std::env::var_os("LINESIDE_PYTHON")
-        .map(PathBuf::from)
-        .unwrap_or_else(|| root().join(".venv/bin/python"));
+    let p = std::env::var_os("LINESIDE_PYTHON").map(PathBuf::from).unwrap_or_else(|| root().join(".venv/bin/python"));
     assert!(
         p.exists(),
         "the reference tools need {}: run `tools/test` (it creates the venv from tools/requirements.txt) \
@@ -186,12 +173,7 @@ pub(crate) fn parse_metrics(text: &str) -> HashMap<String, f64> {
         .stderr(Stdio::piped())
         .spawn()
         .expect("run tools/check_metrics.py");
-    child
-        .stdin
-        .take()
-        .unwrap()
-        .write_all(text.as_bytes())
-        .unwrap();
+    child.stdin.take().unwrap().write_all(text.as_bytes()).unwrap();
     let out = child.wait_with_output().unwrap();
     assert!(
         out.status.success(),
@@ -199,6 +181,11 @@ pub(crate) fn parse_metrics(text: &str) -> HashMap<String, f64> {
         String::from_utf8_lossy(&out.stderr)
     );
     serde_json::from_slice(&out.stdout).unwrap()
+}
+
+/// `lineside_request_duration_seconds_count` of the washer model for `outcome`.
+pub(crate) fn washer_requests(m: &HashMap<String, f64>, outcome: &str) -> f64 {
+    metric(m, &format!(r#"lineside_request_duration_seconds_count{{model="washers",outcome="{outcome}"}}"#))
 }
 
 /// Value of a parsed sample, 0 when absent.
@@ -211,10 +198,7 @@ pub(crate) async fn expect_error(resp: reqwest::Response, status: u16, kind: &st
     assert_eq!(resp.status().as_u16(), status, "status for kind {kind}");
     let body: serde_json::Value = resp.json().await.expect("error body is JSON");
     assert_eq!(body["error"]["kind"], kind, "{body}");
-    let msg = body["error"]["message"]
-        .as_str()
-        .expect("error.message is a string")
-        .to_string();
+    let msg = body["error"]["message"].as_str().expect("error.message is a string").to_string();
     assert!(!msg.is_empty());
     msg
 }
