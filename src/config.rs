@@ -99,8 +99,9 @@ pub struct ModelConfig {
     pub name: String,
     /// The ONNX file.
     pub onnx: Source,
-    /// The labels file, one label a line, in the model's output order.
-    pub labels: Source,
+    /// The labels file, one label a line, in the model's output order (`None` only for
+    /// `lineside check model.onnx`, which names classes by index).
+    pub labels: Option<Source>,
     /// How images become the model's input tensor.
     pub preprocess: PreprocessConfig,
     /// How requests are gathered into inference passes.
@@ -455,12 +456,38 @@ fn validate(
         models.push(ModelConfig {
             name: m.name,
             onnx: resolve(&m.onnx),
-            labels: resolve(&m.labels),
+            labels: Some(resolve(&m.labels)),
             preprocess,
             batching,
         });
     }
     Ok(Config { origin: origin.to_string(), server, models })
+}
+
+impl ModelConfig {
+    /// A model config for a bare ONNX file (`lineside check model.onnx`), with the default
+    /// preprocessing at `width` x `height` and classes named by index.
+    pub fn bare(onnx: PathBuf, width: u32, height: u32) -> ModelConfig {
+        let name = onnx.file_stem().map_or_else(|| "model".into(), |s| s.to_string_lossy().into_owned());
+        ModelConfig {
+            name,
+            onnx: Source::File(onnx),
+            labels: None,
+            preprocess: PreprocessConfig {
+                width,
+                height,
+                resize: default_resize(),
+                filter: default_filter(),
+                channels: default_channels(),
+                layout: None,
+                divisor: default_divisor(),
+                mean: vec![0.0; 3],
+                std: vec![1.0; 3],
+            },
+            batching: validate_batching(RawBatching::default())
+                .unwrap_or_else(|e| unreachable!("defaults are valid: {e}")),
+        }
+    }
 }
 
 fn positive(key: &str, v: Option<u64>, default: u64) -> Result<u64, String> {
@@ -575,7 +602,7 @@ height = 32
         assert_eq!(cfg.models.len(), 1);
         let m = &cfg.models[0];
         assert_eq!(m.name, "washers");
-        for src in [&m.onnx, &m.labels] {
+        for src in [&m.onnx, m.labels.as_ref().unwrap()] {
             assert!(matches!(src, Source::Embedded { .. }), "not embedded: {src:?}");
         }
         assert_eq!(cfg.server.listen.to_string(), "127.0.0.1:8080");

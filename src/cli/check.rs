@@ -1,12 +1,20 @@
-//! `lineside check`: load every configured model, verify its contract, time one inference
-//! and print what a deployment needs to know.
+//! `lineside check`: load models, verify their contract, report their layers and time them.
+//!
+//! `lineside check [--config FILE] [--model NAME] [--json]` checks configured models;
+//! `lineside check PATH.onnx --width W --height H` checks a bare file with default
+//! preprocessing and classes named by index. Exit 0 when every model would serve, 1 when one
+//! would not (the message says why), 2 for usage and config errors.
 
 use std::fmt::Write as _;
+use std::path::PathBuf;
 use std::time::{Duration, Instant};
+
+use serde::Serialize;
 
 use super::{ConfigArg, Outcome};
 use crate::config::{Config, ModelConfig, Overrides};
-use crate::model::{BatchAxis, Model, ScoreTransform, load};
+use crate::model::report::Report;
+use crate::model::{BatchAxis, Contract, Model, ScoreTransform, load};
 
 /// Arguments of `lineside check`.
 #[derive(Debug, clap::Args)]
@@ -14,102 +22,266 @@ pub struct CheckArgs {
     /// Config file.
     #[command(flatten)]
     pub config: ConfigArg,
+    /// Check this ONNX file instead of the configured models (default preprocessing).
+    #[arg(value_name = "PATH.onnx", conflicts_with_all = ["config", "model"])]
+    pub onnx: Option<PathBuf>,
+    /// Input width for PATH.onnx.
+    #[arg(long, requires = "onnx")]
+    pub width: Option<u32>,
+    /// Input height for PATH.onnx.
+    #[arg(long, requires = "onnx")]
+    pub height: Option<u32>,
+    /// Check only the configured model with this name.
+    #[arg(long, value_name = "NAME")]
+    pub model: Option<String>,
+    /// Print one JSON document instead of the text report.
+    #[arg(long)]
+    pub json: bool,
 }
 
-/// Check every model and print a report on stdout.
+/// One model's findings.
+#[derive(Debug, Serialize)]
+pub struct ModelCheck {
+    /// Model name.
+    pub name: String,
+    /// Whether lineside would serve it.
+    pub would_serve: bool,
+    /// Why not, when it would not.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub error: Option<String>,
+    /// The details, when it loaded.
+    #[serde(flatten, skip_serializing_if = "Option::is_none")]
+    pub details: Option<Details>,
+}
+
+/// What a loaded model looks like.
+#[derive(Debug, Serialize)]
+pub struct Details {
+    /// The ONNX file.
+    pub file: String,
+    /// SHA-256 prefix of the file.
+    pub version: String,
+    /// Class names in output order.
+    pub labels: Vec<String>,
+    /// Input/output contract.
+    pub contract: Contract,
+    /// Layers and totals.
+    pub report: Report,
+    /// Time to parse, check, plan and warm, in ms.
+    pub load_ms: f64,
+    /// Median single-image inference, in ms.
+    pub single_ms: Option<f64>,
+    /// `batch_cap` images run the way a lane runs a full pass, in ms per image.
+    pub pass_ms_per_image: Option<f64>,
+    /// The pass size timed.
+    pub pass_size: usize,
+}
+
+/// Check the models and print the report.
 ///
 /// # Errors
-/// Only config errors; a model that fails its checks gives `Outcome::ModelUnservable`.
+/// Only usage and config errors; a model that fails gives `Outcome::ModelUnservable`.
 pub fn run(args: CheckArgs) -> anyhow::Result<Outcome> {
-    let config = Config::load(args.config.config.as_deref(), &Overrides::default())?;
-    println!("config: {}", config.origin);
-    let mut outcome = Outcome::Ok;
-    for mc in &config.models {
-        match load::load(mc) {
-            Ok(model) => print!("{}", report(mc, &model, time_inference(&model))),
-            Err(e) => {
-                println!("\nmodel {:?}: WOULD NOT SERVE\n  {e:#}", mc.name);
-                outcome = Outcome::ModelUnservable;
-            }
+    let (origin, models) = match &args.onnx {
+        Some(path) => {
+            let (Some(w), Some(h)) = (args.width, args.height) else {
+                anyhow::bail!("checking {} needs --width and --height (the model's input size)", path.display());
+            };
+            (path.display().to_string(), vec![ModelConfig::bare(path.clone(), w, h)])
+        }
+        None => {
+            let config = Config::load(args.config.config.as_deref(), &Overrides::default())?;
+            let models = match &args.model {
+                Some(name) => match config.model(name) {
+                    Some(m) => vec![m.clone()],
+                    None => {
+                        let known: Vec<&str> = config.models.iter().map(|m| m.name.as_str()).collect();
+                        anyhow::bail!("{}: no model named {name:?}; it has {known:?}", config.origin);
+                    }
+                },
+                None => config.models.clone(),
+            };
+            (config.origin, models)
+        }
+    };
+    let checks: Vec<ModelCheck> = models.iter().map(check_one).collect();
+    if args.json {
+        let doc = serde_json::json!({ "config": origin, "models": checks });
+        println!("{}", serde_json::to_string_pretty(&doc)?);
+    } else {
+        println!("config: {origin}");
+        for c in &checks {
+            print!("{}", render(c));
         }
     }
-    Ok(outcome)
+    Ok(if checks.iter().all(|c| c.would_serve) { Outcome::Ok } else { Outcome::ModelUnservable })
 }
 
-/// Median of 15 single-image runs (after the warm-up `load` already did).
-fn time_inference(model: &Model) -> Option<Duration> {
+fn check_one(mc: &ModelConfig) -> ModelCheck {
+    match load::load_with_report(mc) {
+        Ok((model, report)) => {
+            let cap = mc.batching.batch_cap;
+            let single_ms = time_runs(&model, 1, 15).map(ms);
+            let pass_ms_per_image = time_runs(&model, cap, 5).map(|d| ms(d) / cap as f64);
+            ModelCheck {
+                name: mc.name.clone(),
+                would_serve: true,
+                error: None,
+                details: Some(Details {
+                    file: model.file.clone(),
+                    version: model.version.clone(),
+                    labels: model.labels.clone(),
+                    contract: model.contract.clone(),
+                    report,
+                    load_ms: ms(model.load_time),
+                    single_ms,
+                    pass_ms_per_image,
+                    pass_size: cap,
+                }),
+            }
+        }
+        Err(e) => {
+            ModelCheck { name: mc.name.clone(), would_serve: false, error: Some(format!("{e:#}")), details: None }
+        }
+    }
+}
+
+fn ms(d: Duration) -> f64 {
+    d.as_secs_f64() * 1e3
+}
+
+/// Median over `repeats` of running `images` consecutive single-image inferences (how a lane
+/// runs a pass), after the warm-up `load` already did.
+fn time_runs(model: &Model, images: usize, repeats: usize) -> Option<Duration> {
     let mut runner = model.runner().ok()?;
     let input = vec![0.5f32; model.input_len()];
-    let mut times: Vec<Duration> = (0..15)
-        .map(|_| {
-            let t = Instant::now();
-            runner.run(&input).map(|_| t.elapsed())
-        })
-        .collect::<Result<_, _>>()
-        .ok()?;
+    let mut times = Vec::with_capacity(repeats);
+    for _ in 0..repeats {
+        let t = Instant::now();
+        for _ in 0..images {
+            runner.run(&input).ok()?;
+        }
+        times.push(t.elapsed());
+    }
     times.sort();
     Some(times[times.len() / 2])
 }
 
-/// The human-readable contract of one model.
-pub fn report(mc: &ModelConfig, model: &Model, single: Option<Duration>) -> String {
-    let c = &model.contract;
-    let p = &mc.preprocess;
+/// Thousands separated by spaces, for counts in the table.
+fn grouped(n: u64) -> String {
+    let s = n.to_string();
+    let mut out = String::new();
+    for (i, c) in s.chars().enumerate() {
+        if i > 0 && (s.len() - i) % 3 == 0 {
+            out.push(' ');
+        }
+        out.push(c);
+    }
+    out
+}
+
+fn dims(d: &[usize]) -> String {
+    let v: Vec<String> = d.iter().map(usize::to_string).collect();
+    format!("[{}]", v.join(", "))
+}
+
+/// The text report of one model.
+pub fn render(c: &ModelCheck) -> String {
     let mut s = String::new();
-    let _ = writeln!(s, "\nmodel {:?}: ok, would serve", model.name);
-    let _ = writeln!(s, "  file        {}", model.file);
-    let _ = writeln!(s, "  version     {} (SHA-256 prefix)", model.version);
-    let batch = match &c.batch {
+    let Some(d) = &c.details else {
+        let _ =
+            writeln!(s, "\nmodel {:?}: WOULD NOT SERVE\n  {}", c.name, c.error.as_deref().unwrap_or("unknown error"));
+        return s;
+    };
+    let k = &d.contract;
+    let _ = writeln!(s, "\nmodel {:?}: ok, would serve", c.name);
+    let _ = writeln!(s, "  file        {}", d.file);
+    let _ = writeln!(s, "  version     {} (SHA-256 prefix)", d.version);
+    let batch = match &k.batch {
         BatchAxis::Dynamic(sym) => format!("dynamic ({sym})"),
         BatchAxis::Fixed(n) => format!("fixed at {n}"),
     };
     let _ = writeln!(
         s,
         "  input       {:?} [{}] float32, {} layout, {} channel(s), {}x{} served, batch {batch}",
-        c.input_name,
-        c.input_shape.join(", "),
-        c.layout,
-        c.channels,
-        c.width,
-        c.height
+        k.input_name,
+        k.input_shape.join(", "),
+        k.layout,
+        k.channels,
+        k.width,
+        k.height
     );
-    let scores = match c.scores {
+    let scores = match k.scores {
         ScoreTransform::FromGraph => "graph ends in Softmax: used as they are",
         ScoreTransform::Softmax => "logits: lineside applies softmax",
     };
     let _ = writeln!(
         s,
         "  output      {:?} [{}], {} classes; {scores}",
-        c.output_name,
-        c.output_shape.join(", "),
-        c.classes
+        k.output_name,
+        k.output_shape.join(", "),
+        k.classes
     );
-    let _ = writeln!(s, "  labels      {}", model.labels.join(", "));
-    let word = |d: &dyn std::fmt::Debug| format!("{d:?}").to_lowercase();
+    let _ = writeln!(s, "  labels      {}", d.labels.join(", "));
+
+    let r = &d.report;
     let _ = writeln!(
         s,
-        "  preprocess  resize = \"{}\" to {}x{}, filter = \"{}\", channels = \"{}\", x = (pixel / {} - mean) / std, mean {:?}, std {:?}",
-        word(&p.resize),
-        p.width,
-        p.height,
-        word(&p.filter),
-        word(&p.channels),
-        p.divisor,
-        p.mean,
-        p.std
+        "\n  {:>3}  {:<18} {:<20} {:<18} {:>11} {:>13} {:>5} {:>6}",
+        "#", "op", "name", "output", "params", "MACs", "RF", "stride"
     );
-    let _ = writeln!(s, "  load        {:.0} ms (parse, check, plan, warm)", model.load_time.as_secs_f64() * 1e3);
-    match single {
-        Some(d) => {
+    for l in &r.layers {
+        let opt = |v: Option<u64>| v.map_or_else(|| "-".to_string(), |v| v.to_string());
+        let mut name = l.name.clone();
+        if name.chars().count() > 20 {
+            name = name.chars().take(19).collect::<String>() + "…";
+        }
+        let _ = writeln!(
+            s,
+            "  {:>3}  {:<18} {:<20} {:<18} {:>11} {:>13} {:>5} {:>6}",
+            l.index,
+            l.op,
+            name,
+            dims(&l.output_shape),
+            grouped(l.params),
+            grouped(l.macs),
+            opt(l.receptive_field),
+            opt(l.stride)
+        );
+    }
+    let _ = writeln!(
+        s,
+        "\n  totals      {} parameters, {} MACs per image, {:.1}% of parameters in fully connected layers, {:.2} MB file",
+        grouped(r.params),
+        grouped(r.macs_per_image),
+        100.0 * r.fc_share(),
+        r.model_bytes as f64 / 1e6
+    );
+    let _ = writeln!(s, "  load        {:.0} ms (parse, check, plan, warm)", d.load_ms);
+    match (d.single_ms, d.pass_ms_per_image) {
+        (Some(one), Some(pass)) => {
             let _ = writeln!(
                 s,
-                "  inference   {:.3} ms per image on this machine (batch 1, one thread, median of 15)",
-                d.as_secs_f64() * 1e3
+                "  inference   {one:.3} ms for one image; {pass:.3} ms per image in a pass of {} (one thread, this machine)",
+                d.pass_size
             );
         }
-        None => {
+        _ => {
             let _ = writeln!(s, "  inference   could not be timed");
         }
     }
     s
+}
+
+#[cfg(test)]
+mod tests {
+    use super::grouped;
+
+    #[test]
+    fn groups_thousands() {
+        assert_eq!(grouped(0), "0");
+        assert_eq!(grouped(999), "999");
+        assert_eq!(grouped(1000), "1 000");
+        assert_eq!(grouped(11_689_512), "11 689 512");
+    }
 }

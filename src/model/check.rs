@@ -80,7 +80,12 @@ fn fixed(d: &TDim) -> Option<usize> {
 ///
 /// # Errors
 /// A message naming `file` and the offending input or output, saying what was expected.
-pub fn contract(model: &TypedModel, file: &str, pre: &PreprocessConfig, labels: usize) -> Result<Contract, String> {
+pub fn contract(
+    model: &TypedModel,
+    file: &str,
+    pre: &PreprocessConfig,
+    labels: Option<usize>,
+) -> Result<Contract, String> {
     if model.inputs.len() != 1 {
         let names: Vec<&str> = model.inputs.iter().map(|o| model.node(o.node).name.as_str()).collect();
         return Err(format!(
@@ -165,7 +170,7 @@ pub fn contract(model: &TypedModel, file: &str, pre: &PreprocessConfig, labels: 
         return Err(oat(": expected [N, K] or [N, K, 1, 1] class scores"));
     }
     let classes = fixed(od[1]).ok_or_else(|| oat(": the class axis is not fixed"))?;
-    if classes != labels {
+    if let Some(labels) = labels.filter(|&l| l != classes) {
         return Err(oat(&format!(": gives {classes} class scores but the labels file has {labels} labels")));
     }
     let last_op = model.node(out_outlet.node).op.name();

@@ -11,6 +11,7 @@ use anyhow::Context as _;
 use sha2::{Digest, Sha256};
 use tract_onnx::prelude::*;
 
+use super::report::{self, Report};
 use super::{Model, check, labels};
 use crate::config::{Layout, ModelConfig};
 
@@ -21,27 +22,57 @@ use crate::config::{Layout, ModelConfig};
 /// lineside cannot serve, or a labels file that does not match: each message names the
 /// file and what to change.
 pub fn load(cfg: &ModelConfig) -> anyhow::Result<Model> {
+    load_inner(cfg, false).map(|(m, _)| m)
+}
+
+/// Load as [`load`] does, and also build the layer report (what `lineside check` prints).
+///
+/// # Errors
+/// As [`load`].
+pub fn load_with_report(cfg: &ModelConfig) -> anyhow::Result<(Model, Report)> {
+    let (model, report) = load_inner(cfg, true)?;
+    Ok((model, report.context("internal: the layer report was not built")?))
+}
+
+fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Option<Report>)> {
     let start = Instant::now();
     let file = cfg.onnx.display();
     let bytes = cfg.onnx.read()?;
     let version = sha12(&bytes);
-    let labels_file = cfg.labels.display();
-    let labels = labels::parse(&cfg.labels.read()?, &labels_file).map_err(anyhow::Error::msg)?;
+    let labels = match &cfg.labels {
+        Some(src) => Some(labels::parse(&src.read()?, &src.display()).map_err(anyhow::Error::msg)?),
+        None => None,
+    };
 
-    let inference = tract_onnx::onnx()
-        .model_for_read(&mut &bytes[..])
-        .with_context(|| format!("{file}: not a loadable ONNX model"))?;
+    let onnx = tract_onnx::onnx();
+    let proto = onnx
+        .proto_model_for_read(&mut &bytes[..])
+        .with_context(|| format!("{file}: not a loadable ONNX model (truncated, or not ONNX at all)"))?;
+    let inference = onnx.model_for_proto_model(&proto).with_context(|| format!("{file}: not a loadable ONNX model"))?;
     let typed = inference
         .clone()
         .into_typed()
         .and_then(|m| m.into_decluttered())
         .with_context(|| format!("{file}: tract cannot type this graph (an unsupported operator or shape)"))?;
-    let contract = check::contract(&typed, &file, &cfg.preprocess, labels.len()).map_err(anyhow::Error::msg)?;
+    let contract =
+        check::contract(&typed, &file, &cfg.preprocess, labels.as_ref().map(Vec::len)).map_err(anyhow::Error::msg)?;
+    // Without a labels file (`lineside check model.onnx`), classes are named by index.
+    let labels = labels.unwrap_or_else(|| (0..contract.classes).map(|i| i.to_string()).collect());
 
     let (h, w, c) = (contract.height as usize, contract.width as usize, contract.channels);
     let shape: [usize; 4] = match contract.layout {
         Layout::Nchw => [1, c, h, w],
         Layout::Nhwc => [1, h, w, c],
+    };
+    let report = if want_report {
+        let at_b1 = inference
+            .clone()
+            .with_input_fact(0, f32::fact(shape).into())
+            .and_then(|m| m.into_typed())
+            .with_context(|| format!("{file}: tract cannot type the graph for input shape {shape:?}"))?;
+        Some(report::build(&proto, &at_b1, bytes.len() as u64))
+    } else {
+        None
     };
     let plan = inference
         .with_input_fact(0, f32::fact(shape).into())
@@ -65,7 +96,7 @@ pub fn load(cfg: &ModelConfig) -> anyhow::Result<Model> {
         .and_then(|mut r| r.run(&zeros))
         .with_context(|| format!("{}: warm-up inference failed", model.file))?;
     model.load_time = start.elapsed();
-    Ok(model)
+    Ok((model, report))
 }
 
 /// First 12 hex digits of the SHA-256 of `bytes`.

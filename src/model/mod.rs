@@ -10,6 +10,7 @@
 pub mod check;
 pub mod labels;
 pub mod load;
+pub mod report;
 
 use std::sync::Arc;
 use std::time::Duration;
