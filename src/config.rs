@@ -465,9 +465,9 @@ fn validate(
 }
 
 impl ModelConfig {
-    /// A model config for a bare ONNX file (`lineside check model.onnx`), with the default
-    /// preprocessing at `width` x `height` and classes named by index.
-    pub fn bare(onnx: PathBuf, width: u32, height: u32) -> ModelConfig {
+    /// A model config for a bare ONNX file (`lineside check model.onnx`): default
+    /// preprocessing at `width` x `height` with `channels`, classes named by index.
+    pub fn bare(onnx: PathBuf, width: u32, height: u32, channels: Channels) -> ModelConfig {
         let name = onnx.file_stem().map_or_else(|| "model".into(), |s| s.to_string_lossy().into_owned());
         ModelConfig {
             name,
@@ -478,11 +478,11 @@ impl ModelConfig {
                 height,
                 resize: default_resize(),
                 filter: default_filter(),
-                channels: default_channels(),
+                channels,
                 layout: None,
                 divisor: default_divisor(),
-                mean: vec![0.0; 3],
-                std: vec![1.0; 3],
+                mean: vec![0.0; channels.count()],
+                std: vec![1.0; channels.count()],
             },
             batching: validate_batching(RawBatching::default())
                 .unwrap_or_else(|e| unreachable!("defaults are valid: {e}")),

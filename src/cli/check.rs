@@ -12,7 +12,7 @@ use std::time::{Duration, Instant};
 use serde::Serialize;
 
 use super::{ConfigArg, Outcome};
-use crate::config::{Config, ModelConfig, Overrides};
+use crate::config::{Channels, Config, ModelConfig, Overrides};
 use crate::model::report::Report;
 use crate::model::{BatchAxis, Contract, Model, ScoreTransform, load};
 
@@ -31,6 +31,9 @@ pub struct CheckArgs {
     /// Input height for PATH.onnx.
     #[arg(long, requires = "onnx")]
     pub height: Option<u32>,
+    /// Channels for PATH.onnx: rgb, bgr or gray.
+    #[arg(long, requires = "onnx", default_value = "rgb", value_parser = ["rgb", "bgr", "gray"])]
+    pub channels: String,
     /// Check only the configured model with this name.
     #[arg(long, value_name = "NAME")]
     pub model: Option<String>,
@@ -87,7 +90,12 @@ pub fn run(args: CheckArgs) -> anyhow::Result<Outcome> {
             let (Some(w), Some(h)) = (args.width, args.height) else {
                 anyhow::bail!("checking {} needs --width and --height (the model's input size)", path.display());
             };
-            (path.display().to_string(), vec![ModelConfig::bare(path.clone(), w, h)])
+            let channels = match args.channels.as_str() {
+                "gray" => Channels::Gray,
+                "bgr" => Channels::Bgr,
+                _ => Channels::Rgb,
+            };
+            (path.display().to_string(), vec![ModelConfig::bare(path.clone(), w, h, channels)])
         }
         None => {
             let config = Config::load(args.config.config.as_deref(), &Overrides::default())?;

@@ -137,7 +137,7 @@ pub fn contract(
     let channels = fixed(c).unwrap_or(0);
     if channels != pre.channels.count() {
         return Err(at(&format!(
-            ": takes {channels} channel(s) but preprocess.channels gives {}; use channels = {}",
+            ": takes {channels} channel(s) but preprocess.channels gives {}; use channels = {} (--channels for a bare file)",
             pre.channels.count(),
             if channels == 1 { "\"gray\"" } else { "\"rgb\" or \"bgr\"" }
         )));

@@ -96,6 +96,14 @@ impl Runner {
     /// # Errors
     /// A wrong input length, or an engine failure.
     pub fn run(&mut self, input: &[f32]) -> Result<Vec<f32>, RunError> {
+        self.run_raw(input).map(|raw| self.transform.apply(&raw))
+    }
+
+    /// Run one image and return the model's raw outputs (logits, or the graph's own scores).
+    ///
+    /// # Errors
+    /// A wrong input length, or an engine failure.
+    pub fn run_raw(&mut self, input: &[f32]) -> Result<Vec<f32>, RunError> {
         let expected: usize = self.shape.iter().product();
         if input.len() != expected {
             return Err(RunError::InputSize { expected, found: input.len() });
@@ -107,7 +115,7 @@ impl Runner {
         if raw.len() != self.classes {
             return Err(RunError::Engine(format!("output has {} values, expected {}", raw.len(), self.classes)));
         }
-        Ok(self.transform.apply(&raw))
+        Ok(raw)
     }
 }
 

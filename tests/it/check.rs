@@ -1,0 +1,164 @@
+//! `lineside check` and the model loader against sources outside the project: standard conv
+//! arithmetic, LeNet-5's published layer table, and onnxruntime's outputs on the fixtures
+//! built by `tools/fixtures.py` (reference outputs committed beside each model).
+
+use std::path::PathBuf;
+use std::process::Command;
+
+use lineside::config::{Channels, ModelConfig};
+use lineside::model::load;
+use lineside::model::report::Report;
+use serde_json::Value;
+
+use crate::util::root;
+
+fn fixture(case: &str) -> PathBuf {
+    root().join("tests/fixtures").join(case).join("model.onnx")
+}
+
+fn bare(case: &str, side: u32, channels: Channels) -> ModelConfig {
+    ModelConfig::bare(fixture(case), side, side, channels)
+}
+
+fn report(case: &str, side: u32, channels: Channels) -> Report {
+    load::load_with_report(&bare(case, side, channels)).unwrap_or_else(|e| panic!("{case}: {e:#}")).1
+}
+
+fn row_shapes(r: &Report, op: &str) -> Vec<Vec<usize>> {
+    r.layers.iter().filter(|l| l.op == op).map(|l| l.output_shape.clone()).collect()
+}
+
+#[test]
+fn conv_arithmetic_follows_the_standard_shape_rules() {
+    // Common practice (standard CNN shape rules): out = floor((L - F + 2P) / S) + 1.
+    // 32x32x3 input, 5x5x3 filter, no padding -> 28x28; 3x3 with padding (F-1)/2 = 1 keeps
+    // 28; 3x3 stride 2 padding 1 -> floor((28 - 3 + 2) / 2) + 1 = 14; 2x2 pool stride 2 -> 7.
+    let r = report("arith", 32, Channels::Rgb);
+    assert_eq!(row_shapes(&r, "Conv"), vec![vec![1, 4, 28, 28], vec![1, 4, 28, 28], vec![1, 4, 14, 14]]);
+    assert_eq!(row_shapes(&r, "MaxPool"), vec![vec![1, 4, 7, 7]]);
+    // params of a conv: C_out * C_in * F * F + C_out; MACs: H_out * W_out * C_out * C_in * F * F
+    let c0 = &r.layers[0];
+    assert_eq!(c0.params, 4 * 3 * 5 * 5 + 4);
+    assert_eq!(c0.macs, 28 * 28 * 4 * 3 * 5 * 5);
+    // Three stacked 3x3 convolutions have a 7x7 receptive field (common practice).
+    let s = report("stacked3x3", 16, Channels::Rgb);
+    let rf: Vec<Option<u64>> = s.layers.iter().filter(|l| l.op == "Conv").map(|l| l.receptive_field).collect();
+    assert_eq!(rf, vec![Some(3), Some(5), Some(7)]);
+}
+
+#[test]
+fn lenet5_reproduces_its_published_layer_sizes() {
+    // LeCun et al., 1998, "Gradient-based learning applied to document recognition", Fig. 2
+    // and section II-B: C1 28x28x6, S2 14x14x6, C3 10x10x16, S4 5x5x16, C5 120, F6 84, 10.
+    let r = report("lenet5", 32, Channels::Gray);
+    let shapes: Vec<Vec<usize>> =
+        r.layers.iter().filter(|l| l.op != "Flatten").map(|l| l.output_shape.clone()).collect();
+    assert_eq!(
+        shapes,
+        vec![
+            vec![1, 6, 28, 28],
+            vec![1, 6, 14, 14],
+            vec![1, 16, 10, 10],
+            vec![1, 16, 5, 5],
+            vec![1, 120, 1, 1],
+            vec![1, 84],
+            vec![1, 10]
+        ]
+    );
+    let params: Vec<u64> = r.layers.iter().filter(|l| l.params > 0).map(|l| l.params).collect();
+    // The paper's trainable parameters: C1 156, C3 1516, C5 48120, F6 10164. The fixture's C3
+    // connects every S2 map to every C3 map (the paper's Table I leaves 60 of 96 pairs
+    // connected), so it has 16 * 6 * 25 + 16 = 2416 instead of 1516. The fixture's output is
+    // an ordinary 84 -> 10 layer with biases (850), not the paper's RBF units.
+    assert_eq!(params, vec![156, 2416, 48120, 10164, 850]);
+}
+
+#[test]
+fn fixtures_match_onnxruntime_on_the_same_input() {
+    // Reference: tests/fixtures/<case>/reference.json, raw outputs of onnxruntime 1.32.0 (PyPI)
+    // on x[i] = ((i * 7919) % 1000) / 1000, written by tools/fixtures.py.
+    for (case, side, channels) in [
+        ("lenet5", 32, Channels::Gray),
+        ("arith", 32, Channels::Rgb),
+        ("stacked3x3", 16, Channels::Rgb),
+        ("nhwc", 64, Channels::Rgb),
+        ("batch1", 32, Channels::Rgb),
+        ("softmax", 32, Channels::Rgb),
+    ] {
+        let r: Value = serde_json::from_slice(
+            &std::fs::read(root().join("tests/fixtures").join(case).join("reference.json")).unwrap(),
+        )
+        .unwrap();
+        let model = load::load(&bare(case, side, channels)).unwrap_or_else(|e| panic!("{case}: {e:#}"));
+        let n = model.input_len();
+        let x: Vec<f32> = (0..n as u64).map(|i| ((i * 7919) % 1000) as f32 / 1000.0).collect();
+        let ours = model.runner().unwrap().run_raw(&x).unwrap();
+        let theirs: Vec<f64> = r["outputs"].as_array().unwrap().iter().map(|v| v.as_f64().unwrap()).collect();
+        assert_eq!(ours.len(), theirs.len(), "{case}");
+        let worst = ours.iter().zip(&theirs).map(|(a, b)| (f64::from(*a) - b).abs()).fold(0.0, f64::max);
+        assert!(worst <= 1e-4, "{case}: max |lineside - onnxruntime| = {worst:e}");
+    }
+}
+
+#[test]
+fn layouts_batch_axes_and_softmax_are_detected() {
+    use lineside::config::Layout;
+    use lineside::model::{BatchAxis, ScoreTransform};
+    let nhwc = load::load(&bare("nhwc", 64, Channels::Rgb)).unwrap();
+    assert_eq!(nhwc.contract.layout, Layout::Nhwc);
+    let b1 = load::load(&bare("batch1", 32, Channels::Rgb)).unwrap();
+    assert_eq!(b1.contract.batch, BatchAxis::Fixed(1));
+    let sm = load::load(&bare("softmax", 32, Channels::Rgb)).unwrap();
+    assert_eq!(sm.contract.scores, ScoreTransform::FromGraph);
+    let arith = load::load(&bare("arith", 32, Channels::Rgb)).unwrap();
+    assert_eq!(arith.contract.scores, ScoreTransform::Softmax);
+}
+
+#[test]
+fn broken_models_are_refused_with_a_message_naming_file_and_cause() {
+    let cases: &[(&str, u32, Channels, &[&str])] = &[
+        ("two_inputs", 32, Channels::Rgb, &["two_inputs/model.onnx", "2 inputs", "\"mask\""]),
+        ("rank3", 32, Channels::Rgb, &["rank3/model.onnx", "rank 3, expected 4"]),
+        ("two_channels", 16, Channels::Rgb, &["[N, 2, 16, 16]", "no channel axis of size 1 or 3"]),
+        ("four_channels", 16, Channels::Rgb, &["[N, 4, 16, 16]", "no channel axis of size 1 or 3"]),
+        ("unknown_op", 16, Channels::Rgb, &["unknown_op/model.onnx", "FrobnicateRegion", "frob_1"]),
+        ("fixed_batch4", 32, Channels::Rgb, &["batch axis fixed at 4"]),
+        ("truncated", 32, Channels::Rgb, &["truncated/model.onnx", "not a loadable ONNX model"]),
+        ("arith", 30, Channels::Rgb, &["height is fixed at 32 but preprocess.height = 30"]),
+        ("lenet5", 32, Channels::Rgb, &["takes 1 channel(s) but preprocess.channels gives 3"]),
+    ];
+    for (case, side, ch, needles) in cases {
+        let err = format!("{:#}", load::load(&bare(case, *side, *ch)).expect_err(case));
+        for n in *needles {
+            assert!(err.contains(n), "{case}: {n:?} not in: {err}");
+        }
+    }
+}
+
+#[test]
+fn check_cli_json_report_and_exit_codes() {
+    let bin = env!("CARGO_BIN_EXE_lineside");
+    let out = Command::new(bin)
+        .args(["check", "--json", "--width", "32", "--height", "32", "--channels", "gray"])
+        .arg(fixture("lenet5"))
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    let v: Value = serde_json::from_slice(&out.stdout).unwrap();
+    let m = &v["models"][0];
+    assert_eq!(m["would_serve"], true);
+    assert_eq!(m["report"]["params"], 61706);
+    assert_eq!(m["contract"]["channels"], 1);
+    assert!(m["single_ms"].as_f64().unwrap() > 0.0);
+
+    let out =
+        Command::new(bin).args(["check", "--width", "16", "--height", "16"]).arg(fixture("rank3")).output().unwrap();
+    assert_eq!(out.status.code(), Some(1), "an unservable model exits 1");
+    assert!(String::from_utf8_lossy(&out.stdout).contains("WOULD NOT SERVE"));
+
+    let out = Command::new(bin).args(["check"]).arg(fixture("arith")).output().unwrap();
+    assert_eq!(out.status.code(), Some(2), "a bare file without --width/--height is a usage error");
+    let out = Command::new(bin).args(["check", "--model", "bolts"]).current_dir(std::env::temp_dir()).output().unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("no model named \"bolts\""));
+}
