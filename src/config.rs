@@ -23,6 +23,31 @@ const EMBEDDED: &[(&str, &[u8])] = &[
     ("../models/washers/classes.txt", include_bytes!("../models/washers/classes.txt")),
 ];
 
+/// Folders the built-in config refers to (the self-test samples), embedded file by file.
+const EMBEDDED_DIRS: &[(&str, &[(&str, &[u8])])] = &[("../models/washers/samples", WASHER_SAMPLES)];
+
+macro_rules! washer_samples {
+    ($($f:literal),* $(,)?) => { &[$(($f, include_bytes!(concat!("../models/washers/samples/", $f)))),*] };
+}
+const WASHER_SAMPLES: &[(&str, &[u8])] = washer_samples!(
+    "expected.json",
+    "good-01.png",
+    "good-02.png",
+    "good-03.png",
+    "cracked-01.png",
+    "cracked-02.png",
+    "cracked-03.png",
+    "burr-01.png",
+    "burr-02.png",
+    "burr-03.png",
+    "no_hole-01.png",
+    "no_hole-02.png",
+    "no_hole-03.png",
+    "empty-01.png",
+    "empty-02.png",
+    "empty-03.png",
+);
+
 /// Where a config value came from, for error messages.
 pub const BUILTIN_NAME: &str = "<built-in washer config>";
 
@@ -68,6 +93,13 @@ pub enum Source {
         /// The file's bytes.
         bytes: &'static [u8],
     },
+    /// A folder compiled into the binary, file by file (the built-in demo's samples).
+    EmbeddedDir {
+        /// The path as the built-in config writes it.
+        name: &'static str,
+        /// File names and bytes.
+        files: &'static [(&'static str, &'static [u8])],
+    },
 }
 
 impl Source {
@@ -80,14 +112,40 @@ impl Source {
         match self {
             Source::File(p) => std::fs::read(p).with_context(|| format!("cannot read {}", p.display())),
             Source::Embedded { bytes, .. } => Ok(bytes.to_vec()),
+            Source::EmbeddedDir { name, .. } => anyhow::bail!("{name} is a folder, not a file"),
         }
+    }
+
+    /// Read every file of a folder source, sorted by name (sub-folders are skipped).
+    ///
+    /// # Errors
+    /// An unreadable folder or file, with its path.
+    pub fn read_dir(&self) -> anyhow::Result<Vec<(String, Vec<u8>)>> {
+        use anyhow::Context as _;
+        let mut out = match self {
+            Source::File(dir) => {
+                let mut out = Vec::new();
+                for entry in std::fs::read_dir(dir).with_context(|| format!("cannot read folder {}", dir.display()))? {
+                    let path = entry.with_context(|| format!("cannot read folder {}", dir.display()))?.path();
+                    if path.is_file() {
+                        let bytes = std::fs::read(&path).with_context(|| format!("cannot read {}", path.display()))?;
+                        out.push((path.file_name().unwrap_or_default().to_string_lossy().into_owned(), bytes));
+                    }
+                }
+                out
+            }
+            Source::EmbeddedDir { files, .. } => files.iter().map(|(n, b)| (n.to_string(), b.to_vec())).collect(),
+            Source::Embedded { name, .. } => anyhow::bail!("{name} is a file, not a folder"),
+        };
+        out.sort_by(|a, b| a.0.cmp(&b.0));
+        Ok(out)
     }
 
     /// A name for messages.
     pub fn display(&self) -> String {
         match self {
             Source::File(p) => p.display().to_string(),
-            Source::Embedded { name, .. } => format!("{name} (embedded)"),
+            Source::Embedded { name, .. } | Source::EmbeddedDir { name, .. } => format!("{name} (embedded)"),
         }
     }
 }
@@ -106,6 +164,17 @@ pub struct ModelConfig {
     pub preprocess: PreprocessConfig,
     /// How requests are gathered into inference passes.
     pub batching: BatchingConfig,
+    /// Samples run through the serving path at load (`[models.selftest]`).
+    pub selftest: Option<SelftestConfig>,
+}
+
+/// Validated `[models.selftest]`.
+#[derive(Debug, Clone)]
+pub struct SelftestConfig {
+    /// The folder of images with their `expected.json`.
+    pub samples: Source,
+    /// Largest allowed difference of an expected score.
+    pub tolerance: f32,
 }
 
 /// How to resize a frame to the model's input size.
@@ -252,6 +321,14 @@ struct RawModel {
     preprocess: RawPreprocess,
     #[serde(default)]
     batching: RawBatching,
+    selftest: Option<RawSelftest>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawSelftest {
+    samples: PathBuf,
+    tolerance: Option<f32>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -324,6 +401,8 @@ pub mod defaults {
     pub const BACKLOG: usize = 64;
     /// `[models.batching] lane_threads`.
     pub const LANE_THREADS: usize = 1;
+    /// `[models.selftest] tolerance`.
+    pub const SELFTEST_TOLERANCE: f32 = 1e-4;
 }
 
 /// Flags from the command line that override the file.
@@ -368,8 +447,11 @@ impl Config {
     pub fn builtin(overrides: &Overrides) -> anyhow::Result<Config> {
         let embedded = |p: &Path| {
             let key = p.to_string_lossy();
-            match EMBEDDED.iter().find(|(name, _)| *name == key) {
-                Some((name, bytes)) => Source::Embedded { name, bytes },
+            if let Some((name, bytes)) = EMBEDDED.iter().find(|(name, _)| *name == key) {
+                return Source::Embedded { name, bytes };
+            }
+            match EMBEDDED_DIRS.iter().find(|(name, _)| *name == key) {
+                Some((name, files)) => Source::EmbeddedDir { name, files },
                 // Unreachable for the shipped config (a unit test checks every path).
                 None => Source::File(p.to_path_buf()),
             }
@@ -453,12 +535,23 @@ fn validate(
         }
         let preprocess = validate_preprocess(m.preprocess).map_err(|e| format!("{ctx}: {e}"))?;
         let batching = validate_batching(m.batching).map_err(|e| format!("{ctx}: {e}"))?;
+        let selftest = match m.selftest {
+            None => None,
+            Some(t) => {
+                let tolerance = t.tolerance.unwrap_or(defaults::SELFTEST_TOLERANCE);
+                if !(tolerance.is_finite() && tolerance >= 0.0) {
+                    return Err(format!("{ctx}: selftest.tolerance = {tolerance}: expected a number >= 0"));
+                }
+                Some(SelftestConfig { samples: resolve(&t.samples), tolerance })
+            }
+        };
         models.push(ModelConfig {
             name: m.name,
             onnx: resolve(&m.onnx),
             labels: Some(resolve(&m.labels)),
             preprocess,
             batching,
+            selftest,
         });
     }
     Ok(Config { origin: origin.to_string(), server, models })
@@ -486,6 +579,7 @@ impl ModelConfig {
             },
             batching: validate_batching(RawBatching::default())
                 .unwrap_or_else(|e| unreachable!("defaults are valid: {e}")),
+            selftest: None,
         }
     }
 }
@@ -604,6 +698,15 @@ height = 32
         assert_eq!(m.name, "washers");
         for src in [&m.onnx, m.labels.as_ref().unwrap()] {
             assert!(matches!(src, Source::Embedded { .. }), "not embedded: {src:?}");
+        }
+        let selftest = m.selftest.as_ref().expect("the washer bundle has a self-test");
+        assert!(matches!(selftest.samples, Source::EmbeddedDir { .. }), "not embedded: {:?}", selftest.samples);
+        // every sample expected.json lists is embedded
+        let files = selftest.samples.read_dir().unwrap();
+        let expected: serde_json::Value =
+            serde_json::from_slice(&files.iter().find(|(n, _)| n == "expected.json").unwrap().1).unwrap();
+        for name in expected.as_object().unwrap().keys() {
+            assert!(files.iter().any(|(n, _)| n == name), "{name} is not embedded");
         }
         assert_eq!(cfg.server.listen.to_string(), "127.0.0.1:8080");
     }

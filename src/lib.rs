@@ -13,6 +13,7 @@
 //! | [`model`] | load the ONNX file, check its contract, plan and run it (tract stays here) |
 //! | [`preprocess`] | decode, convert, resize, normalise; the bounded decode pool |
 //! | [`batch`] | per-model backlog, inference lanes, pass formation |
+//! | [`selftest`] | sample images through the serving path at load, against expectations |
 //! | [`http`] | router, handlers, the one error type |
 //! | [`metrics`] | the registry and the response-counting middleware |
 //! | [`server`] | bind, load, serve, drain |
@@ -28,5 +29,6 @@ pub mod http;
 pub mod metrics;
 pub mod model;
 pub mod preprocess;
+pub mod selftest;
 pub mod server;
 pub mod shutdown;

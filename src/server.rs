@@ -28,6 +28,7 @@ use crate::metrics::Metrics;
 use crate::model::load;
 use crate::preprocess::Pipeline;
 use crate::preprocess::pool::CpuPool;
+use crate::selftest;
 
 /// Extra controls for tests.
 #[derive(Default)]
@@ -56,7 +57,7 @@ pub async fn run(
     let app = crate::http::router(state);
 
     // The loader owns nothing the server needs; it reports back once.
-    let (loaded_tx, mut loaded_rx) = oneshot::channel::<anyhow::Result<(Arc<Served>, Vec<BatcherGuard>)>>();
+    let (loaded_tx, mut loaded_rx) = oneshot::channel::<anyhow::Result<Loaded>>();
     {
         let config = config.clone();
         let ready_tx = ready_tx.clone();
@@ -108,15 +109,23 @@ pub async fn run(
             loaded = &mut loaded_rx, if load_pending => {
                 load_pending = false;
                 match loaded {
-                    Ok(Ok((s, g))) => {
-                        tracing::info!(models = s.len(), "ready");
-                        served = Some(s.clone());
-                        guards = g;
-                        let _ = ready_tx.send(Readiness::Ready(s));
+                    Ok(Ok(loaded)) => {
+                        served = Some(loaded.served.clone());
+                        guards = loaded.guards;
+                        if loaded.selftest_failures.is_empty() {
+                            tracing::info!(models = loaded.served.len(), "ready");
+                            let _ = ready_tx.send(Readiness::Ready(loaded.served));
+                        } else {
+                            // Stay up, but never ready: the orchestrator keeps traffic away and
+                            // the reason is on /readyz and in the log.
+                            let reason = format!("self-test failed: {}", loaded.selftest_failures.join("; "));
+                            tracing::error!(%reason, "not ready");
+                            let _ = ready_tx.send(Readiness::Failed(reason));
+                        }
                     }
                     Ok(Err(e)) => {
                         tracing::error!(cause = %format!("{e:#}"), "model loading failed");
-                        let _ = ready_tx.send(Readiness::Failed(format!("{e:#}")));
+                        let _ = ready_tx.send(Readiness::Failed(format!("model loading failed: {e:#}")));
                         failure = Some(e);
                         break;
                     }
@@ -149,10 +158,18 @@ pub async fn run(
     }
 }
 
-/// Load every model and start its lanes.
-fn load_all(config: &Config, metrics: &Metrics) -> anyhow::Result<(Arc<Served>, Vec<BatcherGuard>)> {
+/// What the loader hands the server.
+struct Loaded {
+    served: Arc<Served>,
+    guards: Vec<BatcherGuard>,
+    selftest_failures: Vec<String>,
+}
+
+/// Load every model, run its self-test and start its lanes.
+fn load_all(config: &Config, metrics: &Metrics) -> anyhow::Result<Loaded> {
     let mut served = Served::new();
     let mut guards = Vec::new();
+    let mut selftest_failures = Vec::new();
     for mc in &config.models {
         let model = Arc::new(load::load(mc).with_context(|| format!("model {:?}", mc.name))?);
         tracing::info!(
@@ -164,8 +181,14 @@ fn load_all(config: &Config, metrics: &Metrics) -> anyhow::Result<(Arc<Served>, 
         let mm = metrics.for_model(&mc.name);
         let (batcher, guard) = Batcher::start(Arc::clone(&model), &mc.batching, mm.clone())?;
         let pipeline = Pipeline::new(mc.preprocess.clone(), model.contract.layout, config.server.max_pixels);
+        if let Some(st) = &mc.selftest {
+            let samples = selftest::Samples::read(st).with_context(|| format!("model {:?}: self-test", mc.name))?;
+            let outcome = selftest::run(&model, &pipeline, &samples, st.tolerance);
+            tracing::info!(model = %mc.name, samples = outcome.samples, failures = outcome.failures.len(), "self-test");
+            selftest_failures.extend(outcome.failures.into_iter().map(|f| format!("model {:?}: {f}", mc.name)));
+        }
         guards.push(guard);
         served.insert(mc.name.clone(), ServedModel { model, pipeline: Arc::new(pipeline), batcher, metrics: mm });
     }
-    Ok((Arc::new(served), guards))
+    Ok(Loaded { served: Arc::new(served), guards, selftest_failures })
 }

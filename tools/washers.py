@@ -14,8 +14,11 @@ The serving pipeline this model expects is lineside's built-in washer default:
 stretch 320x240 -> 96x96 with an antialiased bilinear filter (Pillow's BILINEAR), RGB,
 x = pixel / 255, NCHW float32.
 
+It writes samples/expected.json with labels only; `lineside check --write-expected` then adds
+the scores lineside computes, which the self-test checks at every load.
+
 Usage:
-    .venv/bin/python tools/washers.py --out models/washers          # ~20 min on 2 cores
+    .venv/bin/python tools/washers.py --out models/washers          # ~15 min on 2 cores
     .venv/bin/python tools/washers.py --out /tmp/w --eval-only       # re-measure accuracy
 """
 

@@ -12,9 +12,13 @@ use std::time::{Duration, Instant};
 use serde::Serialize;
 
 use super::{ConfigArg, Outcome};
-use crate::config::{Channels, Config, ModelConfig, Overrides};
+use anyhow::Context as _;
+
+use crate::config::{Channels, Config, ModelConfig, Overrides, Source};
 use crate::model::report::Report;
 use crate::model::{BatchAxis, Contract, Model, ScoreTransform, load};
+use crate::preprocess::Pipeline;
+use crate::selftest;
 
 /// Arguments of `lineside check`.
 #[derive(Debug, clap::Args)]
@@ -40,6 +44,10 @@ pub struct CheckArgs {
     /// Print one JSON document instead of the text report.
     #[arg(long)]
     pub json: bool,
+    /// Write each model's self-test `expected.json` from the current model (labels and
+    /// scores), to refresh a retrained model's bundle deliberately.
+    #[arg(long, conflicts_with = "onnx")]
+    pub write_expected: bool,
 }
 
 /// One model's findings.
@@ -78,6 +86,8 @@ pub struct Details {
     pub pass_ms_per_image: Option<f64>,
     /// The pass size timed.
     pub pass_size: usize,
+    /// The self-test, when the model has one.
+    pub selftest: Option<selftest::Outcome>,
 }
 
 /// Check the models and print the report.
@@ -112,6 +122,11 @@ pub fn run(args: CheckArgs) -> anyhow::Result<Outcome> {
             (config.origin, models)
         }
     };
+    if args.write_expected {
+        for mc in &models {
+            write_expected(mc)?;
+        }
+    }
     let checks: Vec<ModelCheck> = models.iter().map(check_one).collect();
     if args.json {
         let doc = serde_json::json!({ "config": origin, "models": checks });
@@ -125,16 +140,42 @@ pub fn run(args: CheckArgs) -> anyhow::Result<Outcome> {
     Ok(if checks.iter().all(|c| c.would_serve) { Outcome::Ok } else { Outcome::ModelUnservable })
 }
 
+/// Rewrite a model's `expected.json` from what the model gives now.
+fn write_expected(mc: &ModelConfig) -> anyhow::Result<()> {
+    let Some(st) = &mc.selftest else {
+        anyhow::bail!("model {:?} has no [models.selftest] folder to write expected.json into", mc.name);
+    };
+    let Source::File(dir) = &st.samples else {
+        anyhow::bail!("model {:?}: the built-in samples are read-only; use a config file", mc.name);
+    };
+    let model = load::load(mc)?;
+    let pipeline = Pipeline::new(mc.preprocess.clone(), model.contract.layout, u64::MAX);
+    let expected = selftest::expectations(&model, &pipeline, &selftest::Samples::images_only(st)?)?;
+    let path = dir.join("expected.json");
+    std::fs::write(&path, serde_json::to_string_pretty(&expected)? + "\n")
+        .with_context(|| format!("cannot write {}", path.display()))?;
+    eprintln!("wrote {} ({} samples)", path.display(), expected.len());
+    Ok(())
+}
+
 fn check_one(mc: &ModelConfig) -> ModelCheck {
     match load::load_with_report(mc) {
         Ok((model, report)) => {
+            let selftest = mc.selftest.as_ref().map(|st| {
+                let pipeline = Pipeline::new(mc.preprocess.clone(), model.contract.layout, u64::MAX);
+                match selftest::Samples::read(st) {
+                    Ok(samples) => selftest::run(&model, &pipeline, &samples, st.tolerance),
+                    Err(e) => selftest::Outcome { samples: 0, failures: vec![format!("{e:#}")] },
+                }
+            });
+            let passed = selftest.as_ref().is_none_or(selftest::Outcome::passed);
             let cap = mc.batching.batch_cap;
             let single_ms = time_runs(&model, 1, 15).map(ms);
             let pass_ms_per_image = time_runs(&model, cap, 5).map(|d| ms(d) / cap as f64);
             ModelCheck {
                 name: mc.name.clone(),
-                would_serve: true,
-                error: None,
+                would_serve: passed,
+                error: (!passed).then(|| "the self-test failed".to_string()),
                 details: Some(Details {
                     file: model.file.clone(),
                     version: model.version.clone(),
@@ -145,6 +186,7 @@ fn check_one(mc: &ModelConfig) -> ModelCheck {
                     single_ms,
                     pass_ms_per_image,
                     pass_size: cap,
+                    selftest,
                 }),
             }
         }
@@ -202,7 +244,8 @@ pub fn render(c: &ModelCheck) -> String {
         return s;
     };
     let k = &d.contract;
-    let _ = writeln!(s, "\nmodel {:?}: ok, would serve", c.name);
+    let verdict = if c.would_serve { "ok, would serve" } else { "WOULD NOT SERVE (self-test failed)" };
+    let _ = writeln!(s, "\nmodel {:?}: {verdict}", c.name);
     let _ = writeln!(s, "  file        {}", d.file);
     let _ = writeln!(s, "  version     {} (SHA-256 prefix)", d.version);
     let batch = match &k.batch {
@@ -266,6 +309,20 @@ pub fn render(c: &ModelCheck) -> String {
         r.model_bytes as f64 / 1e6
     );
     let _ = writeln!(s, "  load        {:.0} ms (parse, check, plan, warm)", d.load_ms);
+    match &d.selftest {
+        None => {
+            let _ = writeln!(s, "  self-test   none configured ([models.selftest])");
+        }
+        Some(t) if t.passed() => {
+            let _ = writeln!(s, "  self-test   passed: {} samples give their expected label and scores", t.samples);
+        }
+        Some(t) => {
+            let _ = writeln!(s, "  self-test   FAILED on {} of {} samples:", t.failures.len(), t.samples);
+            for f in &t.failures {
+                let _ = writeln!(s, "                {f}");
+            }
+        }
+    }
     match (d.single_ms, d.pass_ms_per_image) {
         (Some(one), Some(pass)) => {
             let _ = writeln!(

@@ -24,7 +24,7 @@ pub async fn readyz(State(state): State<AppState>) -> Result<Json<Value>, ApiErr
             Ok(Json(json!({ "ready": true, "models": models })))
         }
         Readiness::Loading(what) => Err(ApiError::new(ErrorKind::NotReady, format!("loading: {what}"))),
-        Readiness::Failed(why) => Err(ApiError::new(ErrorKind::NotReady, format!("model loading failed: {why}"))),
+        Readiness::Failed(why) => Err(ApiError::new(ErrorKind::NotReady, why.clone())),
         Readiness::Draining(_) => Err(ApiError::new(ErrorKind::NotReady, "shutting down: draining requests in flight")),
     }
 }

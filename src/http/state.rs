@@ -37,7 +37,8 @@ pub enum Readiness {
     Loading(String),
     /// Serving.
     Ready(Arc<Served>),
-    /// Loading failed; the process is about to exit.
+    /// Not serving: loading failed (the process is about to exit) or a self-test failed
+    /// (the process stays up, never ready); the text says why.
     Failed(String),
     /// Shutting down: requests in flight are answered, `/readyz` says 503.
     Draining(Arc<Served>),

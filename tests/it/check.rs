@@ -162,3 +162,81 @@ fn check_cli_json_report_and_exit_codes() {
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("no model named \"bolts\""));
 }
+
+/// A copy of two washer samples in a fresh folder, and a config whose self-test reads it.
+fn selftest_folder(name: &str) -> (PathBuf, String) {
+    let dir = std::env::temp_dir().join(format!("lineside-it-selftest-{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&dir);
+    std::fs::create_dir_all(&dir).unwrap();
+    for f in ["good-01.png", "burr-01.png"] {
+        std::fs::copy(root().join("models/washers/samples").join(f), dir.join(f)).unwrap();
+    }
+    let text = std::fs::read_to_string(root().join("config/lineside.toml"))
+        .unwrap()
+        .replace("samples = \"../models/washers/samples\"", &format!("samples = {:?}", dir.to_str().unwrap()))
+        .replace("\"../models/washers/", &format!("\"{}/models/washers/", root().display()));
+    assert!(text.contains(dir.to_str().unwrap()));
+    std::fs::write(dir.join("lineside.toml"), &text).unwrap();
+    (dir, text)
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_failing_selftest_makes_check_exit_1_and_keeps_readyz_503() {
+    let (dir, text) = selftest_folder("fail");
+    std::fs::write(
+        dir.join("expected.json"),
+        r#"{"good-01.png": {"label": "good"}, "burr-01.png": {"label": "cracked"}}"#,
+    )
+    .unwrap();
+    let out = Command::new(env!("CARGO_BIN_EXE_lineside"))
+        .args(["check", "--config"])
+        .arg(dir.join("lineside.toml"))
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert_eq!(out.status.code(), Some(1), "{stdout}");
+    assert!(stdout.contains("burr-01.png: expected \"cracked\", got \"burr\""), "{stdout}");
+
+    let config = crate::util::config_from_text(&text);
+    let mut server = crate::util::TestServer::start_gated(config).await;
+    server.release_load();
+    let c = reqwest::Client::new();
+    let mut msg = String::new();
+    for _ in 0..300 {
+        let r = c.get(server.url("/readyz")).send().await.unwrap();
+        assert_eq!(r.status(), 503, "never ready with a failing self-test");
+        msg = crate::util::expect_error(r, 503, "not_ready").await;
+        if msg.contains("self-test") {
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    }
+    assert!(msg.contains("self-test failed") && msg.contains("burr-01.png"), "{msg}");
+    assert_eq!(c.get(server.url("/healthz")).send().await.unwrap().status(), 200, "alive, not ready");
+    server.stop().await.unwrap();
+}
+
+#[test]
+fn write_expected_records_the_current_model_and_then_passes() {
+    let (dir, _) = selftest_folder("write");
+    let cfg = dir.join("lineside.toml");
+    let bin = env!("CARGO_BIN_EXE_lineside");
+    let out = Command::new(bin).args(["check", "--write-expected", "--config"]).arg(&cfg).output().unwrap();
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    let v: Value = serde_json::from_slice(&std::fs::read(dir.join("expected.json")).unwrap()).unwrap();
+    assert_eq!(v["good-01.png"]["label"], "good");
+    assert_eq!(v["burr-01.png"]["label"], "burr");
+    assert_eq!(v["burr-01.png"]["scores"].as_array().unwrap().len(), 5);
+    let out = Command::new(bin).args(["check", "--json", "--config"]).arg(&cfg).output().unwrap();
+    let doc: Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(doc["models"][0]["selftest"]["samples"], 2);
+    assert_eq!(doc["models"][0]["selftest"]["failures"].as_array().unwrap().len(), 0);
+    // A score moved by more than the tolerance (1e-4) is a failure.
+    let mut changed = v.clone();
+    let s0 = changed["good-01.png"]["scores"][0].as_f64().unwrap();
+    changed["good-01.png"]["scores"][0] = serde_json::json!(s0 + 0.01);
+    std::fs::write(dir.join("expected.json"), changed.to_string()).unwrap();
+    let out = Command::new(bin).args(["check", "--config"]).arg(&cfg).output().unwrap();
+    assert_eq!(out.status.code(), Some(1));
+    assert!(String::from_utf8_lossy(&out.stdout).contains("tolerance"), "{}", String::from_utf8_lossy(&out.stdout));
+}
