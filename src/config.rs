@@ -245,10 +245,10 @@ impl std::fmt::Display for Layout {
 /// Validated `[models.preprocess]`.
 #[derive(Debug, Clone, PartialEq)]
 pub struct PreprocessConfig {
-    /// Model input width in pixels.
-    pub width: u32,
-    /// Model input height in pixels.
-    pub height: u32,
+    /// Model input width in pixels (`None`: taken from the model, which must fix it).
+    pub width: Option<u32>,
+    /// Model input height in pixels (`None`: taken from the model, which must fix it).
+    pub height: Option<u32>,
     /// Resize mode.
     pub resize: ResizeMode,
     /// Resampling filter.
@@ -334,8 +334,8 @@ struct RawSelftest {
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields)]
 struct RawPreprocess {
-    width: u32,
-    height: u32,
+    width: Option<u32>,
+    height: Option<u32>,
     #[serde(default = "default_resize")]
     resize: ResizeMode,
     #[serde(default = "default_filter")]
@@ -559,8 +559,9 @@ fn validate(
 
 impl ModelConfig {
     /// A model config for a bare ONNX file (`lineside check model.onnx`): default
-    /// preprocessing at `width` x `height` with `channels`, classes named by index.
-    pub fn bare(onnx: PathBuf, width: u32, height: u32, channels: Channels) -> ModelConfig {
+    /// preprocessing at `width` x `height` (or the model's own size) with `channels`,
+    /// classes named by index.
+    pub fn bare(onnx: PathBuf, width: Option<u32>, height: Option<u32>, channels: Channels) -> ModelConfig {
         let name = onnx.file_stem().map_or_else(|| "model".into(), |s| s.to_string_lossy().into_owned());
         ModelConfig {
             name,
@@ -593,6 +594,7 @@ fn positive(key: &str, v: Option<u64>, default: u64) -> Result<u64, String> {
 
 fn validate_preprocess(p: RawPreprocess) -> Result<PreprocessConfig, String> {
     for (key, v) in [("width", p.width), ("height", p.height)] {
+        let Some(v) = v else { continue };
         if !(1..=8192).contains(&v) {
             return Err(format!("preprocess.{key} = {v}: expected 1 ..= 8192"));
         }

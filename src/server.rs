@@ -180,7 +180,7 @@ fn load_all(config: &Config, metrics: &Metrics) -> anyhow::Result<Loaded> {
         );
         let mm = metrics.for_model(&mc.name);
         let (batcher, guard) = Batcher::start(Arc::clone(&model), &mc.batching, mm.clone())?;
-        let pipeline = Pipeline::new(mc.preprocess.clone(), model.contract.layout, config.server.max_pixels);
+        let pipeline = Pipeline::new(mc.preprocess.clone(), &model.contract, config.server.max_pixels);
         if let Some(st) = &mc.selftest {
             let samples = selftest::Samples::read(st).with_context(|| format!("model {:?}: self-test", mc.name))?;
             let outcome = selftest::run(&model, &pipeline, &samples, st.tolerance);

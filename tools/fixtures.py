@@ -13,7 +13,8 @@ Cases that should serve:
   batch1    a fixed batch of 1
   softmax   a graph ending in Softmax
 Cases that must be refused (no reference): two_inputs, rank3, two_channels, four_channels,
-  unknown_op, truncated, fixed_batch4.
+  unknown_op, truncated, fixed_batch4,
+  dynamic_hw (refused only when no size is configured).
 
 Usage: .venv/bin/python tools/fixtures.py   (versions pinned in tools/requirements.txt)
 """
@@ -230,6 +231,11 @@ def main():
     m.graph.input[0].type.tensor_type.shape.dim[0].dim_value = 4
     m.graph.output[0].type.tensor_type.shape.dim[0].dim_value = 4
     write("fixed_batch4", m, k, s, reference=False)
+
+    m, k, s = arith()
+    for i, sym in [(2, "H"), (3, "W")]:
+        m.graph.input[0].type.tensor_type.shape.dim[i].dim_param = sym
+    write("dynamic_hw", m, k, s, reference=False)
 
     good = open(os.path.join(OUT, "arith", "model.onnx"), "rb").read()
     d = os.path.join(OUT, "truncated")

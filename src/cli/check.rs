@@ -29,10 +29,10 @@ pub struct CheckArgs {
     /// Check this ONNX file instead of the configured models (default preprocessing).
     #[arg(value_name = "PATH.onnx", conflicts_with_all = ["config", "model"])]
     pub onnx: Option<PathBuf>,
-    /// Input width for PATH.onnx.
+    /// Input width for PATH.onnx (needed when the model leaves it dynamic).
     #[arg(long, requires = "onnx")]
     pub width: Option<u32>,
-    /// Input height for PATH.onnx.
+    /// Input height for PATH.onnx (needed when the model leaves it dynamic).
     #[arg(long, requires = "onnx")]
     pub height: Option<u32>,
     /// Channels for PATH.onnx: rgb, bgr or gray.
@@ -97,15 +97,12 @@ pub struct Details {
 pub fn run(args: CheckArgs) -> anyhow::Result<Outcome> {
     let (origin, models) = match &args.onnx {
         Some(path) => {
-            let (Some(w), Some(h)) = (args.width, args.height) else {
-                anyhow::bail!("checking {} needs --width and --height (the model's input size)", path.display());
-            };
             let channels = match args.channels.as_str() {
                 "gray" => Channels::Gray,
                 "bgr" => Channels::Bgr,
                 _ => Channels::Rgb,
             };
-            (path.display().to_string(), vec![ModelConfig::bare(path.clone(), w, h, channels)])
+            (path.display().to_string(), vec![ModelConfig::bare(path.clone(), args.width, args.height, channels)])
         }
         None => {
             let config = Config::load(args.config.config.as_deref(), &Overrides::default())?;
@@ -149,7 +146,7 @@ fn write_expected(mc: &ModelConfig) -> anyhow::Result<()> {
         anyhow::bail!("model {:?}: the built-in samples are read-only; use a config file", mc.name);
     };
     let model = load::load(mc)?;
-    let pipeline = Pipeline::new(mc.preprocess.clone(), model.contract.layout, u64::MAX);
+    let pipeline = Pipeline::new(mc.preprocess.clone(), &model.contract, u64::MAX);
     let expected = selftest::expectations(&model, &pipeline, &selftest::Samples::images_only(st)?)?;
     let path = dir.join("expected.json");
     std::fs::write(&path, serde_json::to_string_pretty(&expected)? + "\n")
@@ -162,7 +159,7 @@ fn check_one(mc: &ModelConfig) -> ModelCheck {
     match load::load_with_report(mc) {
         Ok((model, report)) => {
             let selftest = mc.selftest.as_ref().map(|st| {
-                let pipeline = Pipeline::new(mc.preprocess.clone(), model.contract.layout, u64::MAX);
+                let pipeline = Pipeline::new(mc.preprocess.clone(), &model.contract, u64::MAX);
                 match selftest::Samples::read(st) {
                     Ok(samples) => selftest::run(&model, &pipeline, &samples, st.tolerance),
                     Err(e) => selftest::Outcome { samples: 0, failures: vec![format!("{e:#}")] },

@@ -21,6 +21,16 @@ pub enum BatchAxis {
     Fixed(usize),
 }
 
+/// Element type of the image input.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum InputType {
+    /// Normalised floats: x = (pixel / divisor - mean) / std.
+    Float32,
+    /// Raw 8-bit pixels; the model normalises inside (mean/std in the config do not apply).
+    Uint8,
+}
+
 /// How raw outputs become probabilities.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
@@ -56,6 +66,8 @@ pub struct Contract {
     pub height: u32,
     /// Input width served.
     pub width: u32,
+    /// Element type of the input.
+    pub input_type: InputType,
     /// The batch axis.
     pub batch: BatchAxis,
     /// Name of the scores output.
@@ -103,9 +115,13 @@ pub fn contract(
     let fact = model.input_fact(0).map_err(|e| format!("{file}: input {input_name:?}: {e}"))?;
     let shape = dims(&fact.shape);
     let at = |what: &str| format!("{file}: input {input_name:?} (shape [{}])", shape.join(", ")) + what;
-    if fact.datum_type != f32::datum_type() {
-        return Err(at(&format!(": element type {:?}, expected float32", fact.datum_type)));
-    }
+    let input_type = if fact.datum_type == f32::datum_type() {
+        InputType::Float32
+    } else if fact.datum_type == u8::datum_type() {
+        InputType::Uint8
+    } else {
+        return Err(at(&format!(": element type {:?}, expected float32 or uint8", fact.datum_type)));
+    };
     if fact.rank() != 4 {
         return Err(at(&format!(": rank {}, expected 4 ([N, C, H, W] or [N, H, W, C])", fact.rank())));
     }
@@ -142,13 +158,39 @@ pub fn contract(
             if channels == 1 { "\"gray\"" } else { "\"rgb\" or \"bgr\"" }
         )));
     }
-    for (axis, dim, want, key) in [("height", h, pre.height, "height"), ("width", w, pre.width, "width")] {
-        if let Some(v) = fixed(dim) {
-            if v != want as usize {
-                return Err(at(&format!(": {axis} is fixed at {v} but preprocess.{key} = {want}; set {key} = {v}")));
+    let mut size = [0u32; 2];
+    let mut missing = Vec::new();
+    for (i, (dim, want, key)) in [(h, pre.height, "height"), (w, pre.width, "width")].into_iter().enumerate() {
+        size[i] = match (fixed(dim), want) {
+            (Some(v), Some(want)) if v != want as usize => {
+                return Err(at(&format!(
+                    ": {key} is fixed at {v} but preprocess.{key} = {want}; set {key} = {v} or remove it"
+                )));
             }
-        }
+            (Some(v), _) => u32::try_from(v).map_err(|_| at(&format!(": {key} {v} is too large")))?,
+            (None, Some(want)) => want,
+            (None, None) => {
+                missing.push(key);
+                0
+            }
+        };
     }
+    if !missing.is_empty() {
+        let keys: Vec<String> = missing.iter().map(|k| format!("preprocess.{k}")).collect();
+        return Err(at(&format!(
+            ": {} dynamic in the model; set {} (--{} for a bare file)",
+            if missing.len() == 2 {
+                "height and width are"
+            } else if missing[0] == "height" {
+                "height is"
+            } else {
+                "width is"
+            },
+            keys.join(" and "),
+            missing.join(" and --")
+        )));
+    }
+    let [height, width] = size;
     let batch = match fixed(d[0]) {
         Some(1) => BatchAxis::Fixed(1),
         Some(n) => {
@@ -181,8 +223,9 @@ pub fn contract(
         input_shape: shape,
         layout,
         channels,
-        height: pre.height,
-        width: pre.width,
+        height,
+        width,
+        input_type,
         batch,
         output_name,
         output_shape,

@@ -12,7 +12,7 @@ use sha2::{Digest, Sha256};
 use tract_onnx::prelude::*;
 
 use super::report::{self, Report};
-use super::{Model, check, labels};
+use super::{InputType, Model, check, labels};
 use crate::config::{Layout, ModelConfig};
 
 /// Load, check, plan and warm one model.
@@ -67,7 +67,7 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
     let report = if want_report {
         let at_b1 = inference
             .clone()
-            .with_input_fact(0, f32::fact(shape).into())
+            .with_input_fact(0, input_fact(contract.input_type, shape))
             .and_then(|m| m.into_typed())
             .with_context(|| format!("{file}: tract cannot type the graph for input shape {shape:?}"))?;
         Some(report::build(&proto, &at_b1, bytes.len() as u64))
@@ -75,7 +75,7 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
         None
     };
     let plan = inference
-        .with_input_fact(0, f32::fact(shape).into())
+        .with_input_fact(0, input_fact(contract.input_type, shape))
         .and_then(|m| m.into_optimized())
         .and_then(|m| m.into_runnable())
         .with_context(|| format!("{file}: tract cannot plan the graph for input shape {shape:?}"))?;
@@ -97,6 +97,13 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
         .with_context(|| format!("{}: warm-up inference failed", model.file))?;
     model.load_time = start.elapsed();
     Ok((model, report))
+}
+
+fn input_fact(t: InputType, shape: [usize; 4]) -> InferenceFact {
+    match t {
+        InputType::Float32 => f32::fact(shape).into(),
+        InputType::Uint8 => u8::fact(shape).into(),
+    }
 }
 
 /// First 12 hex digits of the SHA-256 of `bytes`.

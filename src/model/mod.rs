@@ -17,7 +17,7 @@ use std::time::Duration;
 
 use tract_onnx::prelude::*;
 
-pub use check::{BatchAxis, Contract, ScoreTransform};
+pub use check::{BatchAxis, Contract, InputType, ScoreTransform};
 
 /// A loaded, checked and planned model, shared by every lane that serves it.
 pub struct Model {
@@ -50,6 +50,7 @@ pub struct Runner {
     shape: [usize; 4],
     transform: ScoreTransform,
     classes: usize,
+    input_type: InputType,
 }
 
 /// Why a run failed.
@@ -86,7 +87,7 @@ impl Model {
             crate::config::Layout::Nchw => [1, ch, h, w],
             crate::config::Layout::Nhwc => [1, h, w, ch],
         };
-        Ok(Runner { state, shape, transform: c.scores, classes: c.classes })
+        Ok(Runner { state, shape, transform: c.scores, classes: c.classes, input_type: c.input_type })
     }
 }
 
@@ -108,7 +109,15 @@ impl Runner {
         if input.len() != expected {
             return Err(RunError::InputSize { expected, found: input.len() });
         }
-        let tensor = Tensor::from_shape(&self.shape, input).map_err(|e| RunError::Engine(format!("{e:#}")))?;
+        let tensor = match self.input_type {
+            InputType::Float32 => Tensor::from_shape(&self.shape, input),
+            // The pipeline gives raw pixel values (exact integers 0..=255) for uint8 models.
+            InputType::Uint8 => {
+                let bytes: Vec<u8> = input.iter().map(|&v| v.round().clamp(0.0, 255.0) as u8).collect();
+                Tensor::from_shape(&self.shape, &bytes)
+            }
+        }
+        .map_err(|e| RunError::Engine(format!("{e:#}")))?;
         let out = self.state.run(tvec![tensor.into()]).map_err(|e| RunError::Engine(format!("{e:#}")))?;
         let view = out[0].to_plain_array_view::<f32>().map_err(|e| RunError::Engine(format!("{e:#}")))?;
         let raw: Vec<f32> = view.iter().copied().collect();

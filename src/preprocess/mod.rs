@@ -16,6 +16,7 @@ use std::time::{Duration, Instant};
 use image::RgbImage;
 
 use crate::config::{Channels, Layout, PreprocessConfig};
+use crate::model::{Contract, InputType};
 
 /// Why an image could not become a tensor.
 #[derive(Debug, thiserror::Error)]
@@ -69,14 +70,21 @@ pub struct Prepared {
 #[derive(Debug, Clone)]
 pub struct Pipeline {
     cfg: PreprocessConfig,
+    width: u32,
+    height: u32,
     layout: Layout,
     max_pixels: u64,
 }
 
 impl Pipeline {
-    /// A pipeline for a model with this config, in the layout its contract says.
-    pub fn new(cfg: PreprocessConfig, layout: Layout, max_pixels: u64) -> Pipeline {
-        Pipeline { cfg, layout, max_pixels }
+    /// A pipeline for a model with this config, at the size and in the layout its contract
+    /// says. A uint8 model takes raw pixels: the normalisation keys do not apply to it.
+    pub fn new(mut cfg: PreprocessConfig, contract: &Contract, max_pixels: u64) -> Pipeline {
+        if contract.input_type == InputType::Uint8 {
+            let n = cfg.channels.count();
+            (cfg.divisor, cfg.mean, cfg.std) = (1.0, vec![0.0; n], vec![1.0; n]);
+        }
+        Pipeline { cfg, width: contract.width, height: contract.height, layout: contract.layout, max_pixels }
     }
 
     /// Decode and preprocess one request body.
@@ -106,7 +114,7 @@ impl Pipeline {
             img.as_raw()
         };
         let n = c.channels.count();
-        let small = resize::resize(src, w, h, n, c.width, c.height, c.filter)?;
-        Ok(normalize::to_tensor(&small, c.width, c.height, c.channels, self.layout, c.divisor, &c.mean, &c.std))
+        let small = resize::resize(src, w, h, n, self.width, self.height, c.filter)?;
+        Ok(normalize::to_tensor(&small, self.width, self.height, c.channels, self.layout, c.divisor, &c.mean, &c.std))
     }
 }

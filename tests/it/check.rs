@@ -17,7 +17,7 @@ fn fixture(case: &str) -> PathBuf {
 }
 
 fn bare(case: &str, side: u32, channels: Channels) -> ModelConfig {
-    ModelConfig::bare(fixture(case), side, side, channels)
+    ModelConfig::bare(fixture(case), Some(side), Some(side), channels)
 }
 
 fn report(case: &str, side: u32, channels: Channels) -> Report {
@@ -125,10 +125,13 @@ fn broken_models_are_refused_with_a_message_naming_file_and_cause() {
         ("fixed_batch4", 32, Channels::Rgb, &["batch axis fixed at 4"]),
         ("truncated", 32, Channels::Rgb, &["truncated/model.onnx", "not a loadable ONNX model"]),
         ("arith", 30, Channels::Rgb, &["height is fixed at 32 but preprocess.height = 30"]),
+        ("dynamic_hw", 0, Channels::Rgb, &["[N, 3, H, W]", "set preprocess.height and preprocess.width"]),
         ("lenet5", 32, Channels::Rgb, &["takes 1 channel(s) but preprocess.channels gives 3"]),
     ];
     for (case, side, ch, needles) in cases {
-        let err = format!("{:#}", load::load(&bare(case, *side, *ch)).expect_err(case));
+        // side 0: no size configured
+        let size = (*side > 0).then_some(*side);
+        let err = format!("{:#}", load::load(&ModelConfig::bare(fixture(case), size, size, *ch)).expect_err(case));
         for n in *needles {
             assert!(err.contains(n), "{case}: {n:?} not in: {err}");
         }
@@ -156,8 +159,24 @@ fn check_cli_json_report_and_exit_codes() {
     assert_eq!(out.status.code(), Some(1), "an unservable model exits 1");
     assert!(String::from_utf8_lossy(&out.stdout).contains("WOULD NOT SERVE"));
 
+    // A model that fixes its size needs no --width/--height; one that leaves it dynamic does.
     let out = Command::new(bin).args(["check"]).arg(fixture("arith")).output().unwrap();
-    assert_eq!(out.status.code(), Some(2), "a bare file without --width/--height is a usage error");
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stdout));
+    assert!(String::from_utf8_lossy(&out.stdout).contains("32x32 served"));
+    let out = Command::new(bin).args(["check"]).arg(fixture("dynamic_hw")).output().unwrap();
+    assert_eq!(out.status.code(), Some(1));
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        text.contains("height and width are dynamic") && text.contains("preprocess.height and preprocess.width"),
+        "{text}"
+    );
+    let out = Command::new(bin)
+        .args(["check", "--width", "40", "--height", "24"])
+        .arg(fixture("dynamic_hw"))
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stdout));
+    assert!(String::from_utf8_lossy(&out.stdout).contains("40x24 served"));
     let out = Command::new(bin).args(["check", "--model", "bolts"]).current_dir(std::env::temp_dir()).output().unwrap();
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("no model named \"bolts\""));

@@ -60,7 +60,9 @@ fn engine_matches_onnxruntime_on_the_same_tensor() {
 fn preprocessing_matches_pillow_bilinear_within_one_level() {
     let cfg = washer_config();
     let m = &cfg.models[0];
-    let pipeline = Pipeline::new(m.preprocess.clone(), Layout::Nchw, cfg.server.max_pixels);
+    let model = load::load(m).unwrap();
+    assert_eq!(model.contract.layout, Layout::Nchw);
+    let pipeline = Pipeline::new(m.preprocess.clone(), &model.contract, cfg.server.max_pixels);
     let (mut worst, mut total, mut count) = (0i32, 0i64, 0i64);
     for s in samples() {
         let ours = pipeline.run(&s.bytes).unwrap().tensor;
