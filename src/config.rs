@@ -166,6 +166,22 @@ pub struct ModelConfig {
     pub batching: BatchingConfig,
     /// Samples run through the serving path at load (`[models.selftest]`).
     pub selftest: Option<SelftestConfig>,
+    /// How outputs become scores.
+    pub scores: ScoresMode,
+}
+
+/// How a model's outputs become scores (`[[models]] scores`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum ScoresMode {
+    /// Use the outputs as they are when the graph ends in Softmax or Sigmoid, else softmax them.
+    Auto,
+    /// Apply softmax.
+    Softmax,
+    /// Apply the sigmoid to each output.
+    Sigmoid,
+    /// Use the outputs as they are.
+    None,
 }
 
 /// Validated `[models.selftest]`.
@@ -322,6 +338,12 @@ struct RawModel {
     #[serde(default)]
     batching: RawBatching,
     selftest: Option<RawSelftest>,
+    #[serde(default = "default_scores")]
+    scores: ScoresMode,
+}
+
+fn default_scores() -> ScoresMode {
+    ScoresMode::Auto
 }
 
 #[derive(Debug, Deserialize)]
@@ -552,6 +574,7 @@ fn validate(
             preprocess,
             batching,
             selftest,
+            scores: m.scores,
         });
     }
     Ok(Config { origin: origin.to_string(), server, models })
@@ -581,6 +604,7 @@ impl ModelConfig {
             batching: validate_batching(RawBatching::default())
                 .unwrap_or_else(|e| unreachable!("defaults are valid: {e}")),
             selftest: None,
+            scores: ScoresMode::Auto,
         }
     }
 }

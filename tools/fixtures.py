@@ -12,6 +12,8 @@ Cases that should serve:
   nhwc      a small NHWC classifier (input [N, 64, 64, 3], transposed inside)
   batch1    a fixed batch of 1
   softmax   a graph ending in Softmax
+  sigmoid   a graph ending in Sigmoid (multi-label scores)
+  uint8     raw 8-bit pixels in, normalised inside the graph
 Cases that must be refused (no reference): two_inputs, rank3, two_channels, four_channels,
   unknown_op, truncated, fixed_batch4,
   dynamic_hw (refused only when no size is configured).
@@ -157,10 +159,37 @@ def softmax():
     return n.model(3), 3, (3, 32, 32)
 
 
-def reference_input(shape):
+def reference_input(shape, uint8=False):
     count = int(np.prod(shape))
     i = np.arange(count, dtype=np.int64)
+    if uint8:
+        return ((i * 7919) % 256).astype(np.uint8).reshape((1,) + tuple(shape))
     return (((i * 7919) % 1000) / 1000.0).astype(np.float32).reshape((1,) + tuple(shape))
+
+
+def uint8():
+    # Raw 8-bit pixels in; the graph normalises (Cast, Div 255) before its convolutions.
+    n = Net("uint8", [3, 32, 32])
+    n._add("Cast", ["input"], to=TensorProto.FLOAT)
+    n.inits.append(numpy_helper.from_array(np.array(255.0, np.float32), "k255"))
+    n._add("Div", [n.cur, "k255"])
+    n.conv(3, 4, 3, stride=2, pad=1)
+    n._add("GlobalAveragePool", [n.cur])
+    n.flatten()
+    n.fc(4, 3, relu=False)
+    m = n.model(3)
+    m.graph.input[0].type.tensor_type.elem_type = TensorProto.UINT8
+    return m, 3, (3, 32, 32)
+
+
+def sigmoid():
+    n = Net("sigmoid", [3, 32, 32])
+    n.conv(3, 4, 3, stride=2, pad=1)
+    n._add("GlobalAveragePool", [n.cur])
+    n.flatten()
+    n.fc(4, 3, relu=False)
+    n._add("Sigmoid", [n.cur])
+    return n.model(3), 3, (3, 32, 32)
 
 
 def write(case, model, classes, shape, reference=True):
@@ -173,11 +202,11 @@ def write(case, model, classes, shape, reference=True):
         f.write("".join(f"class{i}\n" for i in range(classes)))
     if reference:
         sess = onnxruntime.InferenceSession(path, providers=["CPUExecutionProvider"])
-        x = reference_input(shape)
+        x = reference_input(shape, uint8=model.graph.input[0].type.tensor_type.elem_type == TensorProto.UINT8)
         out = sess.run(None, {sess.get_inputs()[0].name: x})[0]
         doc = {
             "source": f"onnxruntime {onnxruntime.__version__} (PyPI, CPUExecutionProvider), raw outputs",
-            "input": "x[i] = ((i * 7919) % 1000) / 1000, float32, batch 1",
+            "input": "uint8 x[i] = (i * 7919) % 256, batch 1" if x.dtype == np.uint8 else "x[i] = ((i * 7919) % 1000) / 1000, float32, batch 1",
             "input_shape": [1] + list(shape),
             "outputs": [float(v) for v in out.reshape(-1)],
         }
@@ -188,7 +217,7 @@ def write(case, model, classes, shape, reference=True):
 
 def main():
     for case, build in [("lenet5", lenet5), ("arith", arith), ("stacked3x3", stacked3x3), ("nhwc", nhwc),
-                        ("batch1", batch1), ("softmax", softmax)]:
+                        ("batch1", batch1), ("softmax", softmax), ("uint8", uint8), ("sigmoid", sigmoid)]:
         write(case, *build())
 
     # --- refusals

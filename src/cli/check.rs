@@ -16,7 +16,7 @@ use anyhow::Context as _;
 
 use crate::config::{Channels, Config, ModelConfig, Overrides, Source};
 use crate::model::report::Report;
-use crate::model::{BatchAxis, Contract, Model, ScoreTransform, load};
+use crate::model::{BatchAxis, Contract, InputType, Model, ScoreTransform, load};
 use crate::preprocess::Pipeline;
 use crate::selftest;
 
@@ -251,17 +251,23 @@ pub fn render(c: &ModelCheck) -> String {
     };
     let _ = writeln!(
         s,
-        "  input       {:?} [{}] float32, {} layout, {} channel(s), {}x{} served, batch {batch}",
+        "  input       {:?} [{}] {}, {} layout, {} channel(s), {}x{} served, batch {batch}",
         k.input_name,
         k.input_shape.join(", "),
+        match k.input_type {
+            InputType::Float32 => "float32",
+            InputType::Uint8 => "uint8 (raw pixels; mean/std not applied)",
+        },
         k.layout,
         k.channels,
         k.width,
         k.height
     );
+    let ends = k.ends_in.as_deref().map_or_else(String::new, |op| format!("graph ends in {op}; "));
     let scores = match k.scores {
-        ScoreTransform::FromGraph => "graph ends in Softmax: used as they are",
-        ScoreTransform::Softmax => "logits: lineside applies softmax",
+        ScoreTransform::AsIs => format!("{ends}scores used as they are"),
+        ScoreTransform::Softmax => format!("{ends}lineside applies softmax"),
+        ScoreTransform::Sigmoid => format!("{ends}lineside applies sigmoid (independent scores)"),
     };
     let _ = writeln!(
         s,

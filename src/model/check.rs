@@ -9,7 +9,7 @@
 use serde::Serialize;
 use tract_onnx::prelude::*;
 
-use crate::config::{Layout, PreprocessConfig};
+use crate::config::{Layout, PreprocessConfig, ScoresMode};
 
 /// What the model's batch axis allows.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize)]
@@ -31,22 +31,25 @@ pub enum InputType {
     Uint8,
 }
 
-/// How raw outputs become probabilities.
+/// How raw outputs become the answer's scores.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum ScoreTransform {
-    /// The graph ends in Softmax: outputs are used as they are.
-    FromGraph,
-    /// lineside applies softmax to the outputs (logits).
+    /// Used as they are: the graph ends in Softmax or Sigmoid, or the config says `scores = "none"`.
+    AsIs,
+    /// lineside applies softmax (logits; one class per image).
     Softmax,
+    /// lineside applies the logistic sigmoid to each output (independent, multi-label scores).
+    Sigmoid,
 }
 
 impl ScoreTransform {
     /// Turn one image's raw output into probabilities.
     pub fn apply(self, raw: &[f32]) -> Vec<f32> {
         match self {
-            ScoreTransform::FromGraph => raw.to_vec(),
+            ScoreTransform::AsIs => raw.to_vec(),
             ScoreTransform::Softmax => super::softmax(raw),
+            ScoreTransform::Sigmoid => raw.iter().map(|&z| 1.0 / (1.0 + (-z).exp())).collect(),
         }
     }
 }
@@ -76,8 +79,10 @@ pub struct Contract {
     pub output_shape: Vec<String>,
     /// Number of classes (K).
     pub classes: usize,
-    /// How outputs become probabilities.
+    /// How outputs become the answer's scores.
     pub scores: ScoreTransform,
+    /// The graph's final operator, when it is Softmax or Sigmoid.
+    pub ends_in: Option<String>,
 }
 
 fn dims(shape: &ShapeFact) -> Vec<String> {
@@ -97,6 +102,7 @@ pub fn contract(
     file: &str,
     pre: &PreprocessConfig,
     labels: Option<usize>,
+    mode: ScoresMode,
 ) -> Result<Contract, String> {
     if model.inputs.len() != 1 {
         let names: Vec<&str> = model.inputs.iter().map(|o| model.node(o.node).name.as_str()).collect();
@@ -216,7 +222,12 @@ pub fn contract(
         return Err(oat(&format!(": gives {classes} class scores but the labels file has {labels} labels")));
     }
     let last_op = model.node(out_outlet.node).op.name();
-    let scores = if last_op.contains("Softmax") { ScoreTransform::FromGraph } else { ScoreTransform::Softmax };
+    let ends_in = ["Softmax", "Sigmoid"].into_iter().find(|op| last_op.contains(op)).map(String::from);
+    let scores = match (mode, &ends_in) {
+        (ScoresMode::Auto, Some(_)) | (ScoresMode::None, _) => ScoreTransform::AsIs,
+        (ScoresMode::Auto, None) | (ScoresMode::Softmax, _) => ScoreTransform::Softmax,
+        (ScoresMode::Sigmoid, _) => ScoreTransform::Sigmoid,
+    };
 
     Ok(Contract {
         input_name,
@@ -231,5 +242,6 @@ pub fn contract(
         output_shape,
         classes,
         scores,
+        ends_in,
     })
 }

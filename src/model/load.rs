@@ -54,8 +54,8 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
         .into_typed()
         .and_then(|m| m.into_decluttered())
         .with_context(|| format!("{file}: tract cannot type this graph (an unsupported operator or shape)"))?;
-    let contract =
-        check::contract(&typed, &file, &cfg.preprocess, labels.as_ref().map(Vec::len)).map_err(anyhow::Error::msg)?;
+    let contract = check::contract(&typed, &file, &cfg.preprocess, labels.as_ref().map(Vec::len), cfg.scores)
+        .map_err(anyhow::Error::msg)?;
     // Without a labels file (`lineside check model.onnx`), classes are named by index.
     let labels = labels.unwrap_or_else(|| (0..contract.classes).map(|i| i.to_string()).collect());
 

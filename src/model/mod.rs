@@ -164,6 +164,16 @@ mod tests {
     }
 
     #[test]
+    fn sigmoid_transform_matches_closed_form() {
+        // 1 / (1 + e^-z): z = 0 -> 0.5; z = 2 -> 0.8807971; z = -3 -> 0.0474259
+        let s = ScoreTransform::Sigmoid.apply(&[0.0, 2.0, -3.0]);
+        for (a, b) in s.iter().zip([0.5, 0.880_797_1, 0.047_425_87]) {
+            assert!((a - b).abs() < 1e-6, "{s:?}");
+        }
+        assert_eq!(ScoreTransform::AsIs.apply(&[0.25, 3.0]), vec![0.25, 3.0]);
+    }
+
+    #[test]
     fn top_k_orders_by_score_then_index() {
         assert_eq!(top_k(&[0.1, 0.5, 0.2, 0.5], 3), vec![1, 3, 2]);
         assert_eq!(top_k(&[0.1, 0.5], 9), vec![1, 0]);

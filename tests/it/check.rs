@@ -84,6 +84,8 @@ fn fixtures_match_onnxruntime_on_the_same_input() {
         ("nhwc", 64, Channels::Rgb),
         ("batch1", 32, Channels::Rgb),
         ("softmax", 32, Channels::Rgb),
+        ("sigmoid", 32, Channels::Rgb),
+        ("uint8", 32, Channels::Rgb),
     ] {
         let r: Value = serde_json::from_slice(
             &std::fs::read(root().join("tests/fixtures").join(case).join("reference.json")).unwrap(),
@@ -91,7 +93,11 @@ fn fixtures_match_onnxruntime_on_the_same_input() {
         .unwrap();
         let model = load::load(&bare(case, side, channels)).unwrap_or_else(|e| panic!("{case}: {e:#}"));
         let n = model.input_len();
-        let x: Vec<f32> = (0..n as u64).map(|i| ((i * 7919) % 1000) as f32 / 1000.0).collect();
+        let x: Vec<f32> = if model.contract.input_type == lineside::model::InputType::Uint8 {
+            (0..n as u64).map(|i| ((i * 7919) % 256) as f32).collect()
+        } else {
+            (0..n as u64).map(|i| ((i * 7919) % 1000) as f32 / 1000.0).collect()
+        };
         let ours = model.runner().unwrap().run_raw(&x).unwrap();
         let theirs: Vec<f64> = r["outputs"].as_array().unwrap().iter().map(|v| v.as_f64().unwrap()).collect();
         assert_eq!(ours.len(), theirs.len(), "{case}");
@@ -109,7 +115,15 @@ fn layouts_batch_axes_and_softmax_are_detected() {
     let b1 = load::load(&bare("batch1", 32, Channels::Rgb)).unwrap();
     assert_eq!(b1.contract.batch, BatchAxis::Fixed(1));
     let sm = load::load(&bare("softmax", 32, Channels::Rgb)).unwrap();
-    assert_eq!(sm.contract.scores, ScoreTransform::FromGraph);
+    assert_eq!(sm.contract.scores, ScoreTransform::AsIs);
+    assert_eq!(sm.contract.ends_in.as_deref(), Some("Softmax"));
+    let sg = load::load(&bare("sigmoid", 32, Channels::Rgb)).unwrap();
+    assert_eq!((sg.contract.scores, sg.contract.ends_in.as_deref()), (ScoreTransform::AsIs, Some("Sigmoid")));
+    let mut forced = bare("arith", 32, Channels::Rgb);
+    forced.scores = lineside::config::ScoresMode::Sigmoid;
+    assert_eq!(load::load(&forced).unwrap().contract.scores, ScoreTransform::Sigmoid);
+    let u8m = load::load(&bare("uint8", 32, Channels::Rgb)).unwrap();
+    assert_eq!(u8m.contract.input_type, lineside::model::InputType::Uint8);
     let arith = load::load(&bare("arith", 32, Channels::Rgb)).unwrap();
     assert_eq!(arith.contract.scores, ScoreTransform::Softmax);
 }
