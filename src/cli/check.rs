@@ -86,6 +86,8 @@ pub struct Details {
     pub pass_ms_per_image: Option<f64>,
     /// The pass size timed.
     pub pass_size: usize,
+    /// The same pass stacked into one tensor (not how lineside serves with tract), in ms per image.
+    pub stacked_ms_per_image: Option<f64>,
     /// The self-test, when the model has one.
     pub selftest: Option<selftest::Outcome>,
 }
@@ -169,6 +171,13 @@ fn check_one(mc: &ModelConfig) -> ModelCheck {
             let cap = mc.batching.batch_cap;
             let single_ms = time_runs(&model, 1, 15).map(ms);
             let pass_ms_per_image = time_runs(&model, cap, 5).map(|d| ms(d) / cap as f64);
+            let stacked_ms_per_image = match load::time_stacked(mc, &model, cap) {
+                Ok(d) => d.map(ms),
+                Err(e) => {
+                    tracing::warn!(model = %mc.name, cause = %format!("{e:#}"), "cannot time a stacked pass");
+                    None
+                }
+            };
             ModelCheck {
                 name: mc.name.clone(),
                 would_serve: passed,
@@ -183,6 +192,7 @@ fn check_one(mc: &ModelConfig) -> ModelCheck {
                     single_ms,
                     pass_ms_per_image,
                     pass_size: cap,
+                    stacked_ms_per_image,
                     selftest,
                 }),
             }
@@ -337,6 +347,14 @@ pub fn render(c: &ModelCheck) -> String {
         _ => {
             let _ = writeln!(s, "  inference   could not be timed");
         }
+    }
+    if let (Some(stacked), Some(pass)) = (d.stacked_ms_per_image, d.pass_ms_per_image) {
+        let _ = writeln!(
+            s,
+            "              {stacked:.3} ms per image stacked into one batch of {} ({:.2}x the consecutive runs lineside uses)",
+            d.pass_size,
+            stacked / pass
+        );
     }
     s
 }

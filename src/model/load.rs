@@ -96,7 +96,55 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
         .and_then(|mut r| r.run(&zeros))
         .with_context(|| format!("{}: warm-up inference failed", model.file))?;
     model.load_time = start.elapsed();
+    if model.contract.batch == super::BatchAxis::Fixed(1) && cfg.batching.batch_cap > 1 {
+        // Passes run as consecutive batch-1 runs, so gathering still works; only stacking
+        // (which tract does not use here) would need a dynamic batch axis.
+        tracing::warn!(
+            model = %cfg.name,
+            "the model fixes its batch at 1: passes run image by image, and no engine can stack them"
+        );
+    }
     Ok((model, report))
+}
+
+/// Time a stacked pass: `batch` images in one tensor on a concrete plan for that size, which
+/// lineside does not serve with (tract is slower per image stacked) but `check` reports so
+/// the choice can be re-measured on each box. Median of 5 runs after one warm-up, per image.
+/// `None` when the model fixes its batch at 1.
+///
+/// # Errors
+/// When tract cannot plan or run the stacked shape.
+pub fn time_stacked(cfg: &ModelConfig, model: &Model, batch: usize) -> anyhow::Result<Option<std::time::Duration>> {
+    if model.contract.batch == super::BatchAxis::Fixed(1) || batch < 2 {
+        return Ok(None);
+    }
+    let c = &model.contract;
+    let (h, w, ch) = (c.height as usize, c.width as usize, c.channels);
+    let shape: [usize; 4] = match c.layout {
+        Layout::Nchw => [batch, ch, h, w],
+        Layout::Nhwc => [batch, h, w, ch],
+    };
+    let bytes = cfg.onnx.read()?;
+    let plan = tract_onnx::onnx()
+        .model_for_read(&mut &bytes[..])
+        .and_then(|m| m.with_input_fact(0, input_fact(c.input_type, shape)))
+        .and_then(|m| m.into_optimized())
+        .and_then(|m| m.into_runnable())
+        .with_context(|| format!("{}: tract cannot plan a stacked batch of {batch}", model.file))?;
+    let mut state = plan.spawn()?;
+    let input: Tensor = match c.input_type {
+        InputType::Float32 => Tensor::from_shape(&shape, &vec![0.5f32; shape.iter().product()])?,
+        InputType::Uint8 => Tensor::from_shape(&shape, &vec![128u8; shape.iter().product()])?,
+    };
+    state.run(tvec![input.clone().into()])?;
+    let mut times = Vec::new();
+    for _ in 0..5 {
+        let t = Instant::now();
+        state.run(tvec![input.clone().into()])?;
+        times.push(t.elapsed());
+    }
+    times.sort();
+    Ok(Some(times[2] / batch as u32))
 }
 
 fn input_fact(t: InputType, shape: [usize; 4]) -> InferenceFact {
