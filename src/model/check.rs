@@ -85,6 +85,17 @@ pub struct Contract {
     pub ends_in: Option<String>,
 }
 
+impl Contract {
+    /// The concrete input shape for a batch of `batch` images, in the model's layout.
+    pub fn input_shape(&self, batch: usize) -> [usize; 4] {
+        let (h, w, c) = (self.height as usize, self.width as usize, self.channels);
+        match self.layout {
+            Layout::Nchw => [batch, c, h, w],
+            Layout::Nhwc => [batch, h, w, c],
+        }
+    }
+}
+
 fn dims(shape: &ShapeFact) -> Vec<String> {
     shape.iter().map(|d| d.to_string()).collect()
 }

@@ -13,7 +13,7 @@ use tract_onnx::prelude::*;
 
 use super::report::{self, Report};
 use super::{InputType, Model, check, labels};
-use crate::config::{Layout, ModelConfig};
+use crate::config::ModelConfig;
 
 /// Load, check, plan and warm one model.
 ///
@@ -59,11 +59,7 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
     // Without a labels file (`lineside check model.onnx`), classes are named by index.
     let labels = labels.unwrap_or_else(|| (0..contract.classes).map(|i| i.to_string()).collect());
 
-    let (h, w, c) = (contract.height as usize, contract.width as usize, contract.channels);
-    let shape: [usize; 4] = match contract.layout {
-        Layout::Nchw => [1, c, h, w],
-        Layout::Nhwc => [1, h, w, c],
-    };
+    let shape = contract.input_shape(1);
     let report = if want_report {
         let at_b1 = inference
             .clone()
@@ -119,11 +115,7 @@ pub fn time_stacked(cfg: &ModelConfig, model: &Model, batch: usize) -> anyhow::R
         return Ok(None);
     }
     let c = &model.contract;
-    let (h, w, ch) = (c.height as usize, c.width as usize, c.channels);
-    let shape: [usize; 4] = match c.layout {
-        Layout::Nchw => [batch, ch, h, w],
-        Layout::Nhwc => [batch, h, w, ch],
-    };
+    let shape = c.input_shape(batch);
     let bytes = cfg.onnx.read()?;
     let plan = tract_onnx::onnx()
         .model_for_read(&mut &bytes[..])

@@ -72,7 +72,7 @@ pub enum RunError {
 impl Model {
     /// Number of f32 values in one image's input tensor.
     pub fn input_len(&self) -> usize {
-        self.contract.channels * self.contract.height as usize * self.contract.width as usize
+        self.contract.input_shape(1).iter().product()
     }
 
     /// A fresh engine state over the shared plan.
@@ -82,11 +82,7 @@ impl Model {
     pub fn runner(&self) -> Result<Runner, RunError> {
         let state = self.plan.spawn().map_err(|e| RunError::Engine(format!("{e:#}")))?;
         let c = &self.contract;
-        let (h, w, ch) = (c.height as usize, c.width as usize, c.channels);
-        let shape = match c.layout {
-            crate::config::Layout::Nchw => [1, ch, h, w],
-            crate::config::Layout::Nhwc => [1, h, w, ch],
-        };
+        let shape = c.input_shape(1);
         Ok(Runner { state, shape, transform: c.scores, classes: c.classes, input_type: c.input_type })
     }
 }
