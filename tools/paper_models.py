@@ -1,5 +1,6 @@
 #!/usr/bin/env python3
-"""Build ResNet-18 and MobileNetV2 from their papers' layer tables, with seeded random weights.
+"""Build ResNet-18, MobileNetV2, SqueezeNet 1.1 and a small VGG-style net from their layer
+tables, with seeded random weights.
 
 Too large to commit (45 MB and 14 MB), so the tests build them at test time into the folder
 given by --out (deterministic: numpy PCG64, seed 11, versions pinned in
@@ -71,7 +72,10 @@ class Graph:
         self.nodes.append(helper.make_node("Add", [a, b], [o], name=o))
         return o
 
+    classes = 1000
+
     def head(self, x, c, classes=1000):
+        self.classes = classes
         g = self.name("gap")
         self.nodes.append(helper.make_node("GlobalAveragePool", [x], [g], name=g))
         f = self.name("flatten")
@@ -80,11 +84,11 @@ class Graph:
         b = self.const("fcb", np.zeros(classes))
         self.nodes.append(helper.make_node("Gemm", [f, w, b], ["logits"], name="fc", transB=1))
 
-    def model(self, name):
+    def model(self, name, size=224):
         graph = helper.make_graph(
             self.nodes, name,
-            [helper.make_tensor_value_info("image", TensorProto.FLOAT, ["N", 3, 224, 224])],
-            [helper.make_tensor_value_info("logits", TensorProto.FLOAT, ["N", 1000])],
+            [helper.make_tensor_value_info("image", TensorProto.FLOAT, ["N", 3, size, size])],
+            [helper.make_tensor_value_info("logits", TensorProto.FLOAT, ["N", self.classes])],
             self.inits,
         )
         return helper.make_model(graph, opset_imports=[helper.make_opsetid("", 13)], producer_name="lineside-tools-paper")
@@ -126,6 +130,64 @@ def mobilenetv2():
     return g.model("mobilenetv2")
 
 
+def squeezenet11():
+    # SqueezeNet 1.1 (Iandola et al., 2016, and the v1.1 revision in the authors' repository,
+    # recalled from memory): 3x3/2 conv 64, fire modules (squeeze, expand1x1, expand3x3) =
+    # (16,64,64) x2, (32,128,128) x2, (48,192,192) x2, (64,256,256) x2 with 3x3/2 max pools
+    # (ceil mode) after conv1, fire3 and fire5; 1x1 conv to 1000 classes, ReLU, global average pool.
+    g = Graph(13)
+
+    def conv(x, cin, cout, k, s=1, pad=0):
+        w = g.const("w", g.rng.normal(0, np.sqrt(2.0 / (cin * k * k)), (cout, cin, k, k)))
+        b = g.const("b", np.zeros(cout) + 0.01)
+        o = g.name("conv")
+        g.nodes.append(helper.make_node("Conv", [x, w, b], [o], name=o, kernel_shape=[k, k], strides=[s, s], pads=[pad] * 4))
+        return g.relu(o)
+
+    def pool(x):
+        o = g.name("pool")
+        g.nodes.append(helper.make_node("MaxPool", [x], [o], name=o, kernel_shape=[3, 3], strides=[2, 2], ceil_mode=1))
+        return o
+
+    def fire(x, cin, sq, e1, e3):
+        s = conv(x, cin, sq, 1)
+        a, b = conv(s, sq, e1, 1), conv(s, sq, e3, 3, pad=1)
+        o = g.name("concat")
+        g.nodes.append(helper.make_node("Concat", [a, b], [o], name=o, axis=1))
+        return o
+
+    x = pool(conv("image", 3, 64, 3, s=2))
+    x = fire(x, 64, 16, 64, 64)
+    x = pool(fire(x, 128, 16, 64, 64))
+    x = fire(x, 128, 32, 128, 128)
+    x = pool(fire(x, 256, 32, 128, 128))
+    x = fire(x, 256, 48, 192, 192)
+    x = fire(x, 384, 48, 192, 192)
+    x = fire(x, 384, 64, 256, 256)
+    x = fire(x, 512, 64, 256, 256)
+    x = conv(x, 512, 1000, 1)
+    gap = g.name("gap")
+    g.nodes.append(helper.make_node("GlobalAveragePool", [x], [gap], name=gap))
+    g.nodes.append(helper.make_node("Flatten", [gap], ["logits"], name="flatten", axis=1))
+    return g.model("squeezenet11")
+
+
+def vgg_small():
+    # A small VGG-style net (common practice: stacks of 3x3 conv + ReLU, 2x2 max pool halving
+    # the size, channels doubling): 3 stages of two convs, 32 -> 64 -> 128 channels, then fc.
+    g = Graph(14)
+    x, cin = "image", 3
+    for cout in [32, 64, 128]:
+        for _ in range(2):
+            x = g.conv(x, cin, cout, 3, bn=False)
+            cin = cout
+        p = g.name("pool")
+        g.nodes.append(helper.make_node("MaxPool", [x], [p], name=p, kernel_shape=[2, 2], strides=[2, 2]))
+        x = p
+    g.head(x, 128, classes=10)
+    return g.model("vgg_small", size=32)
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--out", required=True)
@@ -133,7 +195,7 @@ def main():
     args = ap.parse_args()
     os.makedirs(args.out, exist_ok=True)
     ref = {}
-    for name, build in [("resnet18", resnet18), ("mobilenetv2", mobilenetv2)]:
+    for name, build in [("resnet18", resnet18), ("mobilenetv2", mobilenetv2), ("squeezenet11", squeezenet11), ("vgg_small", vgg_small)]:
         path = os.path.join(args.out, f"{name}.onnx")
         m = build()
         onnx.checker.check_model(m)
@@ -142,8 +204,9 @@ def main():
             import onnxruntime
 
             sess = onnxruntime.InferenceSession(path, providers=["CPUExecutionProvider"])
-            i = np.arange(3 * 224 * 224, dtype=np.int64)
-            x = (((i * 7919) % 1000) / 1000.0).astype(np.float32).reshape(1, 3, 224, 224)
+            side = m.graph.input[0].type.tensor_type.shape.dim[2].dim_value
+            i = np.arange(3 * side * side, dtype=np.int64)
+            x = (((i * 7919) % 1000) / 1000.0).astype(np.float32).reshape(1, 3, side, side)
             out = sess.run(None, {"image": x})[0].reshape(-1)
             ref[name] = {"outputs": [float(v) for v in out]}
             ref["source"] = f"onnxruntime {onnxruntime.__version__} (PyPI, CPUExecutionProvider), raw logits"
@@ -153,7 +216,7 @@ def main():
         with open(os.path.join(d, "reference.json"), "w") as f:
             json.dump(ref, f)
             f.write("\n")
-    print("built", ", ".join(sorted(k for k in ["resnet18", "mobilenetv2"])), "in", args.out)
+    print("built the paper models in", args.out)
 
 
 if __name__ == "__main__":

@@ -275,7 +275,7 @@ fn write_expected_records_the_current_model_and_then_passes() {
 }
 
 #[test]
-fn resnet18_and_mobilenetv2_match_their_published_totals_and_onnxruntime() {
+fn paper_architectures_match_their_published_totals_and_onnxruntime() {
     // Built from the papers' layer tables by tools/paper_models.py at test time (too large to
     // commit), deterministic from its seed; onnxruntime's logits for the fixed input are
     // committed in tests/fixtures/paper/reference.json.
@@ -299,15 +299,22 @@ fn resnet18_and_mobilenetv2_match_their_published_totals_and_onnxruntime() {
         // built literally gives 3 504 872 (the count torchvision reports, recalled from memory):
         // within 4% of the paper's rounded figure.
         ("mobilenetv2", 300e6, 3.4e6, 0.04),
+        // SqueezeNet 1.1: about 0.35 G multiply-adds (the figure this project's engine issue
+        // quotes) and 1 235 496 parameters (torchvision's count; both recalled from memory).
+        ("squeezenet11", 0.35e9, 1_235_496.0, 0.001),
+        // The small VGG-style net: totals by the conv formula, H*W*Cout*Cin*9 per layer at
+        // 32, 32, 16, 16, 8, 8 pixels, plus the 128 -> 10 fc (hand-computed, see below).
+        ("vgg_small", VGG_SMALL_MACS, VGG_SMALL_PARAMS, 0.0),
     ];
     for (name, macs, params, params_tol) in cases {
         let mc = ModelConfig::bare(dir.join(format!("{name}.onnx")), None, None, Channels::Rgb);
         let (model, r) = load::load_with_report(&mc).unwrap_or_else(|e| panic!("{name}: {e:#}"));
         let mac_err = (r.macs_per_image as f64 - macs).abs() / macs;
-        assert!(mac_err < 0.01, "{name}: {} MACs vs published {macs:e}", r.macs_per_image);
+        let mac_tol = if name == "vgg_small" { 0.0 } else { 0.01 };
+        assert!(mac_err <= mac_tol, "{name}: {} MACs vs published {macs:e}", r.macs_per_image);
         let p_err = (r.params as f64 - params).abs() / params;
-        assert!(p_err < params_tol, "{name}: {} parameters vs published {params:e}", r.params);
-        assert_eq!(model.contract.classes, 1000);
+        assert!(p_err <= params_tol, "{name}: {} parameters vs published {params:e}", r.params);
+        assert_eq!(model.contract.classes, if name == "vgg_small" { 10 } else { 1000 });
 
         let n = model.input_len();
         let x: Vec<f32> = (0..n as u64).map(|i| ((i * 7919) % 1000) as f32 / 1000.0).collect();
@@ -318,3 +325,10 @@ fn resnet18_and_mobilenetv2_match_their_published_totals_and_onnxruntime() {
         assert!(worst <= 1e-4, "{name}: max |lineside - onnxruntime| = {worst:e} on the logits");
     }
 }
+
+// Hand-computed for the small VGG-style net (3x3 convs, padding 1, no bias; 2x2 pools):
+// MACs = 32*32*(32*3 + 32*32)*9 + 16*16*(64*32 + 64*64)*9 + 8*8*(128*64 + 128*128)*9 + 128*10
+//      = 10 321 920 + 14 155 776 + 14 155 776 + 1 280 = 38 634 752
+// params = 9*(32*3 + 32*32 + 64*32 + 64*64 + 128*64 + 128*128) + 128*10 + 10 = 287 850
+const VGG_SMALL_MACS: f64 = 38_634_752.0;
+const VGG_SMALL_PARAMS: f64 = 287_850.0;
