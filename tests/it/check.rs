@@ -153,6 +153,17 @@ fn broken_models_are_refused_with_a_message_naming_file_and_cause() {
 }
 
 #[test]
+fn a_layout_that_contradicts_the_model_is_refused() {
+    use lineside::config::Layout;
+    let mut mc = bare("nhwc", 64, Channels::Rgb);
+    mc.preprocess.layout = Some(Layout::Nchw);
+    let err = format!("{:#}", load::load(&mc).unwrap_err());
+    assert!(err.contains("the model is nhwc but the config says layout = \"nchw\""), "{err}");
+    mc.preprocess.layout = Some(Layout::Nhwc);
+    assert_eq!(load::load(&mc).unwrap().contract.layout, Layout::Nhwc, "a matching layout is accepted");
+}
+
+#[test]
 fn check_cli_json_report_and_exit_codes() {
     let bin = env!("CARGO_BIN_EXE_lineside");
     let out = Command::new(bin)
