@@ -12,7 +12,7 @@ use anyhow::Context as _;
 use serde::{Deserialize, Serialize};
 
 use crate::config::SelftestConfig;
-use crate::model::{Model, top_k};
+use crate::model::{Model, Runner, top_k};
 use crate::preprocess::Pipeline;
 
 /// One sample's expectation.
@@ -87,17 +87,21 @@ impl Samples {
 }
 
 /// Classify one sample through the serving path: decode, preprocess, engine.
-fn classify(model: &Model, pipeline: &Pipeline, bytes: &[u8]) -> anyhow::Result<Vec<f32>> {
+fn classify(runner: &mut Runner, pipeline: &Pipeline, bytes: &[u8]) -> anyhow::Result<Vec<f32>> {
     let prepared = pipeline.run(bytes)?;
-    Ok(model.runner()?.run(&prepared.tensor)?)
+    Ok(runner.run(&prepared.tensor)?)
 }
 
 /// Run the self-test.
 pub fn run(model: &Model, pipeline: &Pipeline, samples: &Samples, tolerance: f32) -> Outcome {
+    let mut runner = match model.runner() {
+        Ok(r) => r,
+        Err(e) => return Outcome { samples: samples.images.len(), failures: vec![format!("engine: {e}")] },
+    };
     let mut failures = Vec::new();
     for (name, bytes) in &samples.images {
         let want = &samples.expected[name];
-        let scores = match classify(model, pipeline, bytes) {
+        let scores = match classify(&mut runner, pipeline, bytes) {
             Ok(s) => s,
             Err(e) => {
                 failures.push(format!("{}/{name}: {e:#}", samples.origin));
@@ -141,9 +145,10 @@ pub fn expectations(
     pipeline: &Pipeline,
     images: &[(String, Vec<u8>)],
 ) -> anyhow::Result<BTreeMap<String, Expected>> {
+    let mut runner = model.runner()?;
     let mut out = BTreeMap::new();
     for (name, bytes) in images {
-        let scores = classify(model, pipeline, bytes).with_context(|| name.clone())?;
+        let scores = classify(&mut runner, pipeline, bytes).with_context(|| name.clone())?;
         let best = top_k(&scores, 1)[0];
         out.insert(name.clone(), Expected { label: model.labels[best].clone(), scores: Some(scores) });
     }
