@@ -10,7 +10,9 @@ fn main() -> ExitCode {
     let cli = Cli::parse();
     let filter = tracing_subscriber::EnvFilter::try_from_env("LINESIDE_LOG")
         .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
-    tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).init();
+    // Colours only for a person at a terminal; log files and journald get plain text.
+    let ansi = std::io::IsTerminal::is_terminal(&std::io::stderr());
+    tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).with_ansi(ansi).init();
     let result = match cli.command {
         Command::Serve(args) => lineside::cli::serve::run(args),
         Command::Check(args) => lineside::cli::check::run(args),
