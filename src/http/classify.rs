@@ -147,12 +147,11 @@ async fn answer(
     let scored = m.batcher.infer(prepared.tensor).await?;
 
     let labels = &m.model.labels;
-    let ranked: Vec<Ranked> = top_k(&scored.scores, top)
-        .into_iter()
-        .map(|i| Ranked { label: labels[i].clone(), score: scored.scores[i] })
-        .collect();
-    // top >= 1 and labels >= 1 (checked at load), so ranked has a first entry.
-    let best = top_k(&scored.scores, 1)[0];
+    let order = top_k(&scored.scores, top);
+    // top >= 1 and labels >= 1 (checked at load), so the order has a first entry.
+    let best = order[0];
+    let ranked: Vec<Ranked> =
+        order.into_iter().map(|i| Ranked { label: labels[i].clone(), score: scored.scores[i] }).collect();
     Ok(Answer {
         model: m.model.name.clone(),
         version: m.model.version.clone(),
