@@ -199,6 +199,33 @@ pub struct SelftestConfig {
 pub enum ResizeMode {
     /// To width x height, ignoring aspect.
     Stretch,
+    /// Short side to S = floor(W / crop_fraction), then the centre W x W (square inputs).
+    Crop,
+    /// Scale to fit inside width x height keeping aspect, centred on a `pad_value` canvas.
+    Letterbox,
+}
+
+/// Whether the EXIF orientation tag is applied (`[models.preprocess] orientation`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Orientation {
+    /// Rotate/flip the frame as its EXIF tag says (what a photo viewer shows).
+    Exif,
+    /// Use the pixels as stored.
+    Ignore,
+}
+
+/// A region of interest in source pixels (after orientation).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Roi {
+    /// Left edge.
+    pub x: u32,
+    /// Top edge.
+    pub y: u32,
+    /// Width (at least 1).
+    pub w: u32,
+    /// Height (at least 1).
+    pub h: u32,
 }
 
 /// Resampling filter, with Pillow's (antialiased) semantics.
@@ -267,10 +294,20 @@ pub struct PreprocessConfig {
     pub height: Option<u32>,
     /// Resize mode.
     pub resize: ResizeMode,
+    /// For `resize = "crop"`: the centre crop's share of the resized short side (0 < f <= 1).
+    pub crop_fraction: f64,
+    /// For `resize = "letterbox"`: the level (0..255) of the padding, in every channel.
+    pub pad_value: u8,
     /// Resampling filter.
     pub filter: Filter,
     /// Channel order.
     pub channels: Channels,
+    /// Whether EXIF orientation is applied.
+    pub orientation: Orientation,
+    /// Crop this region (source pixels, after orientation) before anything else.
+    pub roi: Option<Roi>,
+    /// Frames with a side shorter than this are refused (422 `too_small`).
+    pub min_side: u32,
     /// Layout, when the config states one (otherwise detected from the model).
     pub layout: Option<Layout>,
     /// x = (pixel / divisor - mean\[c\]) / std\[c\].
@@ -360,15 +397,26 @@ struct RawPreprocess {
     height: Option<u32>,
     #[serde(default = "default_resize")]
     resize: ResizeMode,
+    crop_fraction: Option<f64>,
+    pad_value: Option<i64>,
     #[serde(default = "default_filter")]
     filter: Filter,
     #[serde(default = "default_channels")]
     channels: Channels,
+    #[serde(default = "default_orientation")]
+    orientation: Orientation,
+    roi: Option<Vec<i64>>,
+    min_side: Option<i64>,
     layout: Option<Layout>,
     #[serde(default = "default_divisor")]
     divisor: f32,
+    normalize: Option<String>,
     mean: Option<Vec<f32>>,
     std: Option<Vec<f32>>,
+}
+
+fn default_orientation() -> Orientation {
+    Orientation::Exif
 }
 
 fn default_resize() -> ResizeMode {
@@ -425,6 +473,12 @@ pub mod defaults {
     pub const LANE_THREADS: usize = 1;
     /// `[models.selftest] tolerance`.
     pub const SELFTEST_TOLERANCE: f32 = 1e-4;
+    /// `[models.preprocess] min_side`.
+    pub const MIN_SIDE: u32 = 8;
+    /// ImageNet channel means in RGB order (common practice; `normalize = "imagenet"`).
+    pub const IMAGENET_MEAN: [f32; 3] = [0.485, 0.456, 0.406];
+    /// ImageNet channel standard deviations in RGB order (common practice).
+    pub const IMAGENET_STD: [f32; 3] = [0.229, 0.224, 0.225];
 }
 
 /// Flags from the command line that override the file.
@@ -594,8 +648,13 @@ impl ModelConfig {
                 width,
                 height,
                 resize: default_resize(),
+                crop_fraction: 1.0,
+                pad_value: 0,
                 filter: default_filter(),
                 channels,
+                orientation: default_orientation(),
+                roi: None,
+                min_side: defaults::MIN_SIDE,
                 layout: None,
                 divisor: default_divisor(),
                 mean: vec![0.0; channels.count()],
@@ -644,17 +703,78 @@ fn validate_preprocess(p: RawPreprocess) -> Result<PreprocessConfig, String> {
         }
         Ok(v)
     };
-    let mean = per_channel("mean", p.mean, 0.0)?;
-    let std = per_channel("std", p.std, 1.0)?;
+    let (mean, std) = match p.normalize.as_deref() {
+        None => (per_channel("mean", p.mean, 0.0)?, per_channel("std", p.std, 1.0)?),
+        Some(_) if p.mean.is_some() || p.std.is_some() => {
+            return Err("preprocess.normalize and preprocess.mean/std are both given: keep one \
+                 (normalize = \"imagenet\" stands for the ImageNet mean and std)"
+                .into());
+        }
+        Some("imagenet") => {
+            let (m, s) = (defaults::IMAGENET_MEAN, defaults::IMAGENET_STD);
+            match p.channels {
+                Channels::Rgb => (m.to_vec(), s.to_vec()),
+                // Listed in the model's channel order, after the swap.
+                Channels::Bgr => (vec![m[2], m[1], m[0]], vec![s[2], s[1], s[0]]),
+                Channels::Gray => {
+                    return Err("preprocess.normalize = \"imagenet\" needs 3 channels (channels = \"gray\"): \
+                         give mean = [..] and std = [..] with one value instead"
+                        .into());
+                }
+            }
+        }
+        Some(other) => return Err(format!("preprocess.normalize = {other:?}: expected \"imagenet\"")),
+    };
     if let Some(bad) = std.iter().find(|x| **x <= 0.0) {
         return Err(format!("preprocess.std contains {bad}: every std must be > 0"));
     }
+    let crop_fraction = match (p.crop_fraction, p.resize) {
+        (None, _) => 1.0,
+        (Some(f), ResizeMode::Crop) if f > 0.0 && f <= 1.0 => f,
+        (Some(f), ResizeMode::Crop) => {
+            return Err(format!("preprocess.crop_fraction = {f}: expected 0 < f <= 1 (0.875 crops 224 from 256)"));
+        }
+        (Some(_), mode) => {
+            return Err(format!("preprocess.crop_fraction applies only to resize = \"crop\" (resize is {mode:?})"));
+        }
+    };
+    let pad_value = match (p.pad_value, p.resize) {
+        (None, _) => 0,
+        (Some(v), ResizeMode::Letterbox) => {
+            u8::try_from(v).map_err(|_| format!("preprocess.pad_value = {v}: expected a level 0 ..= 255"))?
+        }
+        (Some(_), mode) => {
+            return Err(format!("preprocess.pad_value applies only to resize = \"letterbox\" (resize is {mode:?})"));
+        }
+    };
+    let roi = match p.roi {
+        None => None,
+        Some(v) => {
+            let ok = v.len() == 4 && v.iter().all(|x| (0..=i64::from(u32::MAX)).contains(x)) && v[2] > 0 && v[3] > 0;
+            if !ok {
+                return Err(format!(
+                    "preprocess.roi = {v:?}: expected [x, y, w, h] in source pixels, x and y >= 0, w and h >= 1"
+                ));
+            }
+            Some(Roi { x: v[0] as u32, y: v[1] as u32, w: v[2] as u32, h: v[3] as u32 })
+        }
+    };
+    let min_side = match p.min_side {
+        None => defaults::MIN_SIDE,
+        Some(v) if (1..=65535).contains(&v) => v as u32,
+        Some(v) => return Err(format!("preprocess.min_side = {v}: expected 1 ..= 65535")),
+    };
     Ok(PreprocessConfig {
         width: p.width,
         height: p.height,
         resize: p.resize,
+        crop_fraction,
+        pad_value,
         filter: p.filter,
         channels: p.channels,
+        orientation: p.orientation,
+        roi,
+        min_side,
         layout: p.layout,
         divisor: p.divisor,
         mean,

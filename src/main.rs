@@ -16,6 +16,7 @@ fn main() -> ExitCode {
     let result = match cli.command {
         Command::Serve(args) => lineside::cli::serve::run(args),
         Command::Check(args) => lineside::cli::check::run(args),
+        Command::Preprocess(args) => lineside::cli::preprocess::run(args),
     };
     match result {
         Ok(Outcome::Ok) => ExitCode::SUCCESS,

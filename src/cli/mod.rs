@@ -1,6 +1,7 @@
 //! Command-line types. Each subcommand's file turns its arguments into library calls.
 
 pub mod check;
+pub mod preprocess;
 pub mod serve;
 
 use std::path::PathBuf;
@@ -21,6 +22,8 @@ pub enum Command {
     Serve(serve::ServeArgs),
     /// Load the configured models, verify their contract and print it.
     Check(check::CheckArgs),
+    /// Write the exact input tensor a model gets for one image (.npy), and a preview.
+    Preprocess(preprocess::PreprocessArgs),
 }
 
 /// Where the config comes from (shared by every subcommand).

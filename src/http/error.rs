@@ -25,6 +25,10 @@ pub enum ErrorKind {
     TooLarge,
     /// A recognised image format this build cannot decode.
     UnsupportedFormat,
+    /// An image with a side below `preprocess.min_side`.
+    TooSmall,
+    /// The configured region of interest does not fit the image.
+    RoiOutside,
     /// Backlog or decode queue full: retry after the `Retry-After` seconds.
     Overloaded,
     /// Malformed request parameters.
@@ -47,6 +51,7 @@ impl ErrorKind {
             ErrorKind::BadImage | ErrorKind::BadRequest => StatusCode::BAD_REQUEST,
             ErrorKind::TooLarge => StatusCode::PAYLOAD_TOO_LARGE,
             ErrorKind::UnsupportedFormat => StatusCode::UNSUPPORTED_MEDIA_TYPE,
+            ErrorKind::TooSmall | ErrorKind::RoiOutside => StatusCode::UNPROCESSABLE_ENTITY,
             ErrorKind::Overloaded | ErrorKind::NotReady => StatusCode::SERVICE_UNAVAILABLE,
             ErrorKind::MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
             ErrorKind::Internal => StatusCode::INTERNAL_SERVER_ERROR,
@@ -60,6 +65,8 @@ impl ErrorKind {
             ErrorKind::BadImage => "bad_image",
             ErrorKind::TooLarge => "too_large",
             ErrorKind::UnsupportedFormat => "unsupported_format",
+            ErrorKind::TooSmall => "too_small",
+            ErrorKind::RoiOutside => "roi_outside",
             ErrorKind::Overloaded => "overloaded",
             ErrorKind::BadRequest => "bad_request",
             ErrorKind::NotReady => "not_ready",
@@ -131,6 +138,8 @@ impl From<PreprocessError> for ApiError {
             PreprocessError::Empty | PreprocessError::BadImage(_) => ErrorKind::BadImage,
             PreprocessError::Unsupported(_) => ErrorKind::UnsupportedFormat,
             PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. } => ErrorKind::TooLarge,
+            PreprocessError::TooSmall { .. } => ErrorKind::TooSmall,
+            PreprocessError::RoiOutside { .. } => ErrorKind::RoiOutside,
             PreprocessError::Internal(_) => return ApiError::internal(e.to_string()),
         };
         ApiError::new(kind, e.to_string())
@@ -169,6 +178,8 @@ mod tests {
             (ErrorKind::BadImage, 400, "bad_image"),
             (ErrorKind::TooLarge, 413, "too_large"),
             (ErrorKind::UnsupportedFormat, 415, "unsupported_format"),
+            (ErrorKind::TooSmall, 422, "too_small"),
+            (ErrorKind::RoiOutside, 422, "roi_outside"),
             (ErrorKind::Overloaded, 503, "overloaded"),
             (ErrorKind::BadRequest, 400, "bad_request"),
             (ErrorKind::NotReady, 503, "not_ready"),

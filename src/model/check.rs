@@ -208,6 +208,13 @@ pub fn contract(
         )));
     }
     let [height, width] = size;
+    if pre.resize == crate::config::ResizeMode::Crop && height != width {
+        return Err(format!(
+            "{file}: input {width}x{height} (width x height) is not square, and preprocess.resize = \"crop\" \
+             (resize the short side, then crop the centre square) needs a square input; \
+             use resize = \"stretch\" or \"letterbox\""
+        ));
+    }
     let batch = match fixed(d[0]) {
         Some(1) => BatchAxis::Fixed(1),
         Some(n) => {

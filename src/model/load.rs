@@ -34,8 +34,18 @@ pub fn load_with_report(cfg: &ModelConfig) -> anyhow::Result<(Model, Report)> {
     Ok((model, report.context("internal: the layer report was not built")?))
 }
 
-fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Option<Report>)> {
-    let start = Instant::now();
+/// A model read, typed and checked, not yet planned.
+struct Opened {
+    file: String,
+    version: String,
+    bytes_len: u64,
+    labels: Option<Vec<String>>,
+    proto: tract_onnx::pb::ModelProto,
+    inference: InferenceModel,
+    contract: super::Contract,
+}
+
+fn open(cfg: &ModelConfig) -> anyhow::Result<Opened> {
     let file = cfg.onnx.display();
     let bytes = cfg.onnx.read()?;
     let version = sha12(&bytes);
@@ -43,7 +53,6 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
         Some(src) => Some(labels::parse(&src.read()?, &src.display()).map_err(anyhow::Error::msg)?),
         None => None,
     };
-
     let onnx = tract_onnx::onnx();
     let proto = onnx
         .proto_model_for_read(&mut &bytes[..])
@@ -56,6 +65,20 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
         .with_context(|| format!("{file}: tract cannot type this graph (an unsupported operator or shape)"))?;
     let contract = check::contract(&typed, &file, &cfg.preprocess, labels.as_ref().map(Vec::len), cfg.scores)
         .map_err(anyhow::Error::msg)?;
+    Ok(Opened { file, version, bytes_len: bytes.len() as u64, labels, proto, inference, contract })
+}
+
+/// Read and check a model's contract without planning it (what `lineside preprocess` needs).
+///
+/// # Errors
+/// As [`load`], except planning and warm-up errors.
+pub fn contract(cfg: &ModelConfig) -> anyhow::Result<super::Contract> {
+    open(cfg).map(|o| o.contract)
+}
+
+fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Option<Report>)> {
+    let start = Instant::now();
+    let Opened { file, version, bytes_len, labels, proto, inference, contract } = open(cfg)?;
     // Without a labels file (`lineside check model.onnx`), classes are named by index.
     let labels = labels.unwrap_or_else(|| (0..contract.classes).map(|i| i.to_string()).collect());
 
@@ -66,7 +89,7 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
             .with_input_fact(0, input_fact(contract.input_type, shape))
             .and_then(|m| m.into_typed())
             .with_context(|| format!("{file}: tract cannot type the graph for input shape {shape:?}"))?;
-        Some(report::build(&proto, &at_b1, bytes.len() as u64))
+        Some(report::build(&proto, &at_b1, bytes_len))
     } else {
         None
     };

@@ -1,23 +1,40 @@
-//! Decoding: bytes from a camera into an 8-bit RGB frame, with the size checked from the
-//! header before any pixel buffer is allocated.
+//! Decoding: bytes from a camera into a [`Frame`] (8-bit, or 16-bit as float levels), with
+//! the size checked from the header before any pixel buffer is allocated.
 //!
 //! The format is sniffed from the bytes (the request's Content-Type is not trusted). The
 //! `image` crate does not honour its allocation limit through `into_decoder` (FACTS.md: a
 //! 631-byte JPEG took 12 GB), so the width/height limits are always set and the pixel count
 //! is checked from `dimensions()` first.
+//!
+//! What the frame keeps, as Pillow's `convert("RGB")` / `convert("L")` would see it: gray
+//! stays one channel (mono industrial cameras; expanded to RGB only at the tensor, which is
+//! the same numbers), alpha is dropped, palettes are expanded, CMYK becomes RGB. 16-bit
+//! samples become float levels v / 257 on the 8-bit scale, unrounded (common practice).
 
 use std::io::Cursor;
 
-use image::{DynamicImage, ImageDecoder, ImageError, ImageFormat, ImageReader, Limits, RgbImage};
+use image::{DynamicImage, ImageDecoder, ImageError, ImageFormat, ImageReader, Limits};
 
-use super::PreprocessError;
+use super::resize::Plane;
+use super::{Frame, PreprocessError};
+use crate::config::Orientation;
 
-/// Decode `bytes` into RGB8, applying EXIF orientation and dropping alpha.
+/// The limits a frame must meet, checked from its header.
+#[derive(Debug, Clone, Copy)]
+pub struct FrameLimits {
+    /// Most pixels (width x height): more is 413 `too_large`.
+    pub max_pixels: u64,
+    /// Shortest side accepted: shorter is 422 `too_small`.
+    pub min_side: u32,
+}
+
+/// Decode `bytes`, applying EXIF orientation when asked and dropping alpha.
 ///
 /// # Errors
 /// `Empty`, `BadImage` (not an image, truncated, corrupt), `Unsupported` (a recognised format
-/// this build cannot decode) or `TooLarge` (more than `max_pixels` pixels).
-pub fn decode(bytes: &[u8], max_pixels: u64) -> Result<RgbImage, PreprocessError> {
+/// this build cannot decode), `TooLarge` (more than `max_pixels` pixels) or `TooSmall`.
+pub fn decode(bytes: &[u8], limits: FrameLimits, orientation: Orientation) -> Result<Frame, PreprocessError> {
+    let max_pixels = limits.max_pixels;
     if bytes.is_empty() {
         return Err(PreprocessError::Empty);
     }
@@ -31,30 +48,65 @@ pub fn decode(bytes: &[u8], max_pixels: u64) -> Result<RgbImage, PreprocessError
                 "not a recognised image format (expected JPEG, PNG, BMP, TIFF or WebP)".into(),
             ));
         }
-        // The JPEG decoder fills a truncated scan with grey and reports success; a cut-off
-        // frame (a dropped camera connection) must not be classified as if it were whole.
-        Some(ImageFormat::Jpeg) if !ends_with_eoi(bytes) => {
-            return Err(PreprocessError::BadImage(
-                "truncated JPEG: the data does not end with the end-of-image marker (FF D9)".into(),
-            ));
+        Some(ImageFormat::Jpeg) => {
+            // The JPEG decoder fills a truncated scan with grey and reports success; a cut-off
+            // frame (a dropped camera connection) must not be classified as if it were whole.
+            if !ends_with_eoi(bytes) {
+                return Err(PreprocessError::BadImage(
+                    "truncated JPEG: the data does not end with the end-of-image marker (FF D9)".into(),
+                ));
+            }
+            if is_adobe_ycck(bytes) {
+                return Err(PreprocessError::Unsupported(
+                    "Adobe YCCK JPEG (4-channel YCbCr + K): this build's JPEG decoder inverts its colours \
+                     (a known upstream bug), so it is refused rather than classified wrongly; \
+                     send RGB, grayscale or plain CMYK JPEG, or PNG/TIFF"
+                        .into(),
+                ));
+            }
         }
         Some(_) => {}
     }
     let side = u32::try_from(max_pixels).unwrap_or(u32::MAX);
-    let mut limits = Limits::default();
-    limits.max_image_width = Some(side);
-    limits.max_image_height = Some(side);
+    let mut lim = Limits::default();
+    lim.max_image_width = Some(side);
+    lim.max_image_height = Some(side);
     // 16-bit RGBA is the widest decode target: 8 bytes a pixel, plus decoder scratch.
-    limits.max_alloc = Some(max_pixels.saturating_mul(8).saturating_add(64 << 20));
-    reader.limits(limits);
+    lim.max_alloc = Some(max_pixels.saturating_mul(8).saturating_add(64 << 20));
+    reader.limits(lim);
 
     let mut decoder = reader.into_decoder().map_err(|e| classify(e, max_pixels))?;
     let (w, h) = decoder.dimensions();
-    check_pixels(w, h, max_pixels)?;
-    let orientation = decoder.orientation().map_err(|e| classify(e, max_pixels))?;
+    check_size(w, h, limits)?;
+    let exif = match orientation {
+        Orientation::Exif => Some(decoder.orientation().map_err(|e| classify(e, max_pixels))?),
+        Orientation::Ignore => None,
+    };
     let mut img = DynamicImage::from_decoder(decoder).map_err(|e| classify(e, max_pixels))?;
-    img.apply_orientation(orientation);
-    Ok(img.into_rgb8())
+    if let Some(o) = exif {
+        img.apply_orientation(o);
+    }
+    Ok(frame(img))
+}
+
+/// Keep what Pillow's `convert("RGB")` keeps: gray or RGB, without alpha, 16-bit as floats.
+fn frame(img: DynamicImage) -> Frame {
+    let (width, height) = (img.width(), img.height());
+    let u8_plane = |channels, data| Frame::U8(Plane { width, height, channels, data });
+    let f32_plane = |channels, data: Vec<u16>| {
+        Frame::F32(Plane { width, height, channels, data: data.into_iter().map(|v| f32::from(v) / 257.0).collect() })
+    };
+    match img {
+        DynamicImage::ImageLuma8(i) => u8_plane(1, i.into_raw()),
+        DynamicImage::ImageLumaA8(_) => u8_plane(1, img.into_luma8().into_raw()),
+        DynamicImage::ImageRgb8(i) => u8_plane(3, i.into_raw()),
+        DynamicImage::ImageLuma16(i) => f32_plane(1, i.into_raw()),
+        DynamicImage::ImageLumaA16(_) => f32_plane(1, img.into_luma16().into_raw()),
+        DynamicImage::ImageRgb16(i) => f32_plane(3, i.into_raw()),
+        DynamicImage::ImageRgba16(_) => f32_plane(3, img.into_rgb16().into_raw()),
+        // RGBA8 and float images: alpha dropped (Pillow drops it too, without premultiplying).
+        other => u8_plane(3, other.into_rgb8().into_raw()),
+    }
 }
 
 /// Whether JPEG data ends with its EOI marker (ITU-T T.81, B.2.1), ignoring zero padding that
@@ -64,10 +116,40 @@ fn ends_with_eoi(bytes: &[u8]) -> bool {
     bytes[..end].ends_with(&[0xff, 0xd9])
 }
 
-/// Refuse a frame larger than `max_pixels`.
-fn check_pixels(w: u32, h: u32, max_pixels: u64) -> Result<(), PreprocessError> {
-    if u64::from(w) * u64::from(h) > max_pixels {
-        return Err(PreprocessError::TooLarge { width: w, height: h, max_pixels });
+/// Whether a JPEG carries an Adobe APP14 segment with transform = 2 (YCCK), read from the
+/// marker segments before the first scan (ITU-T T.81 B.1.1.4 segment framing; the APP14
+/// layout is Adobe's: "Adobe", version u16, flags0 u16, flags1 u16, transform u8).
+fn is_adobe_ycck(bytes: &[u8]) -> bool {
+    let mut i = 2; // after SOI
+    while i + 4 <= bytes.len() {
+        if bytes[i] != 0xff {
+            return false;
+        }
+        let marker = bytes[i + 1];
+        if marker == 0xff {
+            i += 1; // fill byte
+            continue;
+        }
+        if marker == 0xda || marker == 0xd9 {
+            return false; // start of scan / end of image: no APP14 before the data
+        }
+        let len = usize::from(u16::from_be_bytes([bytes[i + 2], bytes[i + 3]]));
+        let payload = &bytes[(i + 4).min(bytes.len())..(i + 2 + len).min(bytes.len())];
+        if marker == 0xee && payload.len() >= 12 && payload.starts_with(b"Adobe") {
+            return payload[11] == 2;
+        }
+        i += 2 + len;
+    }
+    false
+}
+
+/// Refuse a frame larger than `max_pixels` or with a side below `min_side`.
+fn check_size(w: u32, h: u32, limits: FrameLimits) -> Result<(), PreprocessError> {
+    if u64::from(w) * u64::from(h) > limits.max_pixels {
+        return Err(PreprocessError::TooLarge { width: w, height: h, max_pixels: limits.max_pixels });
+    }
+    if w.min(h) < limits.min_side {
+        return Err(PreprocessError::TooSmall { width: w, height: h, min_side: limits.min_side });
     }
     Ok(())
 }
@@ -84,6 +166,19 @@ fn classify(e: ImageError, max_pixels: u64) -> PreprocessError {
 mod tests {
     use super::*;
 
+    use image::RgbImage;
+
+    fn lim(max_pixels: u64) -> FrameLimits {
+        FrameLimits { max_pixels, min_side: 1 }
+    }
+
+    fn rgb(f: Frame) -> Plane<u8> {
+        match f {
+            Frame::U8(p) => p,
+            Frame::F32(_) => panic!("expected an 8-bit frame"),
+        }
+    }
+
     fn png(w: u32, h: u32) -> Vec<u8> {
         let img = RgbImage::from_fn(w, h, |x, y| image::Rgb([x as u8, y as u8, 7]));
         let mut out = Vec::new();
@@ -93,17 +188,18 @@ mod tests {
 
     #[test]
     fn decodes_png_exactly() {
-        let img = decode(&png(5, 4), 1000).unwrap();
-        assert_eq!(img.dimensions(), (5, 4));
-        assert_eq!(img.get_pixel(3, 2).0, [3, 2, 7]);
+        let img = rgb(decode(&png(5, 4), lim(1000), Orientation::Exif).unwrap());
+        assert_eq!((img.width, img.height, img.channels), (5, 4, 3));
+        let i = (2 * 5 + 3) * 3;
+        assert_eq!(img.data[i..i + 3], [3, 2, 7]);
     }
 
     #[test]
     fn empty_random_and_truncated_bodies_are_bad_images() {
-        assert!(matches!(decode(b"", 1000), Err(PreprocessError::Empty)));
-        assert!(matches!(decode(b"hello, this is text", 1000), Err(PreprocessError::BadImage(_))));
+        assert!(matches!(decode(b"", lim(1000), Orientation::Exif), Err(PreprocessError::Empty)));
+        assert!(matches!(decode(b"hello, this is text", lim(1000), Orientation::Exif), Err(PreprocessError::BadImage(_))));
         let p = png(20, 20);
-        assert!(matches!(decode(&p[..p.len() / 2], 1000), Err(PreprocessError::BadImage(_))));
+        assert!(matches!(decode(&p[..p.len() / 2], lim(1000), Orientation::Exif), Err(PreprocessError::BadImage(_))));
     }
 
     #[test]
@@ -111,21 +207,21 @@ mod tests {
         let img = RgbImage::from_fn(64, 48, |x, y| image::Rgb([(x * 4) as u8, (y * 5) as u8, 90]));
         let mut jpeg = Vec::new();
         img.write_to(&mut Cursor::new(&mut jpeg), ImageFormat::Jpeg).unwrap();
-        assert!(decode(&jpeg, 1 << 20).is_ok());
+        assert!(decode(&jpeg, lim(1 << 20), Orientation::Exif).is_ok());
         for cut in [jpeg.len() / 3, jpeg.len() - 2] {
-            let err = decode(&jpeg[..cut], 1 << 20).unwrap_err();
+            let err = decode(&jpeg[..cut], lim(1 << 20), Orientation::Exif).unwrap_err();
             assert!(matches!(err, PreprocessError::BadImage(ref m) if m.contains("truncated JPEG")), "{cut}: {err:?}");
         }
         let mut padded = jpeg.clone();
         padded.extend_from_slice(&[0, 0, 0, 0]);
-        assert!(decode(&padded, 1 << 20).is_ok());
+        assert!(decode(&padded, lim(1 << 20), Orientation::Exif).is_ok());
     }
 
     #[test]
     fn pixel_limit_is_checked_from_the_header() {
-        let err = decode(&png(40, 30), 1199).unwrap_err();
+        let err = decode(&png(40, 30), lim(1199), Orientation::Exif).unwrap_err();
         assert!(matches!(err, PreprocessError::TooLarge { width: 40, height: 30, max_pixels: 1199 }), "{err:?}");
-        assert!(decode(&png(40, 30), 1200).is_ok());
+        assert!(decode(&png(40, 30), lim(1200), Orientation::Exif).is_ok());
     }
 
     #[test]
@@ -137,7 +233,7 @@ mod tests {
         // fix the IHDR CRC so that the decoder reads the header (CRC-32 over type + data)
         let crc = crc32(&p[12..29]);
         p[29..33].copy_from_slice(&crc.to_be_bytes());
-        let err = decode(&p, 40_000_000).unwrap_err();
+        let err = decode(&p, lim(40_000_000), Orientation::Exif).unwrap_err();
         assert!(matches!(err, PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. }), "{err:?}");
     }
 
@@ -155,7 +251,55 @@ mod tests {
 
     #[test]
     fn gif_is_recognised_but_unsupported() {
-        let err = decode(b"GIF89a\x01\x00\x01\x00\x00\x00\x00;", 1000).unwrap_err();
+        let err = decode(b"GIF89a\x01\x00\x01\x00\x00\x00\x00;", lim(1000), Orientation::Exif).unwrap_err();
         assert!(matches!(err, PreprocessError::Unsupported(_)), "{err:?}");
+    }
+
+    #[test]
+    fn side_below_min_side_is_too_small() {
+        let err = decode(&png(40, 7), FrameLimits { max_pixels: 1000, min_side: 8 }, Orientation::Exif).unwrap_err();
+        assert!(matches!(err, PreprocessError::TooSmall { width: 40, height: 7, min_side: 8 }), "{err:?}");
+        assert!(decode(&png(8, 8), FrameLimits { max_pixels: 1000, min_side: 8 }, Orientation::Exif).is_ok());
+    }
+
+    #[test]
+    fn sixteen_bit_gray_becomes_unrounded_float_levels() {
+        // v / 257 maps 0..65535 onto 0..255 exactly at the ends (common practice).
+        let img = image::ImageBuffer::<image::Luma<u16>, _>::from_raw(3, 1, vec![0u16, 1000, 65535]).unwrap();
+        let mut bytes = Vec::new();
+        img.write_to(&mut Cursor::new(&mut bytes), ImageFormat::Png).unwrap();
+        let Frame::F32(f) = decode(&bytes, lim(100), Orientation::Exif).unwrap() else { panic!("expected floats") };
+        assert_eq!(f.channels, 1);
+        assert_eq!(f.data, vec![0.0, 1000.0 / 257.0, 255.0]);
+    }
+
+    #[test]
+    fn gray_and_alpha_frames_keep_one_or_three_channels() {
+        let la = image::GrayAlphaImage::from_raw(2, 1, vec![10, 0, 200, 255]).unwrap();
+        let mut bytes = Vec::new();
+        la.write_to(&mut Cursor::new(&mut bytes), ImageFormat::Png).unwrap();
+        let f = rgb(decode(&bytes, lim(100), Orientation::Exif).unwrap());
+        assert_eq!((f.channels, f.data.clone()), (1, vec![10, 200]), "alpha dropped, not premultiplied");
+        let rgba = image::RgbaImage::from_raw(1, 1, vec![1, 2, 3, 0]).unwrap();
+        let mut bytes = Vec::new();
+        rgba.write_to(&mut Cursor::new(&mut bytes), ImageFormat::Png).unwrap();
+        assert_eq!(rgb(decode(&bytes, lim(100), Orientation::Exif).unwrap()).data, vec![1, 2, 3]);
+    }
+
+    #[test]
+    fn adobe_ycck_marker_is_detected() {
+        // SOI, APP14 "Adobe" (version 100, flags 0, 0, transform), then SOS.
+        let jpeg = |transform: u8| {
+            let mut j = vec![0xff, 0xd8, 0xff, 0xee, 0x00, 0x0e];
+            j.extend_from_slice(b"Adobe");
+            j.extend_from_slice(&[0x00, 0x64, 0, 0, 0, 0, transform]);
+            j.extend_from_slice(&[0xff, 0xda, 0x00, 0x02, 0xff, 0xd9]);
+            j
+        };
+        assert!(is_adobe_ycck(&jpeg(2)));
+        assert!(!is_adobe_ycck(&jpeg(1)), "transform 1 is YCbCr");
+        assert!(!is_adobe_ycck(&jpeg(0)), "transform 0 is plain RGB/CMYK");
+        let err = decode(&jpeg(2), lim(100), Orientation::Exif).unwrap_err();
+        assert!(matches!(err, PreprocessError::Unsupported(ref m) if m.contains("YCCK")), "{err:?}");
     }
 }

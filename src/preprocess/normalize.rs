@@ -1,5 +1,6 @@
-//! Normalisation: resized 8-bit pixels into the model's float tensor,
-//! x = (pixel / divisor - mean\[c\]) / std\[c\], in the model's channel order and layout.
+//! Normalisation: resized pixels into the model's float tensor,
+//! x = (pixel / divisor - mean\[c\]) / std\[c\], in the model's channel order and layout;
+//! and the channel conversions that come before resizing (luma for gray models).
 
 use crate::config::{Channels, Layout};
 
@@ -12,10 +13,36 @@ pub fn luma(rgb: &[u8]) -> Vec<u8> {
         .collect()
 }
 
-/// Build the tensor for one image from interleaved pixels (`channels.count()` per pixel, RGB
-/// order for colour). `mean` and `std` are in the model's channel order (after a BGR swap).
-pub fn to_tensor(
-    pixels: &[u8],
+/// BT.601 luma of float levels (16-bit frames), unrounded: 0.299 R + 0.587 G + 0.114 B.
+pub fn luma_f32(rgb: &[f32]) -> Vec<f32> {
+    rgb.chunks_exact(3).map(|p| 0.299 * p[0] + 0.587 * p[1] + 0.114 * p[2]).collect()
+}
+
+/// A sample that can be normalised: its level on the 0..255 scale.
+pub trait Level: Copy {
+    /// The level as a float.
+    fn level(self) -> f32;
+}
+impl Level for u8 {
+    fn level(self) -> f32 {
+        f32::from(self)
+    }
+}
+impl Level for f32 {
+    fn level(self) -> f32 {
+        self
+    }
+}
+
+/// Build the tensor for one image from interleaved pixels with `src_channels` samples each
+/// (1 = gray, 3 = RGB). A gray source feeding an RGB/BGR model is replicated (Pillow's
+/// `convert("RGB")` of an "L" image); an RGB source for a gray model must be converted with
+/// [`luma`] before resizing, as Pillow does. `mean` and `std` are in the model's channel order
+/// (after a BGR swap).
+#[allow(clippy::too_many_arguments)]
+pub fn to_tensor<T: Level>(
+    pixels: &[T],
+    src_channels: usize,
     width: u32,
     height: u32,
     channels: Channels,
@@ -26,11 +53,11 @@ pub fn to_tensor(
 ) -> Vec<f32> {
     let n = channels.count();
     let plane = width as usize * height as usize;
-    // Source channel for each model channel.
-    let order: &[usize] = match channels {
-        Channels::Rgb => &[0, 1, 2],
-        Channels::Bgr => &[2, 1, 0],
-        Channels::Gray => &[0],
+    // Source sample for each model channel.
+    let order: [usize; 3] = match (channels, src_channels) {
+        (_, 1) => [0, 0, 0],
+        (Channels::Bgr, _) => [2, 1, 0],
+        _ => [0, 1, 2],
     };
     // (p / divisor - mean) / std == p * scale + offset, computed once per channel.
     let scale: Vec<f32> = std.iter().map(|s| 1.0 / (divisor * s)).collect();
@@ -38,17 +65,18 @@ pub fn to_tensor(
     let mut out = vec![0.0f32; plane * n];
     match layout {
         Layout::Nchw => {
-            for (c, &src_c) in order.iter().enumerate() {
+            for c in 0..n {
+                let (src_c, sc, off) = (order[c], scale[c], offset[c]);
                 let dst = &mut out[c * plane..(c + 1) * plane];
-                for (i, v) in dst.iter_mut().enumerate() {
-                    *v = f32::from(pixels[i * n + src_c]) * scale[c] + offset[c];
+                for (v, px) in dst.iter_mut().zip(pixels.chunks_exact(src_channels)) {
+                    *v = px[src_c].level() * sc + off;
                 }
             }
         }
         Layout::Nhwc => {
-            for i in 0..plane {
-                for (c, &src_c) in order.iter().enumerate() {
-                    out[i * n + c] = f32::from(pixels[i * n + src_c]) * scale[c] + offset[c];
+            for (dst, px) in out.chunks_exact_mut(n).zip(pixels.chunks_exact(src_channels)) {
+                for c in 0..n {
+                    dst[c] = px[order[c]].level() * scale[c] + offset[c];
                 }
             }
         }
@@ -67,7 +95,7 @@ mod tests {
         // B: (0.0 - 0.406) / 0.225 = -1.804444
         let mean = [0.485, 0.456, 0.406];
         let std = [0.229, 0.224, 0.225];
-        let t = to_tensor(&[255, 128, 0], 1, 1, Channels::Rgb, Layout::Nchw, 255.0, &mean, &std);
+        let t = to_tensor(&[255u8, 128, 0], 3, 1, 1, Channels::Rgb, Layout::Nchw, 255.0, &mean, &std);
         for (a, b) in t.iter().zip([2.248_908, 0.205_182, -1.804_444]) {
             assert!((a - b).abs() < 1e-5, "{t:?}");
         }
@@ -76,13 +104,13 @@ mod tests {
     #[test]
     fn layouts_and_bgr_order() {
         // 2x1 image: pixels (1,2,3) and (4,5,6); divisor 1, no mean/std.
-        let px = [1, 2, 3, 4, 5, 6];
+        let px = [1u8, 2, 3, 4, 5, 6];
         let id = [0.0; 3];
         let one = [1.0; 3];
-        assert_eq!(to_tensor(&px, 2, 1, Channels::Rgb, Layout::Nchw, 1.0, &id, &one), [1., 4., 2., 5., 3., 6.]);
-        assert_eq!(to_tensor(&px, 2, 1, Channels::Rgb, Layout::Nhwc, 1.0, &id, &one), [1., 2., 3., 4., 5., 6.]);
-        assert_eq!(to_tensor(&px, 2, 1, Channels::Bgr, Layout::Nchw, 1.0, &id, &one), [3., 6., 2., 5., 1., 4.]);
-        assert_eq!(to_tensor(&px, 2, 1, Channels::Bgr, Layout::Nhwc, 1.0, &id, &one), [3., 2., 1., 6., 5., 4.]);
+        assert_eq!(to_tensor(&px, 3, 2, 1, Channels::Rgb, Layout::Nchw, 1.0, &id, &one), [1., 4., 2., 5., 3., 6.]);
+        assert_eq!(to_tensor(&px, 3, 2, 1, Channels::Rgb, Layout::Nhwc, 1.0, &id, &one), [1., 2., 3., 4., 5., 6.]);
+        assert_eq!(to_tensor(&px, 3, 2, 1, Channels::Bgr, Layout::Nchw, 1.0, &id, &one), [3., 6., 2., 5., 1., 4.]);
+        assert_eq!(to_tensor(&px, 3, 2, 1, Channels::Bgr, Layout::Nhwc, 1.0, &id, &one), [3., 2., 1., 6., 5., 4.]);
     }
 
     #[test]
@@ -94,5 +122,13 @@ mod tests {
             228, 136, 117, 52, 162, 15, 11, 13, 4,
         ];
         assert_eq!(luma(&px), [124, 255, 0, 54, 193, 198, 162, 189, 161, 112, 11]);
+    }
+
+    #[test]
+    fn gray_source_is_replicated_for_colour_models() {
+        let t = to_tensor(&[10u8, 20], 1, 2, 1, Channels::Bgr, Layout::Nchw, 1.0, &[0.0; 3], &[1.0; 3]);
+        assert_eq!(t, [10., 20., 10., 20., 10., 20.]);
+        let t = to_tensor(&[7.5f32], 1, 1, 1, Channels::Gray, Layout::Nhwc, 255.0, &[0.0], &[1.0]);
+        assert_eq!(t, [7.5 / 255.0]);
     }
 }
