@@ -735,6 +735,7 @@ fn validate_preprocess(p: RawPreprocess) -> Result<PreprocessConfig, String> {
             return Err(format!("preprocess.crop_fraction = {f}: expected 0 < f <= 1 (0.875 crops 224 from 256)"));
         }
         (Some(_), mode) => {
+            let mode = format!("{mode:?}").to_lowercase();
             return Err(format!("preprocess.crop_fraction applies only to resize = \"crop\" (resize is {mode:?})"));
         }
     };
@@ -744,6 +745,7 @@ fn validate_preprocess(p: RawPreprocess) -> Result<PreprocessConfig, String> {
             u8::try_from(v).map_err(|_| format!("preprocess.pad_value = {v}: expected a level 0 ..= 255"))?
         }
         (Some(_), mode) => {
+            let mode = format!("{mode:?}").to_lowercase();
             return Err(format!("preprocess.pad_value applies only to resize = \"letterbox\" (resize is {mode:?})"));
         }
     };
@@ -940,5 +942,39 @@ height = 32
         assert_eq!(cfg.models[0].batching.lanes, Lanes::Fixed(3));
         let cfg = parse(&format!("{MINIMAL}[models.batching]\nlanes = \"auto\"\n")).unwrap();
         assert_eq!(cfg.models[0].batching.lanes, Lanes::Auto);
+    }
+
+    #[test]
+    fn preprocess_keys_are_checked_with_their_names() {
+        for (edit, needle) in [
+            ("height = 32\nnormalize = \"imagenet\"\nmean = [0.5, 0.5, 0.5]", "both given"),
+            ("height = 32\nnormalize = \"coco\"", "normalize = \"coco\""),
+            ("height = 32\nchannels = \"gray\"\nnormalize = \"imagenet\"", "needs 3 channels"),
+            ("height = 32\nresize = \"crop\"\ncrop_fraction = 1.5", "crop_fraction = 1.5"),
+            ("height = 32\ncrop_fraction = 0.875", "applies only to resize = \"crop\""),
+            ("height = 32\nresize = \"letterbox\"\npad_value = 300", "pad_value = 300"),
+            ("height = 32\npad_value = 114", "applies only to resize = \"letterbox\""),
+            ("height = 32\nroi = [0, 0, 10]", "preprocess.roi = [0, 0, 10]"),
+            ("height = 32\nroi = [0, 0, 0, 10]", "w and h >= 1"),
+            ("height = 32\nmin_side = 0", "min_side = 0"),
+            ("height = 32\norientation = \"auto\"", "auto"),
+        ] {
+            let err = parse(&MINIMAL.replace("height = 32", edit)).unwrap_err();
+            assert!(err.contains(needle), "{edit}: {err}");
+        }
+    }
+
+    #[test]
+    fn imagenet_statistics_follow_the_channel_order() {
+        let bgr = MINIMAL.replace("height = 32", "height = 32\nchannels = \"bgr\"\nnormalize = \"imagenet\"");
+        let p = parse(&bgr).unwrap().models[0].preprocess.clone();
+        // ImageNet statistics in RGB order (common practice), listed here in BGR order.
+        assert_eq!(p.mean, vec![0.406, 0.456, 0.485]);
+        assert_eq!(p.std, vec![0.225, 0.224, 0.229]);
+        let crop =
+            MINIMAL.replace("height = 32", "height = 32\nresize = \"crop\"\ncrop_fraction = 0.875\nroi = [1, 2, 3, 4]");
+        let p = parse(&crop).unwrap().models[0].preprocess.clone();
+        assert_eq!((p.crop_fraction, p.roi), (0.875, Some(Roi { x: 1, y: 2, w: 3, h: 4 })));
+        assert_eq!((p.min_side, p.orientation, p.pad_value), (8, Orientation::Exif, 0));
     }
 }

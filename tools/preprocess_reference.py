@@ -25,6 +25,9 @@ The reference pipeline (versions pinned in tools/requirements.txt):
   normalise     (p / divisor - mean[c]) / std[c]; NCHW or NHWC; uint8 models get raw levels.
 
 Usage: .venv/bin/python tools/preprocess_reference.py --lineside target/release/lineside --work DIR
+       .venv/bin/python tools/preprocess_reference.py scores MODEL.onnx W H PRE_JSON FILE...
+The second form prints, per file, onnxruntime's softmax probabilities on the reference tensor
+(the end-to-end check against lineside's HTTP answers).
 """
 
 import argparse
@@ -306,7 +309,35 @@ def write_config(path, case):
         f.write("\n".join(lines) + "\n")
 
 
+def scores(model, W, H, pre, files):
+    """onnxruntime (1 thread, CPU) on the reference tensor of each file; softmax of the logits."""
+    import onnxruntime
+
+    opts = onnxruntime.SessionOptions()
+    opts.intra_op_num_threads = 1
+    sess = onnxruntime.InferenceSession(model, opts, providers=["CPUExecutionProvider"])
+    inp = sess.get_inputs()[0]
+    uint8 = inp.type == "tensor(uint8)"
+    layout = "nhwc" if inp.shape[-1] in (1, 3) and inp.shape[1] not in (1, 3) else "nchw"
+    out = {}
+    for f in files:
+        data = open(f, "rb").read()
+        arr16 = None
+        if f.endswith((".tif", ".tiff")):
+            a = tifffile.imread(f)
+            arr16 = a if a.dtype == np.uint16 else None  # 16-bit: v / 257, not Pillow's clipping
+        levels = reference_levels(data, arr16, pre, W, H)
+        x = reference_tensor(levels, pre, layout, uint8)
+        z = sess.run(None, {inp.name: x})[0].reshape(-1).astype(np.float64)
+        e = np.exp(z - z.max())
+        out[os.path.basename(f)] = (e / e.sum()).tolist()
+    json.dump(out, sys.stdout)
+
+
 def main():
+    if len(sys.argv) > 1 and sys.argv[1] == "scores":
+        model, W, H, pre = sys.argv[2], int(sys.argv[3]), int(sys.argv[4]), json.loads(sys.argv[5])
+        return scores(model, W, H, pre, sys.argv[6:])
     ap = argparse.ArgumentParser()
     ap.add_argument("--lineside", required=True)
     ap.add_argument("--work", required=True)

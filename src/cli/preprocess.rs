@@ -45,10 +45,12 @@ pub fn run(args: PreprocessArgs) -> anyhow::Result<Outcome> {
     let names: Vec<&str> = config.models.iter().map(|m| m.name.as_str()).collect();
     let mc = match (&args.model, config.models.as_slice()) {
         (None, [only]) => only,
-        (None, _) => anyhow::bail!("{} serves {} models ({names:?}): choose one with --model", config.origin, names.len()),
-        (Some(n), _) => config
-            .model(n)
-            .with_context(|| format!("no model {n:?} in {}; it has {names:?}", config.origin))?,
+        (None, _) => {
+            anyhow::bail!("{} serves {} models ({names:?}): choose one with --model", config.origin, names.len())
+        }
+        (Some(n), _) => {
+            config.model(n).with_context(|| format!("no model {n:?} in {}; it has {names:?}", config.origin))?
+        }
     };
     let contract = load::contract(mc).with_context(|| format!("model {:?}", mc.name))?;
     let pipeline = Pipeline::new(mc.preprocess.clone(), &contract, config.server.max_pixels);
@@ -63,7 +65,8 @@ pub fn run(args: PreprocessArgs) -> anyhow::Result<Outcome> {
     std::fs::write(&args.out, npy::encode(&shape, &prepared.tensor, dtype))
         .with_context(|| format!("cannot write {}", args.out.display()))?;
     if let Some(path) = &args.preview {
-        let img = prepared.canvas.as_ref().and_then(|c| c.to_dynamic()).context("internal: no preview image was kept")?;
+        let img =
+            prepared.canvas.as_ref().and_then(|c| c.to_dynamic()).context("internal: no preview image was kept")?;
         img.save_with_format(path, image::ImageFormat::Png)
             .with_context(|| format!("cannot write the preview {}", path.display()))?;
     }

@@ -197,7 +197,10 @@ mod tests {
     #[test]
     fn empty_random_and_truncated_bodies_are_bad_images() {
         assert!(matches!(decode(b"", lim(1000), Orientation::Exif), Err(PreprocessError::Empty)));
-        assert!(matches!(decode(b"hello, this is text", lim(1000), Orientation::Exif), Err(PreprocessError::BadImage(_))));
+        assert!(matches!(
+            decode(b"hello, this is text", lim(1000), Orientation::Exif),
+            Err(PreprocessError::BadImage(_))
+        ));
         let p = png(20, 20);
         assert!(matches!(decode(&p[..p.len() / 2], lim(1000), Orientation::Exif), Err(PreprocessError::BadImage(_))));
     }

@@ -169,8 +169,15 @@ const HALF: i32 = 1 << (PRECISION_BITS - 1);
 ///
 /// # Errors
 /// Only a window outside the full size (a bug, reported rather than panicked).
-pub fn resize<T: Pass>(src: &Plane<T>, full_w: u32, full_h: u32, win: Window, filter: Filter) -> Result<Plane<T>, PreprocessError> {
-    if win.w == 0 || win.h == 0 || win.x + win.w > full_w || win.y + win.h > full_h || src.width == 0 || src.height == 0 {
+pub fn resize<T: Pass>(
+    src: &Plane<T>,
+    full_w: u32,
+    full_h: u32,
+    win: Window,
+    filter: Filter,
+) -> Result<Plane<T>, PreprocessError> {
+    if win.w == 0 || win.h == 0 || win.x + win.w > full_w || win.y + win.h > full_h || src.width == 0 || src.height == 0
+    {
         return Err(PreprocessError::Internal(format!(
             "resize window {win:?} outside {full_w}x{full_h}, or an empty source {}x{}",
             src.width, src.height
@@ -207,14 +214,24 @@ pub fn resize<T: Pass>(src: &Plane<T>, full_w: u32, full_h: u32, win: Window, fi
 pub trait Pass: Sample {
     /// Horizontal pass over source rows `rows`, output columns `cols`.
     #[doc(hidden)]
-    fn horizontal(src: &Plane<Self>, c: &Coeffs, rows: std::ops::Range<usize>, cols: std::ops::Range<usize>) -> Plane<Self>;
+    fn horizontal(
+        src: &Plane<Self>,
+        c: &Coeffs,
+        rows: std::ops::Range<usize>,
+        cols: std::ops::Range<usize>,
+    ) -> Plane<Self>;
     /// Vertical pass: `mid` holds source rows from `first`; output rows `rows`.
     #[doc(hidden)]
     fn vertical(mid: &Plane<Self>, c: &Coeffs, first: usize, rows: std::ops::Range<usize>) -> Plane<Self>;
 }
 
 impl Pass for u8 {
-    fn horizontal(src: &Plane<u8>, c: &Coeffs, rows: std::ops::Range<usize>, cols: std::ops::Range<usize>) -> Plane<u8> {
+    fn horizontal(
+        src: &Plane<u8>,
+        c: &Coeffs,
+        rows: std::ops::Range<usize>,
+        cols: std::ops::Range<usize>,
+    ) -> Plane<u8> {
         let kk = fixed(&c.weights);
         match src.channels {
             1 => horizontal_u8::<1>(src, c, &kk, rows, cols),
@@ -271,7 +288,12 @@ fn horizontal_u8<const C: usize>(
 }
 
 impl Pass for f32 {
-    fn horizontal(src: &Plane<f32>, c: &Coeffs, rows: std::ops::Range<usize>, cols: std::ops::Range<usize>) -> Plane<f32> {
+    fn horizontal(
+        src: &Plane<f32>,
+        c: &Coeffs,
+        rows: std::ops::Range<usize>,
+        cols: std::ops::Range<usize>,
+    ) -> Plane<f32> {
         let ch = src.channels;
         let row_len = src.width as usize * ch;
         let mut data = Vec::with_capacity(rows.len() * cols.len() * ch);

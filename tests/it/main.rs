@@ -10,6 +10,7 @@
 mod check;
 mod cli;
 mod load;
+mod preprocess;
 mod reference;
 mod serve;
 mod util;

@@ -159,6 +159,44 @@ async fn request_errors_have_precise_statuses() {
     server.stop().await.unwrap();
 }
 
+/// A PNG of `w` x `h` mid-gray pixels.
+fn gray_png(w: u32, h: u32) -> Vec<u8> {
+    let mut png = Vec::new();
+    image::GrayImage::from_pixel(w, h, image::Luma([128]))
+        .write_to(&mut std::io::Cursor::new(&mut png), image::ImageFormat::Png)
+        .unwrap();
+    png
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn frames_too_small_outside_the_roi_or_ycck_get_their_own_statuses() {
+    let server = TestServer::start(washer_config_with(&[(
+        "resize = \"stretch\"",
+        "resize = \"stretch\"\nroi = [10, 10, 200, 150]\nmin_side = 16",
+    )]))
+    .await;
+    let c = client();
+    let post = |body: Vec<u8>| c.post(server.url("/classify/washers")).body(body).send();
+    // 40x12: the short side is below min_side = 16, known from the header.
+    let msg = expect_error(post(gray_png(40, 12)).await.unwrap(), 422, "too_small").await;
+    assert!(msg.contains("40x12") && msg.contains("min_side = 16"), "{msg}");
+    // 100x100 frame: the ROI reaches (210, 160).
+    let msg = expect_error(post(gray_png(100, 100)).await.unwrap(), 422, "roi_outside").await;
+    assert!(msg.contains("[10, 10, 200, 150]") && msg.contains("(210, 160)") && msg.contains("100x100"), "{msg}");
+    // A frame the ROI fits is served (a gray frame feeds the RGB model replicated).
+    assert_eq!(post(gray_png(320, 240)).await.unwrap().status(), 200);
+    // A JPEG whose Adobe APP14 segment says YCCK (transform byte 2): refused, not miscoloured.
+    let mut jpeg = Vec::new();
+    let frame = image::RgbImage::from_pixel(32, 32, image::Rgb([200, 100, 50]));
+    frame.write_to(&mut std::io::Cursor::new(&mut jpeg), image::ImageFormat::Jpeg).unwrap();
+    let mut app14 = vec![0xff, 0xee, 0x00, 0x0e];
+    app14.extend_from_slice(b"Adobe\x00\x64\x00\x00\x00\x00\x02");
+    jpeg.splice(2..2, app14);
+    let msg = expect_error(post(jpeg).await.unwrap(), 415, "unsupported_format").await;
+    assert!(msg.contains("YCCK"), "{msg}");
+    server.stop().await.unwrap();
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn metrics_parse_and_count_every_request() {
     let server = TestServer::start(washer_config()).await;
