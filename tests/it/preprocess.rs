@@ -12,7 +12,7 @@ use std::process::Command;
 
 use serde_json::Value;
 
-use crate::util::{TestServer, config_from_text, python, root, samples};
+use crate::util::{TestServer, config_from_text, python, root, samples, without_selftest};
 
 /// A fresh scratch folder for one test.
 fn scratch(name: &str) -> PathBuf {
@@ -172,11 +172,7 @@ async fn served_scores_match_pillow_and_onnxruntime_on_the_original_files() {
     let client = reqwest::Client::new();
     for (label, edit, pre) in variants {
         let text = base.replace(plain, &edit);
-        // The washer self-test holds for the documented preprocessing only: drop it here.
-        let (head, rest) = text.split_once("[models.selftest]").expect("the washer config has a self-test");
-        let (_, tail) = rest.split_once("[models.batching]").expect("[models.batching] follows the self-test");
-        let text = format!("{head}[models.batching]{tail}");
-        let server = TestServer::start(config_from_text(&text)).await;
+        let server = TestServer::start(config_from_text(&without_selftest(&text))).await;
         let theirs = reference_scores(&model, (96, 96), &pre, &files);
         let mut worst = 0.0f64;
         for f in &files {

@@ -7,7 +7,8 @@ use sha2::{Digest, Sha256};
 use tokio::io::AsyncWriteExt;
 
 use crate::util::{
-    TestServer, expect_error, metric, parse_metrics, root, samples, washer_config, washer_config_with, washer_requests,
+    TestServer, expect_error, metric, parse_metrics, root, samples, washer_config, washer_config_with,
+    washer_config_without_selftest, washer_requests,
 };
 
 fn client() -> reqwest::Client {
@@ -170,7 +171,7 @@ fn gray_png(w: u32, h: u32) -> Vec<u8> {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn frames_too_small_outside_the_roi_or_ycck_get_their_own_statuses() {
-    let server = TestServer::start(washer_config_with(&[(
+    let server = TestServer::start(washer_config_without_selftest(&[(
         "resize = \"stretch\"",
         "resize = \"stretch\"\nroi = [10, 10, 200, 150]\nmin_side = 16",
     )]))

@@ -33,6 +33,24 @@ pub(crate) fn washer_config_with(edits: &[(&str, &str)]) -> Config {
     config_from_text(&text)
 }
 
+/// The washer config text with its self-test removed, for tests that change the
+/// preprocessing (the self-test's expected scores hold for the documented settings only).
+pub(crate) fn without_selftest(text: &str) -> String {
+    let (head, rest) = text.split_once("[models.selftest]").expect("the washer config has a self-test");
+    let (_, tail) = rest.split_once("[models.batching]").expect("[models.batching] follows the self-test");
+    format!("{head}[models.batching]{tail}")
+}
+
+/// The washer config with some lines edited (as [`washer_config_with`]) and no self-test.
+pub(crate) fn washer_config_without_selftest(edits: &[(&str, &str)]) -> Config {
+    let mut text = std::fs::read_to_string(root().join("config/lineside.toml")).unwrap();
+    for (from, to) in edits {
+        assert!(text.contains(from), "config/lineside.toml has no {from:?}");
+        text = text.replace(from, to);
+    }
+    config_from_text(&without_selftest(&text))
+}
+
 /// A config from TOML text, with paths relative to `config/` and an ephemeral port.
 pub(crate) fn config_from_text(text: &str) -> Config {
     let base = root().join("config");
