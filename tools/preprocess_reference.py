@@ -53,7 +53,7 @@ IMAGENET = ([0.485, 0.456, 0.406], [0.229, 0.224, 0.225])  # common practice, RG
 # ----------------------------------------------------------------------------- frames
 
 
-def scene(w, h, seed, bits=8):
+def scene(w, h, seed, bits=8, noise=6.0):
     """A washer on a belt: a bright ring with a hole, a dark spur, a gradient, noise."""
     rng = np.random.default_rng(seed)
     y, x = np.mgrid[0:h, 0:w].astype(np.float64)
@@ -64,7 +64,7 @@ def scene(w, h, seed, bits=8):
     img = np.stack([base + 150 * ring, base * 0.9 + 140 * ring, base * 0.7 + 170 * ring], -1)
     img[(np.abs(y - cy) < 1.5) & (x > cx) & (x < cx + r)] *= 0.3  # a crack: a hard edge
     img[::7, :, 1] += 25  # fine stripes: aliasing shows filter differences
-    img += rng.normal(0, 6, img.shape)
+    img += rng.normal(0, noise, img.shape)
     top = 65535 if bits == 16 else 255
     img = np.clip(img / 255.0 * top, 0, top)
     return img.round().astype(np.uint16 if bits == 16 else np.uint8)

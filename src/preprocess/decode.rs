@@ -240,6 +240,18 @@ mod tests {
         assert!(matches!(err, PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. }), "{err:?}");
     }
 
+    #[test]
+    fn jpeg_header_claiming_huge_size_is_refused_without_allocating() {
+        let img = RgbImage::from_fn(16, 16, |x, y| image::Rgb([x as u8 * 9, y as u8 * 9, 50]));
+        let mut jpeg = Vec::new();
+        img.write_to(&mut Cursor::new(&mut jpeg), ImageFormat::Jpeg).unwrap();
+        // SOF0 (FF C0): length u16, precision u8, then height and width as u16 (ITU-T T.81 B.2.2).
+        let sof = jpeg.windows(2).position(|w| w == [0xff, 0xc0]).expect("a baseline JPEG has SOF0");
+        jpeg[sof + 5..sof + 9].copy_from_slice(&[0xea, 0x60, 0xea, 0x60]); // 60000 x 60000
+        let err = decode(&jpeg, lim(40_000_000), Orientation::Exif).unwrap_err();
+        assert!(matches!(err, PreprocessError::TooLarge { width: 60000, height: 60000, .. }), "{err:?}");
+    }
+
     /// CRC-32 (ISO 3309 / PNG spec section 5.5), bitwise.
     fn crc32(data: &[u8]) -> u32 {
         let mut c = 0xffff_ffffu32;
