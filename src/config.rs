@@ -79,6 +79,15 @@ pub struct ServerConfig {
     pub header_timeout: Duration,
     /// Longest shutdown waits for requests in flight.
     pub drain: Duration,
+    /// Longest a classify request may take from arrival to answer (a request header
+    /// `X-Deadline-Ms` may shorten it); past it the answer is 504 `deadline`.
+    pub deadline: Duration,
+    /// Longest a client may take to send its request body.
+    pub body_timeout: Duration,
+    /// A lane busy with one pass for longer than this makes `/healthz` fail.
+    pub stall: Duration,
+    /// `/readyz` turns 503 when a model's backlog holds this share of its size or more.
+    pub ready_backlog: f64,
 }
 
 /// A file the config names, on disk or embedded in the binary.
@@ -168,10 +177,12 @@ pub struct ModelConfig {
     pub selftest: Option<SelftestConfig>,
     /// How outputs become scores.
     pub scores: ScoresMode,
+    /// Answers whose top score is below this are marked `"confident": false` and counted.
+    pub min_score: Option<f32>,
 }
 
 /// How a model's outputs become scores (`[[models]] scores`).
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, serde::Serialize)]
 #[serde(rename_all = "lowercase")]
 pub enum ScoresMode {
     /// Use the outputs as they are when the graph ends in Softmax or Sigmoid, else softmax them.
@@ -194,7 +205,7 @@ pub struct SelftestConfig {
 }
 
 /// How to resize a frame to the model's input size.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, serde::Serialize)]
 #[serde(rename_all = "lowercase")]
 pub enum ResizeMode {
     /// To width x height, ignoring aspect.
@@ -206,7 +217,7 @@ pub enum ResizeMode {
 }
 
 /// Whether the EXIF orientation tag is applied (`[models.preprocess] orientation`).
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, serde::Serialize)]
 #[serde(rename_all = "lowercase")]
 pub enum Orientation {
     /// Rotate/flip the frame as its EXIF tag says (what a photo viewer shows).
@@ -216,7 +227,7 @@ pub enum Orientation {
 }
 
 /// A region of interest in source pixels (after orientation).
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
 pub struct Roi {
     /// Left edge.
     pub x: u32,
@@ -229,7 +240,7 @@ pub struct Roi {
 }
 
 /// Resampling filter, with Pillow's (antialiased) semantics.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, serde::Serialize)]
 #[serde(rename_all = "lowercase")]
 pub enum Filter {
     /// Nearest neighbour.
@@ -245,7 +256,7 @@ pub enum Filter {
 }
 
 /// Channel order of the model's input.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, serde::Serialize)]
 #[serde(rename_all = "lowercase")]
 pub enum Channels {
     /// Red, green, blue.
@@ -286,7 +297,7 @@ impl std::fmt::Display for Layout {
 }
 
 /// Validated `[models.preprocess]`.
-#[derive(Debug, Clone, PartialEq)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
 pub struct PreprocessConfig {
     /// Model input width in pixels (`None`: taken from the model, which must fix it).
     pub width: Option<u32>,
@@ -363,6 +374,10 @@ struct RawServer {
     decode_backlog: Option<usize>,
     header_timeout_ms: Option<u64>,
     drain_ms: Option<u64>,
+    deadline_ms: Option<u64>,
+    body_timeout_ms: Option<u64>,
+    stall_ms: Option<u64>,
+    ready_backlog: Option<f64>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -377,6 +392,7 @@ struct RawModel {
     selftest: Option<RawSelftest>,
     #[serde(default = "default_scores")]
     scores: ScoresMode,
+    min_score: Option<f32>,
 }
 
 fn default_scores() -> ScoresMode {
@@ -459,6 +475,14 @@ pub mod defaults {
     pub const MAX_PIXELS: u64 = 40_000_000;
     /// `[server] header_timeout_ms`.
     pub const HEADER_TIMEOUT_MS: u64 = 5_000;
+    /// `[server] deadline_ms`.
+    pub const DEADLINE_MS: u64 = 2_000;
+    /// `[server] body_timeout_ms`.
+    pub const BODY_TIMEOUT_MS: u64 = 10_000;
+    /// `[server] stall_ms`.
+    pub const STALL_MS: u64 = 30_000;
+    /// `[server] ready_backlog`.
+    pub const READY_BACKLOG: f64 = 0.9;
     /// `[server] drain_ms`.
     pub const DRAIN_MS: u64 = 10_000;
     /// `[server] decode_backlog`.
@@ -595,6 +619,17 @@ fn validate(
             defaults::HEADER_TIMEOUT_MS,
         )?),
         drain: Duration::from_millis(s.drain_ms.unwrap_or(defaults::DRAIN_MS)),
+        deadline: Duration::from_millis(positive("server.deadline_ms", s.deadline_ms, defaults::DEADLINE_MS)?),
+        body_timeout: Duration::from_millis(positive(
+            "server.body_timeout_ms",
+            s.body_timeout_ms,
+            defaults::BODY_TIMEOUT_MS,
+        )?),
+        stall: Duration::from_millis(positive("server.stall_ms", s.stall_ms, defaults::STALL_MS)?),
+        ready_backlog: match s.ready_backlog.unwrap_or(defaults::READY_BACKLOG) {
+            f if f > 0.0 && f <= 1.0 => f,
+            f => return Err(format!("server.ready_backlog = {f}: expected a share 0 < f <= 1 (0.9 = 90% full)")),
+        },
     };
 
     if raw.models.is_empty() {
@@ -610,6 +645,10 @@ fn validate(
             return Err(format!("{ctx}: the name {:?} is used twice", m.name));
         }
         let preprocess = validate_preprocess(m.preprocess).map_err(|e| format!("{ctx}: {e}"))?;
+        if let Some(v) = m.min_score.filter(|v| !(v.is_finite() && (0.0..=1.0).contains(v))) {
+            return Err(format!("{ctx}: min_score = {v}: expected a score 0 ..= 1"));
+        }
+        let min_score = m.min_score;
         let batching = validate_batching(m.batching).map_err(|e| format!("{ctx}: {e}"))?;
         let selftest = match m.selftest {
             None => None,
@@ -629,6 +668,7 @@ fn validate(
             batching,
             selftest,
             scores: m.scores,
+            min_score,
         });
     }
     Ok(Config { origin: origin.to_string(), server, models })
@@ -664,6 +704,7 @@ impl ModelConfig {
                 .unwrap_or_else(|e| unreachable!("defaults are valid: {e}")),
             selftest: None,
             scores: ScoresMode::Auto,
+            min_score: None,
         }
     }
 }

@@ -8,11 +8,24 @@ use lineside::cli::{Cli, Command, Outcome};
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
-    let filter = tracing_subscriber::EnvFilter::try_from_env("LINESIDE_LOG")
-        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
-    // Colours only for a person at a terminal; log files and journald get plain text.
-    let ansi = std::io::IsTerminal::is_terminal(&std::io::stderr());
-    tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr).with_ansi(ansi).init();
+    let filter = match &cli.log_level {
+        Some(level) => match tracing_subscriber::EnvFilter::try_new(level) {
+            Ok(f) => f,
+            Err(e) => {
+                eprintln!("lineside: --log-level {level:?}: {e}; expected error, warn, info, debug or trace");
+                return ExitCode::from(2);
+            }
+        },
+        None => tracing_subscriber::EnvFilter::try_from_env("LINESIDE_LOG")
+            .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info")),
+    };
+    let logs = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    if cli.log_format == "json" {
+        logs.json().init();
+    } else {
+        // Colours only for a person at a terminal; log files and journald get plain text.
+        logs.with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr())).init();
+    }
     let result = match cli.command {
         Command::Serve(args) => lineside::cli::serve::run(args),
         Command::Check(args) => lineside::cli::check::run(args),

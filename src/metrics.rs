@@ -15,13 +15,27 @@ use prometheus::{
 };
 
 /// Outcome label values of `lineside_request_duration_seconds` (the error kinds, and `ok`).
-pub const OUTCOMES: &[&str] =
-    &["ok", "bad_request", "bad_image", "too_large", "unsupported_format", "overloaded", "not_ready", "internal"];
+pub const OUTCOMES: &[&str] = &[
+    "ok",
+    "bad_request",
+    "bad_image",
+    "too_large",
+    "too_small",
+    "roi_outside",
+    "unsupported_format",
+    "overloaded",
+    "not_ready",
+    "draining",
+    "deadline",
+    "body_timeout",
+    "inference_failed",
+    "internal",
+];
 
-/// Duration buckets in seconds: 0.25 ms to 10 s, dense where a line's cycle time sits.
+/// Duration buckets in seconds: 0.5 ms to 2 s (the default deadline), dense where
+/// millisecond inference and a line's cycle time sit.
 const LATENCY_BUCKETS: &[f64] = &[
-    0.000_25, 0.000_5, 0.001, 0.002, 0.003, 0.005, 0.007_5, 0.01, 0.015, 0.02, 0.03, 0.05, 0.075, 0.1, 0.15, 0.25, 0.5,
-    1.0, 2.5, 5.0, 10.0,
+    0.000_5, 0.001, 0.002, 0.003, 0.005, 0.007_5, 0.01, 0.015, 0.02, 0.03, 0.05, 0.075, 0.1, 0.15, 0.25, 0.5, 1.0, 2.0,
 ];
 
 /// All of the server's metrics.
@@ -35,7 +49,12 @@ pub struct Metrics {
     backlog_depth: IntGaugeVec,
     lanes: IntGaugeVec,
     lane_failures: IntCounterVec,
+    lane_restarts: IntCounterVec,
     abandoned: IntCounterVec,
+    backlog_wait: HistogramVec,
+    predictions: IntCounterVec,
+    low_confidence: IntCounterVec,
+    model_info: IntGaugeVec,
     http_requests: IntCounterVec,
 }
 
@@ -52,6 +71,13 @@ pub struct ModelMetrics {
     pub pass_size: Histogram,
     /// Engine errors and panics.
     pub lane_failures: IntCounter,
+    /// Engine states replaced after a panic.
+    pub lane_restarts: IntCounter,
+    /// Time from joining the backlog to the start of the job's pass.
+    pub backlog_wait: Histogram,
+    /// Answers whose top score is below the model's `min_score`.
+    pub low_confidence: IntCounter,
+    predictions: IntCounterVec,
     /// Jobs dropped before inference because the client had gone.
     pub abandoned: IntCounter,
     /// Decode + preprocess time per image.
@@ -64,6 +90,11 @@ impl ModelMetrics {
     /// Record one classify request's total duration under its outcome.
     pub fn observe_request(&self, outcome: &str, seconds: f64) {
         self.request_duration.with_label_values(&[self.model.as_str(), outcome]).observe(seconds);
+    }
+
+    /// Count one answer's top-1 label (the label set is the model's: bounded).
+    pub fn observe_prediction(&self, label: &str) {
+        self.predictions.with_label_values(&[self.model.as_str(), label]).inc();
     }
 }
 
@@ -125,6 +156,24 @@ impl Metrics {
         );
         let http_requests =
             counter("http_requests_total", "HTTP responses, by matched route and status.", &["route", "status"]);
+        let lane_restarts = counter("lane_restarts_total", "Lane engine states replaced after a panic.", &["model"]);
+        let predictions = counter("predictions_total", "Answers by model and top-1 label.", &["model", "label"]);
+        let low_confidence =
+            counter("low_confidence_total", "Answers whose top score is below the model's min_score.", &["model"]);
+        let backlog_wait = hist(
+            "backlog_wait_seconds",
+            "Time a request waited in the backlog for an inference lane.",
+            &["model"],
+            LATENCY_BUCKETS.to_vec(),
+        );
+        let model_info = must(IntGaugeVec::new(
+            Opts::new("model_info", "Always 1: the served model's version and engine."),
+            &["model", "version", "engine"],
+        ));
+        must(registry.register(Box::new(model_info.clone())));
+        let build = must(IntGaugeVec::new(Opts::new("build_info", "Always 1: lineside's version."), &["version"]));
+        must(registry.register(Box::new(build.clone())));
+        build.with_label_values(&[env!("CARGO_PKG_VERSION")]).set(1);
         Metrics {
             registry,
             request_duration,
@@ -134,22 +183,36 @@ impl Metrics {
             backlog_depth,
             lanes,
             lane_failures,
+            lane_restarts,
             abandoned,
+            backlog_wait,
+            predictions,
+            low_confidence,
+            model_info,
             http_requests,
         }
     }
 
-    /// Handles for one model, with its expected series created at zero.
-    pub fn for_model(&self, model: &str) -> ModelMetrics {
+    /// Handles for one model, with its expected series created at zero (one prediction
+    /// series per label).
+    pub fn for_model(&self, model: &str, version: &str, engine: &str, labels: &[String]) -> ModelMetrics {
         for outcome in OUTCOMES {
             let _ = self.request_duration.with_label_values(&[model, outcome]);
         }
+        for label in labels {
+            let _ = self.predictions.with_label_values(&[model, label.as_str()]);
+        }
+        self.model_info.with_label_values(&[model, version, engine]).set(1);
         ModelMetrics {
             backlog_depth: self.backlog_depth.with_label_values(&[model]),
             lanes: self.lanes.with_label_values(&[model]),
             inference_duration: self.inference_duration.with_label_values(&[model]),
             pass_size: self.pass_size.with_label_values(&[model]),
             lane_failures: self.lane_failures.with_label_values(&[model]),
+            lane_restarts: self.lane_restarts.with_label_values(&[model]),
+            backlog_wait: self.backlog_wait.with_label_values(&[model]),
+            low_confidence: self.low_confidence.with_label_values(&[model]),
+            predictions: self.predictions.clone(),
             abandoned: self.abandoned.with_label_values(&[model]),
             preprocess_duration: self.preprocess_duration.with_label_values(&[model]),
             request_duration: self.request_duration.clone(),
@@ -190,8 +253,9 @@ mod tests {
     #[test]
     fn renders_prefixed_names_and_precreated_series() {
         let m = Metrics::new();
-        let mm = m.for_model("washers");
+        let mm = m.for_model("washers", "f90bf350ed0f", "tract", &["good".into(), "burr".into()]);
         mm.observe_request("ok", 0.004);
+        mm.observe_prediction("burr");
         mm.pass_size.observe(3.0);
         let text = m.render();
         assert!(text.contains("lineside_request_duration_seconds_count{model=\"washers\",outcome=\"ok\"} 1"), "{text}");
@@ -201,5 +265,18 @@ mod tests {
         );
         assert!(text.contains("lineside_pass_size_requests_bucket{model=\"washers\",le=\"4\"} 1"), "{text}");
         assert!(text.contains("lineside_backlog_depth{model=\"washers\"} 0"), "{text}");
+        assert!(text.contains("lineside_predictions_total{label=\"burr\",model=\"washers\"} 1"), "{text}");
+        assert!(text.contains("lineside_predictions_total{label=\"good\",model=\"washers\"} 0"), "{text}");
+        assert!(
+            text.contains("lineside_model_info{engine=\"tract\",model=\"washers\",version=\"f90bf350ed0f\"} 1"),
+            "{text}"
+        );
+        assert!(
+            text.contains(&format!("lineside_build_info{{version=\"{}\"}} 1", env!("CARGO_PKG_VERSION"))),
+            "{text}"
+        );
+        // Buckets from 0.5 ms to 2 s, then +Inf.
+        assert!(text.contains("lineside_backlog_wait_seconds_bucket{model=\"washers\",le=\"0.0005\"} 0"), "{text}");
+        assert!(text.contains("lineside_backlog_wait_seconds_bucket{model=\"washers\",le=\"2\"} 0"), "{text}");
     }
 }

@@ -21,9 +21,9 @@ use hyper_util::service::TowerToHyperService;
 use tokio::net::TcpListener;
 use tokio::sync::{oneshot, watch};
 
-use crate::batch::{Batcher, BatcherGuard};
+use crate::batch::{Batcher, BatcherGuard, FaultPlan};
 use crate::config::Config;
-use crate::http::state::{AppState, Readiness, Served, ServedModel};
+use crate::http::state::{AppState, InFlight, Readiness, RequestIds, RequestLimits, Served, ServedModel};
 use crate::metrics::Metrics;
 use crate::model::load;
 use crate::preprocess::Pipeline;
@@ -35,9 +35,17 @@ use crate::selftest;
 pub struct RunOptions {
     /// Loading starts only when this resolves (tests hold it to observe `/readyz` = 503).
     pub load_gate: Option<oneshot::Receiver<()>>,
+    /// A fault to inject into every model's lanes (tests of lane recovery).
+    #[doc(hidden)]
+    pub fault: FaultPlan,
 }
 
 /// Serve `config` on `listener` until `shutdown` resolves, then drain.
+///
+/// Draining: `/readyz` turns 503 at once and new classify requests get 503 `draining`, while
+/// the listener stays open and every request already accepted is answered. Once none is left,
+/// or after `drain_ms`, the lanes stop (whatever still waits is answered 503 `draining`) and
+/// `run` returns.
 ///
 /// # Errors
 /// When a model fails to load (the process should exit non-zero so that the orchestrator
@@ -52,8 +60,23 @@ pub async fn run(
     let pool = CpuPool::new("decode", config.server.decode_threads, config.server.decode_backlog)
         .context("cannot start the decode threads")?;
     let (ready_tx, ready_rx) = watch::channel(Readiness::Loading("waiting to start".into()));
-    let state =
-        AppState { readiness: ready_rx, metrics: metrics.clone(), pool, body_limit: config.server.body_limit_bytes };
+    let s = &config.server;
+    let limits = RequestLimits {
+        body_limit: s.body_limit_bytes,
+        body_timeout: s.body_timeout,
+        deadline: s.deadline,
+        stall: s.stall,
+        ready_backlog: s.ready_backlog,
+    };
+    let in_flight = Arc::new(InFlight::default());
+    let state = AppState {
+        readiness: ready_rx,
+        metrics: metrics.clone(),
+        pool,
+        limits,
+        in_flight: Arc::clone(&in_flight),
+        request_ids: Arc::new(RequestIds::new()),
+    };
     let app = crate::http::router(state);
 
     // The loader owns nothing the server needs; it reports back once.
@@ -62,12 +85,13 @@ pub async fn run(
         let config = config.clone();
         let ready_tx = ready_tx.clone();
         let gate = options.load_gate;
+        let fault = options.fault;
         tokio::spawn(async move {
             if let Some(gate) = gate {
                 let _ = gate.await;
             }
             let _ = ready_tx.send(Readiness::Loading(format!("loading {} model(s)", config.models.len())));
-            let result = tokio::task::spawn_blocking(move || load_all(&config, &metrics))
+            let result = tokio::task::spawn_blocking(move || load_all(&config, &metrics, &fault))
                 .await
                 .unwrap_or_else(|e| Err(anyhow::anyhow!("model loader panicked: {e}")));
             let _ = loaded_tx.send(result);
@@ -77,6 +101,17 @@ pub async fn run(
     let mut builder = Builder::new(TokioExecutor::new());
     builder.http1().timer(TokioTimer::new()).header_read_timeout(config.server.header_timeout);
     let graceful = GracefulShutdown::new();
+    let accept = |stream: tokio::net::TcpStream| {
+        let _ = stream.set_nodelay(true);
+        let svc = TowerToHyperService::new(app.clone());
+        let conn = builder.serve_connection_with_upgrades(TokioIo::new(stream), svc).into_owned();
+        let conn = graceful.watch(conn);
+        tokio::spawn(async move {
+            if let Err(e) = conn.await {
+                tracing::debug!(cause = %e, "connection ended with an error");
+            }
+        });
+    };
     let mut guards: Vec<BatcherGuard> = Vec::new();
     let mut served: Option<Arc<Served>> = None;
     let mut load_pending = true;
@@ -86,26 +121,10 @@ pub async fn run(
 
     loop {
         tokio::select! {
-            conn = listener.accept() => {
-                let (stream, _peer) = match conn {
-                    Ok(c) => c,
-                    Err(e) => {
-                        // Typically EMFILE: back off instead of spinning.
-                        tracing::warn!(cause = %e, "accept failed");
-                        tokio::time::sleep(std::time::Duration::from_millis(50)).await;
-                        continue;
-                    }
-                };
-                let _ = stream.set_nodelay(true);
-                let svc = TowerToHyperService::new(app.clone());
-                let conn = builder.serve_connection_with_upgrades(TokioIo::new(stream), svc).into_owned();
-                let conn = graceful.watch(conn);
-                tokio::spawn(async move {
-                    if let Err(e) = conn.await {
-                        tracing::debug!(cause = %e, "connection ended with an error");
-                    }
-                });
-            }
+            conn = listener.accept() => match conn {
+                Ok((stream, _)) => accept(stream),
+                Err(e) => backoff(e).await,
+            },
             loaded = &mut loaded_rx, if load_pending => {
                 load_pending = false;
                 match loaded {
@@ -139,16 +158,38 @@ pub async fn run(
         }
     }
 
+    // Drain: not ready at once, new classify requests refused with `draining`, the listener
+    // still open, until every accepted request is answered or drain_ms passes.
+    let drain = config.server.drain;
     if let Some(s) = served {
         let _ = ready_tx.send(Readiness::Draining(s));
+        tracing::info!(in_flight = in_flight.count(), drain_ms = drain.as_millis() as u64, "draining");
+        let until = tokio::time::Instant::now() + drain;
+        while in_flight.count() > 0 {
+            tokio::select! {
+                conn = listener.accept() => match conn {
+                    Ok((stream, _)) => accept(stream),
+                    Err(e) => backoff(e).await,
+                },
+                () = tokio::time::sleep_until(until) => {
+                    tracing::warn!(in_flight = in_flight.count(), "drain deadline passed; answering the rest `draining`");
+                    break;
+                }
+                () = tokio::time::sleep(POLL) => {}
+            }
+        }
+    }
+    // Stops the lanes; anything still queued is answered `draining`. Give those answers a
+    // moment to be written before the connections close.
+    drop(guards);
+    let tail = tokio::time::Instant::now() + ANSWER_TAIL;
+    while in_flight.count() > 0 && tokio::time::Instant::now() < tail {
+        tokio::time::sleep(POLL).await;
     }
     drop(listener);
-    let drain = config.server.drain;
-    if tokio::time::timeout(drain, graceful.shutdown()).await.is_err() {
-        tracing::warn!(drain_ms = drain.as_millis() as u64, "drain deadline passed; closing remaining connections");
+    if tokio::time::timeout(ANSWER_TAIL, graceful.shutdown()).await.is_err() {
+        tracing::warn!("connections still open after the drain; closing them");
     }
-    // Stops the lanes; anything still queued is answered `ShuttingDown`.
-    drop(guards);
     match failure {
         Some(e) => Err(e),
         None => {
@@ -156,6 +197,17 @@ pub async fn run(
             Ok(())
         }
     }
+}
+
+/// How often the drain looks at the in-flight count.
+const POLL: std::time::Duration = std::time::Duration::from_millis(5);
+/// Longest wait for the last answers and idle connections after the lanes stop.
+const ANSWER_TAIL: std::time::Duration = std::time::Duration::from_secs(2);
+
+/// After a failed accept (typically EMFILE): back off instead of spinning.
+async fn backoff(e: std::io::Error) {
+    tracing::warn!(cause = %e, "accept failed");
+    tokio::time::sleep(std::time::Duration::from_millis(50)).await;
 }
 
 /// What the loader hands the server.
@@ -166,7 +218,7 @@ struct Loaded {
 }
 
 /// Load every model, run its self-test and start its lanes.
-fn load_all(config: &Config, metrics: &Metrics) -> anyhow::Result<Loaded> {
+fn load_all(config: &Config, metrics: &Metrics, fault: &FaultPlan) -> anyhow::Result<Loaded> {
     let mut served = Served::new();
     let mut guards = Vec::new();
     let mut selftest_failures = Vec::new();
@@ -178,17 +230,30 @@ fn load_all(config: &Config, metrics: &Metrics) -> anyhow::Result<Loaded> {
             load_ms = model.load_time.as_millis() as u64,
             "model loaded"
         );
-        let mm = metrics.for_model(&mc.name);
-        let (batcher, guard) = Batcher::start(Arc::clone(&model), &mc.batching, mm.clone())?;
+        let mm = metrics.for_model(&mc.name, &model.version, "tract", &model.labels);
+        let (batcher, guard) = Batcher::start(Arc::clone(&model), &mc.batching, mm.clone(), fault.clone())?;
         let pipeline = Pipeline::new(mc.preprocess.clone(), &model.contract, config.server.max_pixels);
+        let mut selftest = None;
         if let Some(st) = &mc.selftest {
             let samples = selftest::Samples::read(st).with_context(|| format!("model {:?}: self-test", mc.name))?;
             let outcome = selftest::run(&model, &pipeline, &samples, st.tolerance);
             tracing::info!(model = %mc.name, samples = outcome.samples, failures = outcome.failures.len(), "self-test");
-            selftest_failures.extend(outcome.failures.into_iter().map(|f| format!("model {:?}: {f}", mc.name)));
+            selftest_failures.extend(outcome.failures.iter().map(|f| format!("model {:?}: {f}", mc.name)));
+            selftest = Some(outcome);
         }
         guards.push(guard);
-        served.insert(mc.name.clone(), ServedModel { model, pipeline: Arc::new(pipeline), batcher, metrics: mm });
+        let lanes = batcher.lanes();
+        let entry = ServedModel {
+            model,
+            pipeline: Arc::new(pipeline),
+            batcher,
+            metrics: mm,
+            min_score: mc.min_score,
+            batching: mc.batching.clone(),
+            lanes,
+            selftest,
+        };
+        served.insert(mc.name.clone(), entry);
     }
     Ok(Loaded { served: Arc::new(served), guards, selftest_failures })
 }

@@ -7,15 +7,21 @@
 //! it and answers every job. Inference never runs on the async executor's threads.
 //!
 //! Ownership: every `Batcher` clone holds a sender of the backlog; the [`BatcherGuard`] holds
-//! the only sender of the stop channel. Dropping the guard stops the lanes: they answer
-//! whatever is still queued with [`BatchError::ShuttingDown`] and exit.
+//! the only sender of the stop channel. Dropping the guard marks the batcher closed (new jobs
+//! are refused at once) and stops the lanes: they answer whatever is still queued with
+//! [`BatchError::ShuttingDown`] and exit.
+//!
+//! Deadlines: every job carries the instant its request must be answered by; a lane that
+//! picks up a job past it answers [`BatchError::DeadlineExpired`] without running it, and a job
+//! whose client has gone (its reply channel closed) is skipped too.
 
 pub mod worker;
 
 use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
 use std::time::{Duration, Instant};
 
-use crossbeam_channel::{Sender, TrySendError, bounded};
+use crossbeam_channel::{Receiver, Sender, TrySendError, bounded};
 use tokio::sync::oneshot;
 
 use crate::config::{BatchingConfig, Lanes};
@@ -34,8 +40,14 @@ pub enum BatchError {
         backlog: usize,
     },
     /// The server is stopping.
-    #[error("the server is shutting down")]
+    #[error("the server is shutting down; retry on another instance")]
     ShuttingDown,
+    /// The request's deadline passed while it waited; it never reached the engine.
+    #[error("the request's deadline passed after {waited_ms} ms waiting for an inference lane")]
+    DeadlineExpired {
+        /// Time spent waiting, in milliseconds.
+        waited_ms: u64,
+    },
     /// The engine failed or panicked on this pass.
     #[error("inference failed: {0}")]
     Inference(String),
@@ -47,6 +59,8 @@ pub struct Job {
     pub tensor: Vec<f32>,
     /// When it joined the backlog.
     pub enqueued: Instant,
+    /// Past this instant it is answered `DeadlineExpired` instead of run.
+    pub deadline: Instant,
     /// Where the answer goes.
     pub reply: oneshot::Sender<Result<Scored, BatchError>>,
 }
@@ -98,11 +112,88 @@ pub struct Batcher {
     model: String,
     backlog: usize,
     metrics: ModelMetrics,
+    closed: Arc<AtomicBool>,
+    busy: Arc<BusyClock>,
 }
 
-/// Stops the lanes when dropped (after answering what is still queued).
+/// Stops the lanes when dropped: new jobs are refused, queued ones answered `ShuttingDown`
+/// at once (a lane busy with a long pass would reach them late), and the lanes exit after the
+/// run in progress.
 pub struct BatcherGuard {
+    closed: Arc<AtomicBool>,
+    queued: Receiver<Job>,
     _stop: Sender<()>,
+}
+
+impl Drop for BatcherGuard {
+    fn drop(&mut self) {
+        // Refuse new jobs first, so that none is queued behind the sweep below.
+        self.closed.store(true, Ordering::SeqCst);
+        while let Ok(job) = self.queued.try_recv() {
+            let _ = job.reply.send(Err(BatchError::ShuttingDown));
+        }
+    }
+}
+
+/// When each lane's current pass started, for the stall check of `/healthz`.
+///
+/// One slot per lane: microseconds since `epoch` plus one when the lane started its pass,
+/// 0 while it is idle. Lanes write their own slot; readers only load.
+pub struct BusyClock {
+    epoch: Instant,
+    slots: Vec<AtomicU64>,
+}
+
+impl BusyClock {
+    fn new(lanes: usize) -> BusyClock {
+        BusyClock { epoch: Instant::now(), slots: (0..lanes).map(|_| AtomicU64::new(0)).collect() }
+    }
+
+    /// Mark lane `i` busy from now.
+    pub fn start(&self, i: usize) {
+        let us = self.epoch.elapsed().as_micros() as u64 + 1;
+        self.slots[i].store(us, Ordering::Relaxed);
+    }
+
+    /// Mark lane `i` idle.
+    pub fn stop(&self, i: usize) {
+        self.slots[i].store(0, Ordering::Relaxed);
+    }
+
+    /// How long the longest-running current pass has been running, if any lane is busy.
+    pub fn longest(&self, now: Instant) -> Option<Duration> {
+        let now_us = now.saturating_duration_since(self.epoch).as_micros() as u64 + 1;
+        self.slots
+            .iter()
+            .map(|s| s.load(Ordering::Relaxed))
+            .filter(|&v| v != 0)
+            .map(|v| Duration::from_micros(now_us.saturating_sub(v)))
+            .max()
+    }
+}
+
+/// Faults injected into the lanes, for tests of recovery, deadlines and health: the engine
+/// panics on the job that brings `panic_countdown` from 1 to 0, and the next job to start
+/// first sleeps `stall_once_ms` (then the value is cleared). Not a configuration key.
+#[doc(hidden)]
+#[derive(Clone, Default)]
+pub struct FaultPlan {
+    /// Jobs to run before the injected panic (0: never).
+    pub panic_countdown: Arc<AtomicUsize>,
+    /// Milliseconds the next job stalls the lane (0: none).
+    pub stall_once_ms: Arc<AtomicU64>,
+}
+
+impl FaultPlan {
+    /// Whether the job now starting must panic.
+    pub(crate) fn fire(&self) -> bool {
+        self.panic_countdown.fetch_update(Ordering::SeqCst, Ordering::SeqCst, |n| n.checked_sub(1)) == Ok(1)
+    }
+
+    /// How long the job now starting must stall the lane (once).
+    pub(crate) fn stall(&self) -> Duration {
+        Duration::from_millis(self.stall_once_ms.swap(0, Ordering::SeqCst))
+    }
 }
 
 /// Lanes for `Lanes::Auto`: one single-threaded lane per core. Two lanes x 1 thread used
@@ -120,6 +211,7 @@ impl Batcher {
         model: Arc<Model>,
         cfg: &BatchingConfig,
         metrics: ModelMetrics,
+        fault: FaultPlan,
     ) -> anyhow::Result<(Batcher, BatcherGuard)> {
         let (tx, rx) = bounded::<Job>(cfg.backlog);
         let (stop_tx, stop_rx) = bounded::<()>(0);
@@ -128,22 +220,51 @@ impl Batcher {
             Lanes::Fixed(n) => n,
         };
         let gather = Gather { cap: cfg.batch_cap, window: cfg.gather, stacks: false };
+        let busy = Arc::new(BusyClock::new(lanes));
+        let closed = Arc::new(AtomicBool::new(false));
         for i in 0..lanes {
-            let lane = worker::Lane::new(Arc::clone(&model), rx.clone(), stop_rx.clone(), gather, metrics.clone())?;
+            let ends = worker::LaneEnds {
+                jobs: rx.clone(),
+                stop: stop_rx.clone(),
+                busy: Arc::clone(&busy),
+                index: i,
+                closed: Arc::clone(&closed),
+            };
+            let lane = worker::Lane::new(Arc::clone(&model), ends, gather, metrics.clone(), fault.clone())?;
             std::thread::Builder::new().name(format!("lane-{}-{i}", model.name)).spawn(move || lane.run())?;
         }
         metrics.lanes.set(lanes as i64);
-        let batcher = Batcher { tx, model: model.name.clone(), backlog: cfg.backlog, metrics };
-        Ok((batcher, BatcherGuard { _stop: stop_tx }))
+        let batcher =
+            Batcher { tx, model: model.name.clone(), backlog: cfg.backlog, metrics, closed: Arc::clone(&closed), busy };
+        Ok((batcher, BatcherGuard { closed, queued: rx, _stop: stop_tx }))
     }
 
-    /// Queue one image and await its scores.
+    /// Lanes serving this model.
+    pub fn lanes(&self) -> usize {
+        self.busy.slots.len()
+    }
+
+    /// Requests waiting in the backlog now, and its size.
+    pub fn depth(&self) -> (usize, usize) {
+        (self.tx.len(), self.backlog)
+    }
+
+    /// How long the longest-running current pass of this model's lanes has been running.
+    pub fn longest_pass(&self, now: Instant) -> Option<Duration> {
+        self.busy.longest(now)
+    }
+
+    /// Queue one image and await its scores; past `deadline` it is not run.
     ///
     /// # Errors
-    /// `QueueFull` at once when the backlog is full; `ShuttingDown`; `Inference`.
-    pub async fn infer(&self, tensor: Vec<f32>) -> Result<Scored, BatchError> {
+    /// `QueueFull` at once when the backlog is full; `ShuttingDown`; `DeadlineExpired`;
+    /// `Inference`.
+    pub async fn infer(&self, tensor: Vec<f32>, deadline: Instant) -> Result<Scored, BatchError> {
+        if self.closed.load(Ordering::SeqCst) {
+            return Err(BatchError::ShuttingDown);
+        }
         let (reply, answer) = oneshot::channel();
-        let job = Job { tensor, enqueued: Instant::now(), reply };
+        let job = Job { tensor, enqueued: Instant::now(), deadline, reply };
         match self.tx.try_send(job) {
             Ok(()) => {}
             Err(TrySendError::Full(_)) => {
@@ -181,6 +302,26 @@ mod tests {
         // window measured from the first job's arrival, not from when the lane saw it
         assert_eq!(g.wait_until(t0, 1, at(t0, 2000)), None);
         assert_eq!(g.wait_until(t0, 1, at(t0, 5000)), None);
+    }
+
+    #[test]
+    fn busy_clock_reports_the_longest_current_pass() {
+        let c = BusyClock::new(2);
+        assert_eq!(c.longest(Instant::now()), None);
+        c.start(1);
+        let later = Instant::now() + Duration::from_millis(50);
+        let d = c.longest(later).unwrap();
+        assert!(d >= Duration::from_millis(50) && d < Duration::from_secs(5), "{d:?}");
+        c.stop(1);
+        assert_eq!(c.longest(later), None);
+    }
+
+    #[test]
+    fn fault_plan_fires_once_on_the_counted_job() {
+        let f = FaultPlan::default();
+        assert!(!f.fire(), "0 never fires");
+        f.panic_countdown.store(2, Ordering::SeqCst);
+        assert_eq!([f.fire(), f.fire(), f.fire()], [false, true, false]);
     }
 
     #[test]

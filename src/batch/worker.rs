@@ -2,28 +2,44 @@
 //!
 //! A lane owns one engine state ([`Runner`]) over the model's shared plan. It blocks on the
 //! backlog and the stop channel; a job arriving starts a pass, which takes what is already
-//! queued (and, for stacking engines, waits up to the gathering window) before running. An
+//! queued (and, for stacking engines, waits up to the gathering window) before running. Jobs
+//! past their deadline or whose client has gone are answered or dropped without running. An
 //! engine error or panic answers the affected job with [`BatchError::Inference`], is counted,
-//! and the lane replaces its engine state and goes on serving.
+//! and after a panic the lane replaces its engine state (a restart) and goes on serving.
 
 use std::panic::{AssertUnwindSafe, catch_unwind};
 use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::Instant;
 
 use crossbeam_channel::{Receiver, RecvTimeoutError, TryRecvError, select};
 
-use super::{BatchError, Gather, Job, Scored};
+use super::{BatchError, BusyClock, FaultPlan, Gather, Job, Scored};
 use crate::metrics::ModelMetrics;
 use crate::model::{Model, Runner};
+
+/// What connects a lane to its batcher.
+pub struct LaneEnds {
+    /// The model's backlog.
+    pub jobs: Receiver<Job>,
+    /// Closes when the batcher's guard is dropped.
+    pub stop: Receiver<()>,
+    /// Where the lane marks its passes, for the stall check.
+    pub busy: Arc<BusyClock>,
+    /// The lane's slot in `busy`.
+    pub index: usize,
+    /// Set when the batcher closes: jobs not yet run are answered `ShuttingDown`.
+    pub closed: Arc<AtomicBool>,
+}
 
 /// A lane, ready to run on its own thread.
 pub struct Lane {
     model: Arc<Model>,
     runner: Runner,
-    jobs: Receiver<Job>,
-    stop: Receiver<()>,
+    ends: LaneEnds,
     gather: Gather,
     metrics: ModelMetrics,
+    fault: FaultPlan,
 }
 
 impl Lane {
@@ -33,30 +49,36 @@ impl Lane {
     /// When the engine state cannot be created.
     pub fn new(
         model: Arc<Model>,
-        jobs: Receiver<Job>,
-        stop: Receiver<()>,
+        ends: LaneEnds,
         gather: Gather,
         metrics: ModelMetrics,
+        fault: FaultPlan,
     ) -> anyhow::Result<Lane> {
         let runner = model.runner()?;
-        Ok(Lane { model, runner, jobs, stop, gather, metrics })
+        Ok(Lane { model, runner, ends, gather, metrics, fault })
     }
 
     /// Serve until the stop channel closes, then answer what is left and return.
     pub fn run(mut self) {
         loop {
+            // Stop before taking more work once closed (select! picks among ready arms at random).
+            if self.ends.closed.load(Ordering::SeqCst) {
+                break;
+            }
             let first = select! {
-                recv(self.jobs) -> job => match job {
+                recv(self.ends.jobs) -> job => match job {
                     Ok(job) => job,
                     Err(_) => return, // every Batcher handle is gone
                 },
-                recv(self.stop) -> _ => break,
+                recv(self.ends.stop) -> _ => break,
             };
             let pass = self.form_pass(first);
-            self.metrics.backlog_depth.set(self.jobs.len() as i64);
+            self.metrics.backlog_depth.set(self.ends.jobs.len() as i64);
+            self.ends.busy.start(self.ends.index);
             self.run_pass(pass);
+            self.ends.busy.stop(self.ends.index);
         }
-        while let Ok(job) = self.jobs.try_recv() {
+        while let Ok(job) = self.ends.jobs.try_recv() {
             let _ = job.reply.send(Err(BatchError::ShuttingDown));
         }
     }
@@ -65,7 +87,7 @@ impl Lane {
         let first_at = first.enqueued;
         let mut pass = vec![first];
         while pass.len() < self.gather.cap {
-            match self.jobs.try_recv() {
+            match self.ends.jobs.try_recv() {
                 Ok(job) => {
                     pass.push(job);
                     continue;
@@ -76,7 +98,7 @@ impl Lane {
             let Some(until) = self.gather.wait_until(first_at, pass.len(), Instant::now()) else {
                 break;
             };
-            match self.jobs.recv_deadline(until) {
+            match self.ends.jobs.recv_deadline(until) {
                 Ok(job) => pass.push(job),
                 Err(RecvTimeoutError::Timeout | RecvTimeoutError::Disconnected) => break,
             }
@@ -84,17 +106,40 @@ impl Lane {
         pass
     }
 
+    /// Whether a job may still run now; if not, it is answered (or dropped) here.
+    fn admit(&self, job: Job, now: Instant) -> Option<Job> {
+        // The client hung up while queued: do not spend the engine on it.
+        if job.reply.is_closed() {
+            self.metrics.abandoned.inc();
+            return None;
+        }
+        if self.ends.closed.load(Ordering::SeqCst) {
+            let _ = job.reply.send(Err(BatchError::ShuttingDown));
+            return None;
+        }
+        if now >= job.deadline {
+            let waited_ms = (now - job.enqueued).as_millis() as u64;
+            let _ = job.reply.send(Err(BatchError::DeadlineExpired { waited_ms }));
+            return None;
+        }
+        Some(job)
+    }
+
     fn run_pass(&mut self, pass: Vec<Job>) {
         let started = Instant::now();
+        let pass: Vec<Job> = pass.into_iter().filter_map(|j| self.admit(j, started)).collect();
         let size = pass.len();
+        if size == 0 {
+            return;
+        }
         self.metrics.pass_size.observe(size as f64);
         let mut last = None;
         for (i, job) in pass.into_iter().enumerate() {
-            // The client hung up while queued: do not spend the engine on it.
-            if job.reply.is_closed() {
-                self.metrics.abandoned.inc();
+            // Runs are consecutive: a later job may expire, or its client go, meanwhile.
+            let Some(job) = (if i == 0 { Some(job) } else { self.admit(job, Instant::now()) }) else {
                 continue;
-            }
+            };
+            self.metrics.backlog_wait.observe((Instant::now() - job.enqueued).as_secs_f64());
             let answer = self.run_one(&job, started, size);
             if i + 1 == size {
                 last = Some((job, answer));
@@ -112,7 +157,14 @@ impl Lane {
 
     fn run_one(&mut self, job: &Job, started: Instant, size: usize) -> Result<Scored, BatchError> {
         let t = Instant::now();
-        let result = catch_unwind(AssertUnwindSafe(|| self.runner.run(&job.tensor)));
+        let fault = &self.fault;
+        std::thread::sleep(fault.stall());
+        let result = catch_unwind(AssertUnwindSafe(|| {
+            if fault.fire() {
+                panic!("injected fault (FaultPlan)");
+            }
+            self.runner.run(&job.tensor)
+        }));
         let infer = t.elapsed();
         match result {
             Ok(Ok(scores)) => Ok(Scored { scores, wait: started - job.enqueued, infer, pass_size: size }),
@@ -132,7 +184,10 @@ impl Lane {
 
     fn replace_runner(&mut self) {
         match self.model.runner() {
-            Ok(r) => self.runner = r,
+            Ok(r) => {
+                self.runner = r;
+                self.metrics.lane_restarts.inc();
+            }
             // Keep the old state: it may still work, and a lane with none cannot serve.
             Err(e) => {
                 tracing::error!(model = %self.model.name, cause = %e, "cannot replace engine state")

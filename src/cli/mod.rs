@@ -13,6 +13,14 @@ pub struct Cli {
     /// The subcommand.
     #[command(subcommand)]
     pub command: Command,
+    /// Log format on stderr: text (plain lines, coloured at a terminal) or json (one object
+    /// per line, for log collectors).
+    #[arg(long, global = true, value_name = "FORMAT", default_value = "text", value_parser = ["text", "json"])]
+    pub log_format: String,
+    /// Log level or `tracing` filter (error, warn, info, debug, trace, or e.g.
+    /// "info,lineside=debug"); the LINESIDE_LOG environment variable is used when this is absent.
+    #[arg(long, global = true, value_name = "LEVEL")]
+    pub log_level: Option<String>,
 }
 
 /// Subcommands.

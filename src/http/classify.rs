@@ -1,20 +1,31 @@
-//! `POST /classify/{model}`: the body is one image; the answer is its top classes.
+//! `POST /classify/{model}`: the body is one image, or `multipart/form-data` with one image
+//! per part; the answer is the top classes of each.
 //!
-//! The handler only strings stages together: look the model up, decode and preprocess on
-//! the decode pool, queue on the model's batcher, shape the answer. Each failure maps to an
-//! [`ApiError`] through `From`, so every request gets a precise status.
+//! The handler only strings stages together: check readiness and the model, fix the
+//! request's deadline, read the body (bounded in size and time), decode and preprocess on the
+//! decode pool, queue on the model's batcher, shape the answer. Each failure maps to an
+//! [`ApiError`] through `From`, so every request gets a precise status. The whole request
+//! runs under its deadline: past it the answer is 504 `deadline`, and a job still queued is
+//! never run.
 
 use std::time::{Duration, Instant};
 
 use axum::Json;
-use axum::body::Bytes;
-use axum::extract::rejection::{BytesRejection, QueryRejection};
+use axum::body::{Body, Bytes};
+use axum::extract::rejection::QueryRejection;
 use axum::extract::{Path, Query, State};
+use axum::http::HeaderMap;
+use axum::response::{IntoResponse, Response};
+use http_body_util::{BodyExt as _, LengthLimitError, Limited};
 use serde::{Deserialize, Serialize};
 
 use super::error::{ApiError, ErrorKind};
+use super::multipart;
 use super::state::{AppState, Readiness, ServedModel};
 use crate::model::top_k;
+
+/// The request header that may shorten the server's deadline, in milliseconds.
+pub const DEADLINE_HEADER: &str = "x-deadline-ms";
 
 /// Query parameters.
 #[derive(Debug, Deserialize)]
@@ -44,25 +55,70 @@ pub struct Timing {
     pub wait: f64,
     /// The engine's run for this image.
     pub infer: f64,
-    /// From arrival to answer (includes waiting for a decode thread).
+    /// From the request's arrival to this image's answer.
     pub total: f64,
 }
 
-/// A classification answer.
+/// One image's classification.
+#[derive(Debug, Serialize)]
+pub struct Classified {
+    /// Top-1 class.
+    pub label: String,
+    /// Its probability.
+    pub score: f32,
+    /// Whether `score >= min_score` (always true without a `min_score`).
+    pub confident: bool,
+    /// The top K classes, best first.
+    pub top: Vec<Ranked>,
+    /// Timings.
+    pub timing_ms: Timing,
+}
+
+/// The answer for a single-image request.
 #[derive(Debug, Serialize)]
 pub struct Answer {
     /// Model name.
     pub model: String,
     /// Model version (SHA-256 prefix of the ONNX file).
     pub version: String,
-    /// Top-1 class.
-    pub label: String,
-    /// Its probability.
-    pub score: f32,
-    /// The top K classes, best first.
-    pub top: Vec<Ranked>,
-    /// Timings.
-    pub timing_ms: Timing,
+    /// The classification.
+    #[serde(flatten)]
+    pub result: Classified,
+}
+
+/// One part's entry in a multipart answer: its classification or its error.
+#[derive(Debug, Serialize)]
+pub struct PartResult {
+    /// Position of the part in the request, from 0.
+    pub index: usize,
+    /// The part's file name, else its field name.
+    pub part: String,
+    /// The classification, when the part could be classified.
+    #[serde(flatten, skip_serializing_if = "Option::is_none")]
+    pub result: Option<Classified>,
+    /// Why not, otherwise.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub error: Option<PartError>,
+}
+
+/// A part's error: the same kinds as whole-request errors.
+#[derive(Debug, Serialize)]
+pub struct PartError {
+    /// The error kind.
+    pub kind: &'static str,
+    /// What was wrong.
+    pub message: String,
+}
+
+/// The answer for a multipart request: one entry per part, in order.
+#[derive(Debug, Serialize)]
+pub struct MultiAnswer {
+    /// Model name.
+    pub model: String,
+    /// Model version.
+    pub version: String,
+    /// One entry per part.
+    pub results: Vec<PartResult>,
 }
 
 fn ms(d: Duration) -> f64 {
@@ -87,21 +143,39 @@ pub fn parse_top(raw: Option<&str>, labels: usize) -> Result<usize, ApiError> {
     Ok(k.min(labels))
 }
 
+/// The request's deadline: the server's `deadline_ms`, shortened by `X-Deadline-Ms`.
+pub fn deadline(headers: &HeaderMap, server: Duration, arrived: Instant) -> Result<Instant, ApiError> {
+    let Some(v) = headers.get(DEADLINE_HEADER) else {
+        return Ok(arrived + server);
+    };
+    let ms = v.to_str().ok().and_then(|s| s.trim().parse::<u64>().ok()).filter(|&ms| ms > 0).ok_or_else(|| {
+        ApiError::new(
+            ErrorKind::BadRequest,
+            format!("X-Deadline-Ms = {v:?}: expected a positive number of milliseconds"),
+        )
+    })?;
+    Ok(arrived + server.min(Duration::from_millis(ms)))
+}
+
 /// The handler.
 pub async fn classify(
     State(state): State<AppState>,
     Path(name): Path<String>,
+    headers: HeaderMap,
     params: Result<Query<Params>, QueryRejection>,
-    body: Result<Bytes, BytesRejection>,
-) -> Result<Json<Answer>, ApiError> {
+    body: Body,
+) -> Result<Response, ApiError> {
     let arrived = Instant::now();
     let served = match &*state.readiness.borrow() {
-        Readiness::Ready(s) | Readiness::Draining(s) => s.clone(),
+        Readiness::Ready(s) => s.clone(),
+        Readiness::Draining(_) => {
+            return Err(ApiError::new(ErrorKind::Draining, "the server is shutting down; retry on another instance"));
+        }
         Readiness::Loading(what) => {
             return Err(ApiError::new(ErrorKind::NotReady, format!("not ready yet: {what}")));
         }
         Readiness::Failed(why) => {
-            return Err(ApiError::new(ErrorKind::NotReady, format!("model loading failed: {why}")));
+            return Err(ApiError::new(ErrorKind::NotReady, format!("not ready: {why}")));
         }
     };
     let Some(m) = served.get(&name) else {
@@ -111,53 +185,109 @@ pub async fn classify(
             format!("no model named {name:?}; this server has {known:?}"),
         ));
     };
-    let result = answer(&state, m, params, body, arrived).await;
+    // Counted from here until the answer leaves (or the client goes): the drain waits for it.
+    let _in_flight = state.in_flight.enter();
+    let result = match deadline(&headers, state.limits.deadline, arrived) {
+        Err(e) => Err(e),
+        Ok(until) => tokio::time::timeout_at(until.into(), answer(&state, m, &headers, params, body, arrived, until))
+            .await
+            .unwrap_or_else(|_| {
+                Err(ApiError::new(
+                    ErrorKind::Deadline,
+                    format!("the request's deadline of {} ms passed before it was answered", ms(until - arrived)),
+                ))
+            }),
+    };
     let outcome = match &result {
         Ok(_) => "ok",
         Err(e) => e.kind.as_str(),
     };
     m.metrics.observe_request(outcome, arrived.elapsed().as_secs_f64());
-    result.map(Json)
+    result
+}
+
+/// Read the body within `body_timeout_ms` and `body_limit_bytes`.
+async fn read_body(state: &AppState, body: Body) -> Result<Bytes, ApiError> {
+    let limits = state.limits;
+    let collect = Limited::new(body, limits.body_limit).collect();
+    match tokio::time::timeout(limits.body_timeout, collect).await {
+        Err(_) => Err(ApiError::new(
+            ErrorKind::BodyTimeout,
+            format!("the body did not arrive within server.body_timeout_ms = {}", limits.body_timeout.as_millis()),
+        )),
+        Ok(Ok(collected)) => Ok(collected.to_bytes()),
+        Ok(Err(e)) if e.downcast_ref::<LengthLimitError>().is_some() => Err(ApiError::new(
+            ErrorKind::TooLarge,
+            format!("the body is larger than server.body_limit_bytes = {}", limits.body_limit),
+        )),
+        Ok(Err(e)) => Err(ApiError::new(ErrorKind::BadRequest, format!("cannot read the body: {e}"))),
+    }
 }
 
 async fn answer(
     state: &AppState,
     m: &ServedModel,
+    headers: &HeaderMap,
     params: Result<Query<Params>, QueryRejection>,
-    body: Result<Bytes, BytesRejection>,
+    body: Body,
     arrived: Instant,
-) -> Result<Answer, ApiError> {
+    until: Instant,
+) -> Result<Response, ApiError> {
     let Query(params) = params.map_err(|e| ApiError::new(ErrorKind::BadRequest, e.body_text()))?;
     let top = parse_top(params.top.as_deref(), m.model.labels.len())?;
-    let body = body.map_err(|e| {
-        if e.status() == axum::http::StatusCode::PAYLOAD_TOO_LARGE {
-            ApiError::new(
-                ErrorKind::TooLarge,
-                format!("the body is larger than server.body_limit_bytes = {}", state.body_limit),
-            )
-        } else {
-            ApiError::new(ErrorKind::BadRequest, format!("cannot read the body: {}", e.body_text()))
-        }
-    })?;
+    let content_type = headers.get(axum::http::header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
+    let multipart = multipart::boundary(content_type);
+    let body = read_body(state, body).await?;
+    let Some(boundary) = multipart else {
+        let result = classify_one(state, m, body, top, arrived, until).await?;
+        let answer = Answer { model: m.model.name.clone(), version: m.model.version.clone(), result };
+        return Ok(Json(answer).into_response());
+    };
+    let boundary = boundary.map_err(|e| ApiError::new(ErrorKind::BadRequest, e))?;
+    let (_, backlog) = m.batcher.depth();
+    let parts = multipart::parse(&body, &boundary, backlog).map_err(|e| ApiError::new(ErrorKind::BadRequest, e))?;
+    // Every part goes through the pool and joins the backlog at once; answers keep part order.
+    let jobs = parts.into_iter().enumerate().map(|(index, part)| async move {
+        let outcome = classify_one(state, m, part.data, top, arrived, until).await;
+        let (result, error) = match outcome {
+            Ok(c) => (Some(c), None),
+            Err(e) => (None, Some(PartError { kind: e.kind.as_str(), message: e.message })),
+        };
+        PartResult { index, part: part.name, result, error }
+    });
+    let results = futures_util::future::join_all(jobs).await;
+    Ok(Json(MultiAnswer { model: m.model.name.clone(), version: m.model.version.clone(), results }).into_response())
+}
 
+async fn classify_one(
+    state: &AppState,
+    m: &ServedModel,
+    image: Bytes,
+    top: usize,
+    arrived: Instant,
+    until: Instant,
+) -> Result<Classified, ApiError> {
     let pipeline = m.pipeline.clone();
-    let prepared = state.pool.run(move || pipeline.run(&body)).await??;
+    let prepared = state.pool.run(move || pipeline.run(&image)).await??;
     m.metrics.preprocess_duration.observe((prepared.decode + prepared.preprocess).as_secs_f64());
     let (decode, preprocess) = (prepared.decode, prepared.preprocess);
-    let scored = m.batcher.infer(prepared.tensor).await?;
+    let scored = m.batcher.infer(prepared.tensor, until).await?;
 
     let labels = &m.model.labels;
     let order = top_k(&scored.scores, top);
     // top >= 1 and labels >= 1 (checked at load), so the order has a first entry.
     let best = order[0];
-    let ranked: Vec<Ranked> =
-        order.into_iter().map(|i| Ranked { label: labels[i].clone(), score: scored.scores[i] }).collect();
-    Ok(Answer {
-        model: m.model.name.clone(),
-        version: m.model.version.clone(),
+    let score = scored.scores[best];
+    let confident = m.min_score.is_none_or(|min| score >= min);
+    m.metrics.observe_prediction(&labels[best]);
+    if !confident {
+        m.metrics.low_confidence.inc();
+    }
+    Ok(Classified {
         label: labels[best].clone(),
-        score: scored.scores[best],
-        top: ranked,
+        score,
+        confident,
+        top: order.into_iter().map(|i| Ranked { label: labels[i].clone(), score: scored.scores[i] }).collect(),
         timing_ms: Timing {
             decode: ms(decode),
             preprocess: ms(preprocess),
@@ -170,7 +300,7 @@ async fn answer(
 
 #[cfg(test)]
 mod tests {
-    use super::parse_top;
+    use super::*;
 
     #[test]
     fn top_defaults_clamps_and_refuses_zero() {
@@ -182,6 +312,22 @@ mod tests {
         for bad in ["0", "-1", "two", ""] {
             let e = parse_top(Some(bad), 5).unwrap_err();
             assert_eq!(e.kind.as_str(), "bad_request", "{bad}");
+        }
+    }
+
+    #[test]
+    fn deadline_header_may_only_shorten() {
+        let t0 = Instant::now();
+        let server = Duration::from_millis(2000);
+        let mut h = HeaderMap::new();
+        assert_eq!(deadline(&h, server, t0).unwrap(), t0 + server);
+        h.insert(DEADLINE_HEADER, "150".parse().unwrap());
+        assert_eq!(deadline(&h, server, t0).unwrap(), t0 + Duration::from_millis(150));
+        h.insert(DEADLINE_HEADER, "60000".parse().unwrap());
+        assert_eq!(deadline(&h, server, t0).unwrap(), t0 + server);
+        for bad in ["0", "-5", "soon", ""] {
+            h.insert(DEADLINE_HEADER, bad.parse().unwrap());
+            assert_eq!(deadline(&h, server, t0).unwrap_err().kind, ErrorKind::BadRequest, "{bad}");
         }
     }
 }

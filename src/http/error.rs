@@ -33,12 +33,22 @@ pub enum ErrorKind {
     Overloaded,
     /// Malformed request parameters.
     BadRequest,
-    /// Models still loading, or the server is stopping.
+    /// Models still loading, or loading failed.
     NotReady,
+    /// The server is shutting down: retry on another instance.
+    Draining,
+    /// The request's deadline passed before it could be answered.
+    Deadline,
+    /// The client took longer than `server.body_timeout_ms` to send its body.
+    BodyTimeout,
+    /// The engine failed or panicked on this request's pass (the lane was restarted).
+    InferenceFailed,
     /// No such route.
     NotFound,
     /// The route exists but not with this method.
     MethodNotAllowed,
+    /// A lane has been stuck in one pass longer than `server.stall_ms` (`/healthz`).
+    Stalled,
     /// A fault inside lineside (details in the server log).
     Internal,
 }
@@ -52,7 +62,12 @@ impl ErrorKind {
             ErrorKind::TooLarge => StatusCode::PAYLOAD_TOO_LARGE,
             ErrorKind::UnsupportedFormat => StatusCode::UNSUPPORTED_MEDIA_TYPE,
             ErrorKind::TooSmall | ErrorKind::RoiOutside => StatusCode::UNPROCESSABLE_ENTITY,
-            ErrorKind::Overloaded | ErrorKind::NotReady => StatusCode::SERVICE_UNAVAILABLE,
+            ErrorKind::Overloaded | ErrorKind::NotReady | ErrorKind::Draining | ErrorKind::Stalled => {
+                StatusCode::SERVICE_UNAVAILABLE
+            }
+            ErrorKind::Deadline => StatusCode::GATEWAY_TIMEOUT,
+            ErrorKind::BodyTimeout => StatusCode::REQUEST_TIMEOUT,
+            ErrorKind::InferenceFailed => StatusCode::INTERNAL_SERVER_ERROR,
             ErrorKind::MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
             ErrorKind::Internal => StatusCode::INTERNAL_SERVER_ERROR,
         }
@@ -70,8 +85,13 @@ impl ErrorKind {
             ErrorKind::Overloaded => "overloaded",
             ErrorKind::BadRequest => "bad_request",
             ErrorKind::NotReady => "not_ready",
+            ErrorKind::Draining => "draining",
+            ErrorKind::Deadline => "deadline",
+            ErrorKind::BodyTimeout => "body_timeout",
+            ErrorKind::InferenceFailed => "inference_failed",
             ErrorKind::NotFound => "not_found",
             ErrorKind::MethodNotAllowed => "method_not_allowed",
+            ErrorKind::Stalled => "stalled",
             ErrorKind::Internal => "internal",
         }
     }
@@ -88,13 +108,21 @@ pub struct ApiError {
     pub kind: ErrorKind,
     /// Message shown to the client (generic for internal faults).
     pub message: String,
+    /// Structured details for the client (e.g. which models are not ready).
+    pub details: Option<serde_json::Value>,
     detail: Option<String>,
 }
 
 impl ApiError {
     /// A client-facing error with its message.
     pub fn new(kind: ErrorKind, message: impl Into<String>) -> ApiError {
-        ApiError { kind, message: message.into(), detail: None }
+        ApiError { kind, message: message.into(), details: None, detail: None }
+    }
+
+    /// The same error with structured details in its body (`error.details`).
+    pub fn with_details(mut self, details: serde_json::Value) -> ApiError {
+        self.details = Some(details);
+        self
     }
 
     /// An internal fault: the client sees a generic message, the log sees `detail`.
@@ -102,6 +130,7 @@ impl ApiError {
         ApiError {
             kind: ErrorKind::Internal,
             message: "internal error in lineside; the server log has the details".into(),
+            details: None,
             detail: Some(detail.into()),
         }
     }
@@ -116,13 +145,16 @@ struct Body<'a> {
 struct Inner<'a> {
     kind: &'a str,
     message: &'a str,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    details: Option<&'a serde_json::Value>,
 }
 
 impl IntoResponse for ApiError {
     fn into_response(self) -> Response {
-        let body = Body { error: Inner { kind: self.kind.as_str(), message: &self.message } };
+        let body =
+            Body { error: Inner { kind: self.kind.as_str(), message: &self.message, details: self.details.as_ref() } };
         let mut resp = (self.kind.status(), Json(body)).into_response();
-        if matches!(self.kind, ErrorKind::Overloaded | ErrorKind::NotReady) {
+        if matches!(self.kind, ErrorKind::Overloaded | ErrorKind::NotReady | ErrorKind::Draining) {
             resp.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from_static("1"));
         }
         if let Some(d) = self.detail {
@@ -150,8 +182,16 @@ impl From<BatchError> for ApiError {
     fn from(e: BatchError) -> Self {
         match e {
             BatchError::QueueFull { .. } => ApiError::new(ErrorKind::Overloaded, e.to_string()),
-            BatchError::ShuttingDown => ApiError::new(ErrorKind::NotReady, e.to_string()),
-            BatchError::Inference(_) => ApiError::internal(e.to_string()),
+            BatchError::ShuttingDown => ApiError::new(ErrorKind::Draining, e.to_string()),
+            BatchError::DeadlineExpired { .. } => ApiError::new(ErrorKind::Deadline, e.to_string()),
+            BatchError::Inference(_) => ApiError {
+                kind: ErrorKind::InferenceFailed,
+                message: "inference failed on this request's pass; the lane was restarted and the server \
+                          log has the details; retrying is safe"
+                    .into(),
+                details: None,
+                detail: Some(e.to_string()),
+            },
         }
     }
 }
@@ -160,7 +200,7 @@ impl From<PoolError> for ApiError {
     fn from(e: PoolError) -> Self {
         match e {
             PoolError::Full(_) => ApiError::new(ErrorKind::Overloaded, format!("{e}; retry shortly")),
-            PoolError::Closed => ApiError::new(ErrorKind::NotReady, e.to_string()),
+            PoolError::Closed => ApiError::new(ErrorKind::Draining, e.to_string()),
             PoolError::Panicked => ApiError::internal(e.to_string()),
         }
     }
@@ -183,8 +223,13 @@ mod tests {
             (ErrorKind::Overloaded, 503, "overloaded"),
             (ErrorKind::BadRequest, 400, "bad_request"),
             (ErrorKind::NotReady, 503, "not_ready"),
+            (ErrorKind::Draining, 503, "draining"),
+            (ErrorKind::Deadline, 504, "deadline"),
+            (ErrorKind::BodyTimeout, 408, "body_timeout"),
+            (ErrorKind::InferenceFailed, 500, "inference_failed"),
             (ErrorKind::NotFound, 404, "not_found"),
             (ErrorKind::MethodNotAllowed, 405, "method_not_allowed"),
+            (ErrorKind::Stalled, 503, "stalled"),
             (ErrorKind::Internal, 500, "internal"),
         ];
         for (kind, status, name) in table {

@@ -1,13 +1,15 @@
 //! HTTP: the router (built without a socket, so tests call it directly), its handlers, and
 //! the error type they share.
 //!
-//! Routes sit here next to their handlers' modules. Two layers wrap everything: the body
-//! limit (axum's own, which answers 413 through our error shape) and the middleware that
-//! counts responses and logs internal faults.
+//! Routes sit here next to their handlers' modules. Layers wrap everything: the body limit
+//! (axum's own, which answers 413 through our error shape), the request id and access log,
+//! and the middleware that counts responses and logs internal faults.
 
 pub mod classify;
 pub mod error;
 pub mod health;
+pub mod models;
+pub mod multipart;
 pub mod state;
 
 use axum::Router;
@@ -27,9 +29,12 @@ pub fn router(state: AppState) -> Router {
         .route("/healthz", get(health::healthz))
         .route("/readyz", get(health::readyz))
         .route("/metrics", get(health::metrics))
+        .route("/models", get(models::list))
+        .route("/models/{model}", get(models::one))
         .fallback(not_found)
         .method_not_allowed_fallback(method_not_allowed)
-        .layer(DefaultBodyLimit::max(state.body_limit))
+        .layer(DefaultBodyLimit::max(state.limits.body_limit))
+        .layer(middleware::from_fn_with_state(state.request_ids.clone(), request_id))
         .with_state(state)
         .layer(middleware::from_fn(log_internal))
         .layer(middleware::from_fn_with_state(metrics, crate::metrics::track_http))
@@ -44,6 +49,45 @@ async fn not_found(req: Request) -> ApiError {
 
 async fn method_not_allowed(req: Request) -> ApiError {
     ApiError::new(ErrorKind::MethodNotAllowed, format!("{} is not allowed on {}", req.method(), req.uri().path()))
+}
+
+/// The request id header, taken from the client or generated, and echoed in the answer.
+pub const REQUEST_ID: &str = "x-request-id";
+
+/// A request's id, for handlers that want it in their logs.
+#[derive(Debug, Clone)]
+pub struct RequestId(pub String);
+
+/// Give every request an id (the client's `X-Request-Id` when it is 1 to 128 visible ASCII
+/// characters, else a generated one), echo it, and write one access log line per request
+/// (probes and metrics scrapes at debug level, so that they do not drown the log).
+async fn request_id(
+    axum::extract::State(ids): axum::extract::State<std::sync::Arc<state::RequestIds>>,
+    mut req: Request,
+    next: Next,
+) -> Response {
+    let started = std::time::Instant::now();
+    let given = req
+        .headers()
+        .get(REQUEST_ID)
+        .and_then(|v| v.to_str().ok())
+        .filter(|v| (1..=128).contains(&v.len()) && v.bytes().all(|b| b.is_ascii_graphic()))
+        .map(str::to_owned);
+    let id = given.unwrap_or_else(|| ids.next());
+    let (method, path) = (req.method().clone(), req.uri().path().to_owned());
+    req.extensions_mut().insert(RequestId(id.clone()));
+    let mut resp = next.run(req).await;
+    if let Ok(v) = axum::http::HeaderValue::from_str(&id) {
+        resp.headers_mut().insert(REQUEST_ID, v);
+    }
+    let status = resp.status().as_u16();
+    let ms = (started.elapsed().as_secs_f64() * 1e6).round() / 1e3;
+    if matches!(path.as_str(), "/healthz" | "/readyz" | "/metrics") {
+        tracing::debug!(request_id = %id, %method, %path, status, ms, "request");
+    } else {
+        tracing::info!(request_id = %id, %method, %path, status, ms, "request");
+    }
+    resp
 }
 
 /// Log the details of internal faults, which the client does not see.

@@ -6,6 +6,8 @@
 
 use std::collections::BTreeMap;
 use std::sync::Arc;
+use std::sync::atomic::{AtomicU64, AtomicUsize, Ordering};
+use std::time::Duration;
 
 use tokio::sync::watch;
 
@@ -25,6 +27,14 @@ pub struct ServedModel {
     pub batcher: Batcher,
     /// Its metric handles.
     pub metrics: ModelMetrics,
+    /// `[[models]] min_score`: answers below it are marked not confident.
+    pub min_score: Option<f32>,
+    /// `[models.batching]` as configured.
+    pub batching: crate::config::BatchingConfig,
+    /// Lanes running (after `lanes = "auto"` is resolved).
+    pub lanes: usize,
+    /// The self-test's result at load, when the model has one.
+    pub selftest: Option<crate::selftest::Outcome>,
 }
 
 /// Every served model, by name.
@@ -53,6 +63,79 @@ pub struct AppState {
     pub metrics: Metrics,
     /// Decode and preprocess threads.
     pub pool: CpuPool,
-    /// `[server] body_limit_bytes`.
+    /// Limits and timeouts from `[server]`.
+    pub limits: RequestLimits,
+    /// Classify requests accepted and not yet answered (the drain waits for 0).
+    pub in_flight: Arc<InFlight>,
+    /// Source of generated request ids.
+    pub request_ids: Arc<RequestIds>,
+}
+
+/// The `[server]` settings a request is held to.
+#[derive(Debug, Clone, Copy)]
+pub struct RequestLimits {
+    /// `body_limit_bytes`.
     pub body_limit: usize,
+    /// `body_timeout_ms`.
+    pub body_timeout: Duration,
+    /// `deadline_ms`: the longest a classify request may take.
+    pub deadline: Duration,
+    /// `stall_ms`: a pass running longer makes `/healthz` fail.
+    pub stall: Duration,
+    /// `ready_backlog`: the backlog share at which `/readyz` turns 503.
+    pub ready_backlog: f64,
+}
+
+/// A count of classify requests in progress; [`InFlight::enter`] returns a guard that
+/// decrements it when the request's future ends, however it ends.
+#[derive(Debug, Default)]
+pub struct InFlight(AtomicUsize);
+
+/// Decrements the in-flight count when dropped.
+pub struct InFlightGuard(Arc<InFlight>);
+
+impl InFlight {
+    /// Count one more request until the guard drops.
+    pub fn enter(self: &Arc<Self>) -> InFlightGuard {
+        self.0.fetch_add(1, Ordering::SeqCst);
+        InFlightGuard(Arc::clone(self))
+    }
+
+    /// Requests in progress now.
+    pub fn count(&self) -> usize {
+        self.0.load(Ordering::SeqCst)
+    }
+}
+
+impl Drop for InFlightGuard {
+    fn drop(&mut self) {
+        self.0.0.fetch_sub(1, Ordering::SeqCst);
+    }
+}
+
+/// Request ids for requests that bring none: the process's start time and a counter, in hex
+/// (unique within a process, and across restarts of it).
+#[derive(Debug)]
+pub struct RequestIds {
+    prefix: u64,
+    next: AtomicU64,
+}
+
+impl RequestIds {
+    /// A generator whose ids start with the current time.
+    pub fn new() -> RequestIds {
+        let now = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap_or_default();
+        RequestIds { prefix: now.as_micros() as u64 & 0xffff_ffff_ffff, next: AtomicU64::new(1) }
+    }
+
+    /// The next id.
+    pub fn next(&self) -> String {
+        format!("{:012x}-{:06x}", self.prefix, self.next.fetch_add(1, Ordering::Relaxed))
+    }
+}
+
+impl Default for RequestIds {
+    fn default() -> Self {
+        RequestIds::new()
+    }
 }

@@ -210,6 +210,11 @@ impl Pipeline {
         Pipeline { cfg, width: contract.width, height: contract.height, layout: contract.layout, limits }
     }
 
+    /// The preprocessing settings in force (after a uint8 model's override).
+    pub fn config(&self) -> &PreprocessConfig {
+        &self.cfg
+    }
+
     /// Decode and preprocess one request body.
     ///
     /// # Errors

@@ -10,7 +10,7 @@ use lineside::model::load;
 use lineside::model::report::Report;
 use serde_json::Value;
 
-use crate::util::root;
+use crate::util::{root, temp_dir};
 
 fn fixture(case: &str) -> PathBuf {
     root().join("tests/fixtures").join(case).join("model.onnx")
@@ -209,9 +209,7 @@ fn check_cli_json_report_and_exit_codes() {
 
 /// A copy of two washer samples in a fresh folder, and a config whose self-test reads it.
 fn selftest_folder(name: &str) -> (PathBuf, String) {
-    let dir = std::env::temp_dir().join(format!("lineside-it-selftest-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&dir);
-    std::fs::create_dir_all(&dir).unwrap();
+    let dir = temp_dir(&format!("selftest-{name}"));
     for f in ["good-01.png", "burr-01.png"] {
         std::fs::copy(root().join("models/washers/samples").join(f), dir.join(f)).unwrap();
     }

@@ -3,17 +3,10 @@
 use std::process::{Command, Stdio};
 use std::time::Duration;
 
-use crate::util::{root, samples};
+use crate::util::{root, samples, temp_dir};
 
 fn lineside() -> Command {
     Command::new(env!("CARGO_BIN_EXE_lineside"))
-}
-
-fn temp_dir(name: &str) -> std::path::PathBuf {
-    let d = std::env::temp_dir().join(format!("lineside-it-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
 }
 
 #[test]

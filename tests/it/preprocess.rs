@@ -12,19 +12,11 @@ use std::process::Command;
 
 use serde_json::Value;
 
-use crate::util::{TestServer, config_from_text, python, root, samples, without_selftest};
-
-/// A fresh scratch folder for one test.
-fn scratch(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("lineside-{name}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
-}
+use crate::util::{TestServer, config_from_text, python, root, samples, temp_dir, without_selftest};
 
 #[test]
 fn preprocess_matches_pillow_for_every_format_mode_and_filter() {
-    let work = scratch("preprocess-ref");
+    let work = temp_dir("preprocess-ref");
     let out = Command::new(python())
         .arg(root().join("tools/preprocess_reference.py"))
         .args(["--lineside", env!("CARGO_BIN_EXE_lineside"), "--work"])
@@ -146,7 +138,7 @@ im.save(f"{out}/{stem}.bmp")
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn served_scores_match_pillow_and_onnxruntime_on_the_original_files() {
-    let dir = scratch("e2e");
+    let dir = temp_dir("e2e");
     let files = derived_frames(&dir);
     let model = root().join("models/washers/classifier.onnx");
     let base = std::fs::read_to_string(root().join("config/lineside.toml")).unwrap();

@@ -1,7 +1,9 @@
 //! The HTTP contract of `lineside serve`, against the real server on a loopback port.
 
+use std::sync::atomic::Ordering;
 use std::time::{Duration, Instant};
 
+use lineside::batch::FaultPlan;
 use serde_json::Value;
 use sha2::{Digest, Sha256};
 use tokio::io::AsyncWriteExt;
@@ -259,4 +261,299 @@ async fn shutdown_answers_requests_in_flight_and_is_not_held_by_a_half_sent_requ
     server.join().await.unwrap();
     // header_timeout 0.5 s closes the stalled connection well before drain_ms = 3 s
     assert!(t.elapsed() < Duration::from_millis(2500), "shutdown took {:?}", t.elapsed());
+}
+
+/// Washer config edits for a server with one lane, so that one stalled job holds the rest.
+const ONE_LANE: (&str, &str) = ("lanes = \"auto\"", "lanes = 1");
+
+/// A fault plan whose next job stalls its lane for `ms`.
+fn stall_once(ms: u64) -> FaultPlan {
+    let f = FaultPlan::default();
+    f.stall_once_ms.store(ms, Ordering::SeqCst);
+    f
+}
+
+/// Passes run so far (`lineside_pass_size_requests_count`).
+async fn passes(c: &reqwest::Client, server: &TestServer) -> f64 {
+    let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
+    metric(&m, r#"lineside_pass_size_requests_count{model="washers"}"#)
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_request_past_its_deadline_gets_504_and_never_reaches_the_engine() {
+    let fault = stall_once(600);
+    let server = TestServer::start_with_fault(washer_config_with(&[ONE_LANE]), fault.clone()).await;
+    let c = client();
+    let s = &samples()[0];
+    let before = passes(&c, &server).await;
+    // The first request stalls the only lane for 600 ms (it still gets its answer) ...
+    let first = tokio::spawn(c.post(server.url("/classify/washers")).body(s.bytes.clone()).send());
+    tokio::time::sleep(Duration::from_millis(100)).await;
+    // ... so one asking for 150 ms waits in the backlog past its deadline (the lane, when it
+    // gets to it, answers without running it; the handler has answered at the deadline).
+    let t = Instant::now();
+    let r = c.post(server.url("/classify/washers")).header("X-Deadline-Ms", "150").body(s.bytes.clone()).send();
+    let msg = expect_error(r.await.unwrap(), 504, "deadline").await;
+    assert!(msg.contains("150"), "{msg}");
+    // Answered at its deadline, not when the lane got to it (generous bound for a slow CI box).
+    assert!(t.elapsed() < Duration::from_millis(550), "504 after {:?}", t.elapsed());
+    assert_eq!(first.await.unwrap().unwrap().status(), 200);
+    // The stalled pass is the only one that ran: the expired job was never run.
+    tokio::time::sleep(Duration::from_millis(100)).await;
+    let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
+    assert_eq!(metric(&m, r#"lineside_pass_size_requests_count{model="washers"}"#), before + 1.0, "passes");
+    assert_eq!(metric(&m, r#"lineside_pass_size_requests_sum{model="washers"}"#), before + 1.0, "jobs run");
+    assert_eq!(washer_requests(&m, "deadline"), 1.0);
+    // A deadline header may only shorten: a huge one is accepted and the server's applies.
+    let r = c.post(server.url("/classify/washers")).header("X-Deadline-Ms", "86400000").body(s.bytes.clone());
+    assert_eq!(r.send().await.unwrap().status(), 200);
+    expect_error(
+        c.post(server.url("/classify/washers"))
+            .header("X-Deadline-Ms", "soon")
+            .body(s.bytes.clone())
+            .send()
+            .await
+            .unwrap(),
+        400,
+        "bad_request",
+    )
+    .await;
+    server.stop().await.unwrap();
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_panic_in_a_lane_answers_500_inference_failed_and_the_lane_serves_on() {
+    let fault = FaultPlan::default();
+    fault.panic_countdown.store(2, Ordering::SeqCst);
+    let server = TestServer::start_with_fault(washer_config_with(&[ONE_LANE]), fault).await;
+    let c = client();
+    let s = &samples()[0];
+    let mut statuses = Vec::new();
+    for _ in 0..5 {
+        let r = c.post(server.url("/classify/washers")).body(s.bytes.clone()).send().await.unwrap();
+        statuses.push(r.status().as_u16());
+        if r.status() == 500 {
+            let msg = expect_error(r, 500, "inference_failed").await;
+            assert!(msg.contains("restarted") && !msg.contains("injected"), "generic message: {msg}");
+        }
+    }
+    assert_eq!(statuses, [200, 500, 200, 200, 200]);
+    let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
+    assert_eq!(metric(&m, r#"lineside_lane_restarts_total{model="washers"}"#), 1.0);
+    assert_eq!(metric(&m, r#"lineside_lane_failures_total{model="washers"}"#), 1.0);
+    assert_eq!(washer_requests(&m, "inference_failed"), 1.0);
+    let live = c.get(server.url("/healthz")).send().await.unwrap();
+    assert_eq!(live.status(), 200);
+    server.stop().await.unwrap();
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn multipart_answers_every_part_in_order_good_and_bad() {
+    let server = TestServer::start(washer_config()).await;
+    let c = client();
+    let all = samples();
+    let (good, burr) =
+        (all.iter().find(|s| s.label == "good").unwrap(), all.iter().find(|s| s.label == "burr").unwrap());
+    let part = |bytes: Vec<u8>| reqwest::multipart::Part::bytes(bytes);
+    let form = reqwest::multipart::Form::new()
+        .part("cam1", part(good.bytes.clone()).file_name("station1.png"))
+        .part("cam2", part(b"not an image".to_vec()))
+        .part("cam3", part(burr.bytes.clone()).file_name("station3.png"))
+        .part("cam4", part(good.bytes[..good.bytes.len() / 2].to_vec()).file_name("cut.png"));
+    let r = c.post(server.url("/classify/washers?top=2")).multipart(form).send().await.unwrap();
+    assert_eq!(r.status(), 200);
+    let v: Value = r.json().await.unwrap();
+    assert_eq!(v["model"], "washers");
+    let results = v["results"].as_array().unwrap();
+    assert_eq!(results.len(), 4, "{v}");
+    for (i, (part, label, kind)) in [
+        ("station1.png", Some("good"), None),
+        ("cam2", None, Some("bad_image")),
+        ("station3.png", Some("burr"), None),
+        ("cut.png", None, Some("bad_image")),
+    ]
+    .into_iter()
+    .enumerate()
+    {
+        let e = &results[i];
+        assert_eq!((e["index"].as_u64(), e["part"].as_str()), (Some(i as u64), Some(part)), "{e}");
+        match (label, kind) {
+            (Some(l), _) => {
+                assert_eq!(e["label"], l, "{e}");
+                assert_eq!(e["top"].as_array().unwrap().len(), 2, "{e}");
+                assert_eq!(e["confident"], true, "no min_score configured: {e}");
+                assert!(e.get("error").is_none(), "{e}");
+            }
+            (None, Some(k)) => {
+                assert_eq!(e["error"]["kind"], k, "{e}");
+                assert!(e.get("label").is_none(), "{e}");
+            }
+            _ => unreachable!(),
+        }
+    }
+    // A multipart body that is not well-formed is the request's fault: 400.
+    let r = c
+        .post(server.url("/classify/washers"))
+        .header("content-type", "multipart/form-data; boundary=zz")
+        .body("--zz\r\nno end")
+        .send()
+        .await
+        .unwrap();
+    expect_error(r, 400, "bad_request").await;
+    server.stop().await.unwrap();
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn shutdown_drains_answers_in_flight_and_refuses_new_requests_with_draining() {
+    let fault = stall_once(700);
+    let mut server = TestServer::start_with_fault(washer_config_with(&[ONE_LANE]), fault).await;
+    let c = client();
+    let s = samples();
+    // Four requests in flight: the first stalls the lane, the others wait in the backlog.
+    let mut in_flight = Vec::new();
+    for x in s.iter().take(4) {
+        in_flight.push(tokio::spawn(c.post(server.url("/classify/washers")).body(x.bytes.clone()).send()));
+    }
+    tokio::time::sleep(Duration::from_millis(150)).await;
+    server.trigger_shutdown();
+    tokio::time::sleep(Duration::from_millis(100)).await;
+    // While draining: the listener still answers, new work is refused, readiness is off.
+    let msg = expect_error(
+        c.post(server.url("/classify/washers")).body(s[0].bytes.clone()).send().await.unwrap(),
+        503,
+        "draining",
+    )
+    .await;
+    assert!(msg.contains("shutting down"), "{msg}");
+    let r = c.get(server.url("/readyz")).send().await.unwrap();
+    assert!(r.headers().contains_key("retry-after"));
+    expect_error(r, 503, "draining").await;
+    assert_eq!(c.get(server.url("/healthz")).send().await.unwrap().status(), 200, "still alive while draining");
+    for (i, h) in in_flight.into_iter().enumerate() {
+        assert_eq!(h.await.unwrap().unwrap().status(), 200, "request {i} accepted before the signal is answered");
+    }
+    server.join().await.unwrap();
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn after_drain_ms_whatever_still_waits_is_answered_draining() {
+    let fault = stall_once(1500);
+    let mut server =
+        TestServer::start_with_fault(washer_config_with(&[ONE_LANE, ("drain_ms = 10000", "drain_ms = 300")]), fault)
+            .await;
+    let c = client();
+    let s = samples();
+    let stalled = tokio::spawn(c.post(server.url("/classify/washers")).body(s[0].bytes.clone()).send());
+    tokio::time::sleep(Duration::from_millis(100)).await;
+    let waiting = tokio::spawn(c.post(server.url("/classify/washers")).body(s[1].bytes.clone()).send());
+    tokio::time::sleep(Duration::from_millis(100)).await;
+    server.trigger_shutdown();
+    // The queued request is answered when drain_ms passes, long before the lane frees up.
+    let r = waiting.await.unwrap().unwrap();
+    expect_error(r, 503, "draining").await;
+    // The pass already running completes and is answered.
+    assert_eq!(stalled.await.unwrap().unwrap().status(), 200);
+    server.join().await.unwrap();
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_client_that_trickles_its_body_gets_408_body_timeout() {
+    let server =
+        TestServer::start(washer_config_with(&[("drain_ms = 10000", "drain_ms = 10000\nbody_timeout_ms = 300")])).await;
+    let mut slow = tokio::net::TcpStream::connect(server.addr).await.unwrap();
+    slow.write_all(b"POST /classify/washers HTTP/1.1\r\nHost: x\r\nContent-Length: 5000\r\n\r\nabc").await.unwrap();
+    let t = Instant::now();
+    let mut answer = vec![0u8; 4096];
+    let n = tokio::time::timeout(Duration::from_secs(5), tokio::io::AsyncReadExt::read(&mut slow, &mut answer))
+        .await
+        .expect("answered within 5 s")
+        .unwrap();
+    let answer = String::from_utf8_lossy(&answer[..n]);
+    assert!(answer.starts_with("HTTP/1.1 408"), "{answer}");
+    assert!(answer.contains("body_timeout") && answer.contains("body_timeout_ms = 300"), "{answer}");
+    assert!(t.elapsed() >= Duration::from_millis(250), "not before the timeout: {:?}", t.elapsed());
+    server.stop().await.unwrap();
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn healthz_fails_while_a_lane_is_stuck_and_readyz_while_the_backlog_is_nearly_full() {
+    let fault = stall_once(1200);
+    let config = washer_config_with(&[
+        ONE_LANE,
+        ("backlog = 64", "backlog = 4"),
+        ("drain_ms = 10000", "drain_ms = 10000\nstall_ms = 300\nready_backlog = 0.5"),
+    ]);
+    let server = TestServer::start_with_fault(config, fault).await;
+    let c = client();
+    let s = samples();
+    let mut reqs = Vec::new();
+    for x in s.iter().take(4) {
+        reqs.push(tokio::spawn(c.post(server.url("/classify/washers")).body(x.bytes.clone()).send()));
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+    tokio::time::sleep(Duration::from_millis(150)).await;
+    // Three wait behind the stalled one: 3 of 4 >= 0.5.
+    let r = c.get(server.url("/readyz")).send().await.unwrap();
+    let body: Value = r.json().await.unwrap();
+    assert_eq!(body["error"]["kind"], "not_ready", "{body}");
+    assert_eq!(body["error"]["details"]["models"][0]["name"], "washers", "{body}");
+    assert_eq!(body["error"]["details"]["models"][0]["ready"], false, "{body}");
+    // Past stall_ms the lane counts as stuck.
+    tokio::time::sleep(Duration::from_millis(300)).await;
+    let r = c.get(server.url("/healthz")).send().await.unwrap();
+    let body: Value = r.json().await.unwrap();
+    assert_eq!(body["error"]["kind"], "stalled", "{body}");
+    assert_eq!(body["error"]["details"]["stalled"][0]["model"], "washers", "{body}");
+    for h in reqs {
+        assert_eq!(h.await.unwrap().unwrap().status(), 200);
+    }
+    assert_eq!(c.get(server.url("/healthz")).send().await.unwrap().status(), 200, "alive again");
+    assert_eq!(c.get(server.url("/readyz")).send().await.unwrap().status(), 200, "ready again");
+    server.stop().await.unwrap();
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn models_request_ids_and_low_confidence() {
+    let server =
+        TestServer::start(washer_config_with(&[("scores = \"auto\"", "scores = \"auto\"\nmin_score = 0.99")])).await;
+    let c = client();
+    let v: Value = c.get(server.url("/models")).send().await.unwrap().json().await.unwrap();
+    let m = &v["models"][0];
+    assert_eq!(m["name"], "washers");
+    assert_eq!(m["input"]["served_shape"], serde_json::json!([1, 3, 96, 96]));
+    assert_eq!(m["input"]["layout"], "nchw");
+    assert_eq!(m["preprocess"]["resize"], "stretch");
+    assert_eq!(m["labels"].as_array().unwrap().len(), 5);
+    assert_eq!(m["engine"], "tract");
+    assert_eq!(m["selftest"]["samples"], 15);
+    assert!(m["batching"]["lanes"].as_u64().unwrap() >= 1);
+    let one: Value = c.get(server.url("/models/washers")).send().await.unwrap().json().await.unwrap();
+    assert_eq!(&one, m);
+    expect_error(c.get(server.url("/models/bolts")).send().await.unwrap(), 404, "unknown_model").await;
+    // Request ids: the client's echoed, otherwise generated and unique.
+    let r = c.get(server.url("/healthz")).header("X-Request-Id", "station-4/frame-77").send().await.unwrap();
+    assert_eq!(r.headers()["x-request-id"], "station-4/frame-77");
+    let a = c.get(server.url("/healthz")).send().await.unwrap().headers()["x-request-id"].clone();
+    let b = c.get(server.url("/healthz")).send().await.unwrap().headers()["x-request-id"].clone();
+    assert_ne!(a, b);
+    let r = c.get(server.url("/healthz")).header("X-Request-Id", "a b").send().await.unwrap();
+    assert_ne!(r.headers()["x-request-id"], "a b", "an id with a space is replaced");
+    // min_score = 0.99: every answer says whether it reaches it, and the misses are counted.
+    let mut low = 0.0;
+    for s in samples() {
+        let v: Value =
+            c.post(server.url("/classify/washers")).body(s.bytes).send().await.unwrap().json().await.unwrap();
+        let confident = v["score"].as_f64().unwrap() >= 0.99;
+        assert_eq!(v["confident"], confident, "{v}");
+        low += f64::from(u8::from(!confident));
+    }
+    let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
+    assert_eq!(metric(&m, r#"lineside_low_confidence_total{model="washers"}"#), low);
+    assert!(low > 0.0, "some sample scores below 0.99 (cracked-03 is near 0.5)");
+    let predicted: f64 = ["good", "cracked", "burr", "no_hole", "empty"]
+        .iter()
+        .map(|l| metric(&m, &format!(r#"lineside_predictions_total{{label="{l}",model="washers"}}"#)))
+        .sum();
+    assert_eq!(predicted, 15.0);
+    server.stop().await.unwrap();
 }

@@ -17,6 +17,14 @@ pub(crate) fn root() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))
 }
 
+/// A fresh, empty scratch folder for one test (named after it and this process).
+pub(crate) fn temp_dir(name: &str) -> PathBuf {
+    let d = std::env::temp_dir().join(format!("lineside-it-{name}-{}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&d);
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
 /// The documented washer config, listening on an ephemeral loopback port.
 pub(crate) fn washer_config() -> Config {
     config_from_text(&std::fs::read_to_string(root().join("config/lineside.toml")).unwrap())
@@ -81,8 +89,20 @@ impl TestServer {
         s
     }
 
+    /// Start with a fault injected into the lanes, and wait until ready.
+    pub(crate) async fn start_with_fault(config: Config, fault: lineside::batch::FaultPlan) -> TestServer {
+        let mut s = Self::spawn(config, fault).await;
+        s.release_load();
+        s.wait_ready().await;
+        s
+    }
+
     /// Start with model loading held until [`TestServer::release_load`].
     pub(crate) async fn start_gated(config: Config) -> TestServer {
+        Self::spawn(config, Default::default()).await
+    }
+
+    async fn spawn(config: Config, fault: lineside::batch::FaultPlan) -> TestServer {
         let listener = tokio::net::TcpListener::bind(config.server.listen).await.unwrap();
         let addr = listener.local_addr().unwrap();
         let (stop_tx, stop_rx) = oneshot::channel::<()>();
@@ -90,7 +110,7 @@ impl TestServer {
         let shutdown = async move {
             let _ = stop_rx.await;
         };
-        let handle = tokio::spawn(run(config, listener, shutdown, RunOptions { load_gate: Some(gate_rx) }));
+        let handle = tokio::spawn(run(config, listener, shutdown, RunOptions { load_gate: Some(gate_rx), fault }));
         TestServer { addr, shutdown: Some(stop_tx), gate: Some(gate_tx), handle }
     }
 
