@@ -167,28 +167,26 @@ pub async fn classify(
 ) -> Result<Response, ApiError> {
     let arrived = Instant::now();
     let served = match &*state.readiness.borrow() {
-        Readiness::Ready(s) => s.clone(),
+        Readiness::Ready(s) => Ok(s.clone()),
         Readiness::Draining(_) => {
-            return Err(ApiError::new(ErrorKind::Draining, "the server is shutting down; retry on another instance"));
+            Err(ApiError::new(ErrorKind::Draining, "the server is shutting down; retry on another instance"))
         }
-        Readiness::Loading(what) => {
-            return Err(ApiError::new(ErrorKind::NotReady, format!("not ready yet: {what}")));
-        }
-        Readiness::Failed(why) => {
-            return Err(ApiError::new(ErrorKind::NotReady, format!("not ready: {why}")));
-        }
+        Readiness::Loading(what) => Err(ApiError::new(ErrorKind::NotReady, format!("not ready yet: {what}"))),
+        Readiness::Failed(why) => Err(ApiError::new(ErrorKind::NotReady, format!("not ready: {why}"))),
+    };
+    let served = match served {
+        Ok(s) => s,
+        Err(e) => return Err(refuse(&state, body, e).await),
     };
     let Some(m) = served.get(&name) else {
         let known: Vec<&str> = served.keys().map(String::as_str).collect();
-        return Err(ApiError::new(
-            ErrorKind::UnknownModel,
-            format!("no model named {name:?}; this server has {known:?}"),
-        ));
+        let e = ApiError::new(ErrorKind::UnknownModel, format!("no model named {name:?}; this server has {known:?}"));
+        return Err(refuse(&state, body, e).await);
     };
     // Counted from here until the answer leaves (or the client goes): the drain waits for it.
     let _in_flight = state.in_flight.enter();
     let result = match deadline(&headers, state.limits.deadline, arrived) {
-        Err(e) => Err(e),
+        Err(e) => Err(refuse(&state, body, e).await),
         Ok(until) => tokio::time::timeout_at(until.into(), answer(&state, m, &headers, params, body, arrived, until))
             .await
             .unwrap_or_else(|_| {
@@ -204,6 +202,13 @@ pub async fn classify(
     };
     m.metrics.observe_request(outcome, arrived.elapsed().as_secs_f64());
     result
+}
+
+/// Answer `e` after reading the body (bounded as always), so that the connection stays
+/// usable for the client's next request instead of being closed under a body in flight.
+async fn refuse(state: &AppState, body: Body, e: ApiError) -> ApiError {
+    let _ = read_body(state, body).await;
+    e
 }
 
 /// Read the body within `body_timeout_ms` and `body_limit_bytes`.
@@ -233,11 +238,12 @@ async fn answer(
     arrived: Instant,
     until: Instant,
 ) -> Result<Response, ApiError> {
+    // The body first, whatever else is wrong, so that the connection stays usable.
+    let body = read_body(state, body).await?;
     let Query(params) = params.map_err(|e| ApiError::new(ErrorKind::BadRequest, e.body_text()))?;
     let top = parse_top(params.top.as_deref(), m.model.labels.len())?;
     let content_type = headers.get(axum::http::header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
     let multipart = multipart::boundary(content_type);
-    let body = read_body(state, body).await?;
     let Some(boundary) = multipart else {
         let result = classify_one(state, m, body, top, arrived, until).await?;
         let answer = Answer { model: m.model.name.clone(), version: m.model.version.clone(), result };
