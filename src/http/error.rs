@@ -54,6 +54,27 @@ pub enum ErrorKind {
 }
 
 impl ErrorKind {
+    /// Every kind (for documents and tests that must list them all).
+    pub const ALL: &[ErrorKind] = &[
+        ErrorKind::UnknownModel,
+        ErrorKind::BadImage,
+        ErrorKind::TooLarge,
+        ErrorKind::UnsupportedFormat,
+        ErrorKind::TooSmall,
+        ErrorKind::RoiOutside,
+        ErrorKind::Overloaded,
+        ErrorKind::BadRequest,
+        ErrorKind::NotReady,
+        ErrorKind::Draining,
+        ErrorKind::Deadline,
+        ErrorKind::BodyTimeout,
+        ErrorKind::InferenceFailed,
+        ErrorKind::NotFound,
+        ErrorKind::MethodNotAllowed,
+        ErrorKind::Stalled,
+        ErrorKind::Internal,
+    ];
+
     /// The HTTP status for this kind.
     pub fn status(self) -> StatusCode {
         match self {

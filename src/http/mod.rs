@@ -31,6 +31,7 @@ pub fn router(state: AppState) -> Router {
         .route("/metrics", get(health::metrics))
         .route("/models", get(models::list))
         .route("/models/{model}", get(models::one))
+        .route("/openapi.json", get(openapi))
         .fallback(not_found)
         .method_not_allowed_fallback(method_not_allowed)
         .layer(DefaultBodyLimit::max(state.limits.body_limit))
@@ -38,6 +39,15 @@ pub fn router(state: AppState) -> Router {
         .with_state(state)
         .layer(middleware::from_fn(log_internal))
         .layer(middleware::from_fn_with_state(metrics, crate::metrics::track_http))
+}
+
+/// The OpenAPI 3 document of this HTTP API (hand-written beside the handlers; a test checks
+/// it against the routes and error kinds, another drives the server from it).
+pub const OPENAPI: &str = include_str!("openapi.json");
+
+async fn openapi() -> Response {
+    use axum::response::IntoResponse as _;
+    ([(axum::http::header::CONTENT_TYPE, "application/json")], OPENAPI).into_response()
 }
 
 async fn not_found(req: Request) -> ApiError {
@@ -98,4 +108,41 @@ async fn log_internal(req: Request, next: Next) -> Response {
         tracing::error!(%path, cause = %d, "internal error");
     }
     resp
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn openapi_document_lists_every_route_and_error_kind() {
+        let doc: serde_json::Value = serde_json::from_str(OPENAPI).expect("openapi.json is JSON");
+        assert!(doc["openapi"].as_str().unwrap().starts_with("3."));
+        let paths: Vec<&str> = doc["paths"].as_object().unwrap().keys().map(String::as_str).collect();
+        for route in
+            ["/classify/{model}", "/models", "/models/{model}", "/healthz", "/readyz", "/metrics", "/openapi.json"]
+        {
+            assert!(paths.contains(&route), "{route} missing from openapi.json");
+        }
+        let kinds: Vec<&str> =
+            doc["components"]["schemas"]["Error"]["properties"]["error"]["properties"]["kind"]["enum"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .map(|v| v.as_str().unwrap())
+                .collect();
+        let mut ours: Vec<&str> = ErrorKind::ALL.iter().map(|k| k.as_str()).collect();
+        let mut theirs = kinds.clone();
+        ours.sort_unstable();
+        theirs.sort_unstable();
+        assert_eq!(ours, theirs, "error kinds in openapi.json");
+        // Every status an error kind can have is documented on the classify route.
+        let responses = doc["paths"]["/classify/{model}"]["post"]["responses"].as_object().unwrap();
+        for k in ErrorKind::ALL {
+            if matches!(k, ErrorKind::Stalled) {
+                continue; // only /healthz answers it
+            }
+            assert!(responses.contains_key(k.status().as_str()), "{} ({}) undocumented", k.as_str(), k.status());
+        }
+    }
 }

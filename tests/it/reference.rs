@@ -113,3 +113,34 @@ async fn served_scores_match_onnxruntime() {
     assert!(worst <= 1e-4, "max |served - onnxruntime| = {worst:e}");
     server.stop().await.unwrap();
 }
+
+/// The HTTP API against its own OpenAPI document, driven by schemathesis 4.32.5 (PyPI): it
+/// generates requests from the document (valid and invalid: random bodies, PNGs, multipart,
+/// odd headers and query values) and checks every answer: no 5xx, status codes, content
+/// types, headers and bodies as documented.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_api_conforms_to_its_openapi_document_under_schemathesis() {
+    let server = TestServer::start(washer_config()).await;
+    let dir = crate::util::temp_dir("schemathesis");
+    // Path parameters would otherwise be random names, which only ever reach the 404 branch.
+    std::fs::write(dir.join("schemathesis.toml"), "[parameters]\n\"path.model\" = \"washers\"\n").unwrap();
+    let url = server.url("/openapi.json");
+    let exe = crate::util::python().with_file_name("schemathesis");
+    let out = tokio::task::spawn_blocking(move || {
+        std::process::Command::new(exe)
+            .current_dir(&dir)
+            .args(["--config-file", "schemathesis.toml", "run", &url, "--checks", "all"])
+            // Every byte string is schema-valid as an image body, but not every one is an
+            // image: refusing those (400/415/422) is right, so this one check does not apply.
+            .args(["--exclude-checks", "positive_data_acceptance"])
+            .args(["--max-examples", "60", "--seed", "7", "--request-timeout", "20"])
+            .output()
+            .expect("run schemathesis from the venv (tools/test installs it)")
+    })
+    .await
+    .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success(), "schemathesis found problems:\n{stdout}\n{}", String::from_utf8_lossy(&out.stderr));
+    assert!(stdout.contains("passed") && !stdout.contains("❌"), "{stdout}");
+    server.stop().await.unwrap();
+}
