@@ -1,0 +1,280 @@
+//! Serving overhead benchmark (`cargo bench --bench serve`): the server's throughput over
+//! loopback against the raw engine's with the same lanes and threads, in one run.
+//!
+//! For each model (the 96x96 washer demo; ResNet-18 with random weights when
+//! `target/tmp/paper-models/resnet18.onnx` exists, built by the tests from its paper's layer
+//! table):
+//! - raw engine: `lanes` OS threads, one engine state each, running the preprocessed tensor
+//!   back to back for the step's duration (no HTTP, no decode);
+//! - server: `lineside serve` as a child process with the same lanes, loaded by 16 concurrent
+//!   keep-alive clients posting a small PNG of the model's input size (closed loop), from this
+//!   process on one thread; the CPU time of each process is read from /proc.
+//!
+//! Also: 16 clients with `batch_cap = 8` against `batch_cap = 1` (the gathering ratio), and
+//! the idle overhead at concurrency 1: the median of total − infer − decode − preprocess as the
+//! server reports them in `timing_ms`. `LINESIDE_BENCH_SECS` sets the step length (default 5).
+
+use std::io::Cursor;
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::time::{Duration, Instant};
+
+use lineside::config::{Config, Overrides};
+use lineside::model::load;
+use lineside::preprocess::Pipeline;
+
+fn root() -> PathBuf {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+}
+
+/// CPU seconds (user + system) a process has used, from /proc/<pid>/stat (fields 14 and 15,
+/// in clock ticks of 1/100 s: the Linux USER_HZ on x86-64).
+fn cpu_seconds(pid: &str) -> f64 {
+    let stat = std::fs::read_to_string(format!("/proc/{pid}/stat")).unwrap_or_default();
+    // The command name (field 2) may contain spaces: count fields after its closing ')'.
+    let rest = stat.rsplit_once(')').map_or("", |(_, r)| r);
+    let f: Vec<f64> = rest.split_whitespace().map(|v| v.parse().unwrap_or(0.0)).collect();
+    if f.len() < 13 { 0.0 } else { (f[11] + f[12]) / 100.0 }
+}
+
+struct Bundle {
+    name: &'static str,
+    config: PathBuf,
+    png: Vec<u8>,
+    tensor: Vec<f32>,
+}
+
+/// A config for `onnx` at `size`, with `lanes` lanes and `batch_cap`.
+fn write_config(dir: &Path, name: &str, onnx: &Path, labels: &Path, size: u32, lanes: usize, cap: usize) -> PathBuf {
+    let p = dir.join(format!("{name}-{lanes}-{cap}.toml"));
+    let text = format!(
+        "[[models]]\nname = \"{name}\"\nonnx = {:?}\nlabels = {:?}\n[models.preprocess]\nwidth = {size}\n\
+         height = {size}\n[models.batching]\nlanes = {lanes}\nbatch_cap = {cap}\nbacklog = 256\n",
+        onnx.display().to_string(),
+        labels.display().to_string()
+    );
+    std::fs::write(&p, text).unwrap();
+    p
+}
+
+fn png_of_size(size: u32) -> Vec<u8> {
+    let frame = image::open(root().join("models/washers/samples/good-01.png")).unwrap();
+    let small = frame.resize_exact(size, size, image::imageops::FilterType::Triangle).into_rgb8();
+    let mut out = Vec::new();
+    small.write_to(&mut Cursor::new(&mut out), image::ImageFormat::Png).unwrap();
+    out
+}
+
+fn bundle(dir: &Path, name: &'static str, onnx: &Path, labels: &Path, size: u32) -> Bundle {
+    let config = write_config(dir, name, onnx, labels, size, 2, 8);
+    let png = png_of_size(size);
+    let cfg = Config::from_file(&config, &Overrides::default()).unwrap();
+    let contract = load::contract(&cfg.models[0]).unwrap();
+    let tensor = Pipeline::new(cfg.models[0].preprocess.clone(), &contract, u64::MAX).run(&png).unwrap().tensor;
+    Bundle { name, config, png, tensor }
+}
+
+/// Images per second of `lanes` threads running the engine back to back.
+fn raw_engine(b: &Bundle, lanes: usize, secs: f64) -> f64 {
+    let cfg = Config::from_file(&b.config, &Overrides::default()).unwrap();
+    let model = Arc::new(load::load(&cfg.models[0]).unwrap());
+    let stop = Arc::new(AtomicBool::new(false));
+    let done = Arc::new(AtomicU64::new(0));
+    let threads: Vec<_> = (0..lanes)
+        .map(|_| {
+            let (model, stop, done, t) = (Arc::clone(&model), Arc::clone(&stop), Arc::clone(&done), b.tensor.clone());
+            std::thread::spawn(move || {
+                let mut r = model.runner().unwrap();
+                while !stop.load(Ordering::Relaxed) {
+                    std::hint::black_box(r.run(&t).unwrap());
+                    done.fetch_add(1, Ordering::Relaxed);
+                }
+            })
+        })
+        .collect();
+    std::thread::sleep(Duration::from_secs_f64(0.5)); // warm
+    let (n0, t0) = (done.load(Ordering::Relaxed), Instant::now());
+    std::thread::sleep(Duration::from_secs_f64(secs));
+    let n = done.load(Ordering::Relaxed) - n0;
+    let rate = n as f64 / t0.elapsed().as_secs_f64();
+    stop.store(true, Ordering::Relaxed);
+    threads.into_iter().for_each(|t| t.join().unwrap());
+    rate
+}
+
+struct Server {
+    child: Child,
+    url: String,
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+fn start(config: &Path, port: u16) -> Server {
+    let child = Command::new(env!("CARGO_BIN_EXE_lineside"))
+        .args(["--log-level", "warn", "serve", "--config"])
+        .arg(config)
+        .args(["--listen", &format!("127.0.0.1:{port}")])
+        .stdout(Stdio::null())
+        .spawn()
+        .expect("start lineside serve");
+    let url = format!("http://127.0.0.1:{port}");
+    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
+    rt.block_on(async {
+        let c = reqwest::Client::new();
+        for _ in 0..600 {
+            if let Ok(r) = c.get(format!("{url}/readyz")).send().await {
+                if r.status() == 200 {
+                    return;
+                }
+            }
+            tokio::time::sleep(Duration::from_millis(100)).await;
+        }
+        panic!("lineside serve did not become ready");
+    });
+    Server { child, url }
+}
+
+struct Load {
+    rate: f64,
+    errors: u64,
+    overhead_p50_ms: f64,
+    latency_p50_ms: f64,
+    latency_p99_ms: f64,
+    server_cores: f64,
+    client_cores: f64,
+}
+
+/// Closed-loop load: `conc` clients posting `body` for `secs` seconds, on one thread.
+fn load(s: &Server, model: &str, body: &[u8], conc: usize, secs: f64) -> Load {
+    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
+    let url = format!("{}/classify/{model}", s.url);
+    let pid = s.child.id().to_string();
+    rt.block_on(async {
+        let client = reqwest::Client::builder().pool_max_idle_per_host(conc).build().unwrap();
+        let run = |until: Instant| {
+            let tasks: Vec<_> = (0..conc)
+                .map(|_| {
+                    let (client, url, body) = (client.clone(), url.clone(), body.to_vec());
+                    tokio::spawn(async move {
+                        let (mut lat, mut over, mut errors) = (Vec::new(), Vec::new(), 0u64);
+                        while Instant::now() < until {
+                            let t = Instant::now();
+                            match client.post(&url).body(body.clone()).send().await {
+                                Ok(r) if r.status() == 200 => {
+                                    let v: serde_json::Value = r.json().await.unwrap();
+                                    lat.push(t.elapsed().as_secs_f64() * 1e3);
+                                    let tm = &v["timing_ms"];
+                                    let f = |k: &str| tm[k].as_f64().unwrap_or(0.0);
+                                    over.push(f("total") - f("infer") - f("decode") - f("preprocess"));
+                                }
+                                _ => errors += 1,
+                            }
+                        }
+                        (lat, over, errors)
+                    })
+                })
+                .collect();
+            async move {
+                let mut all = (Vec::new(), Vec::new(), 0u64);
+                for t in tasks {
+                    let (l, o, e) = t.await.unwrap();
+                    all.0.extend(l);
+                    all.1.extend(o);
+                    all.2 += e;
+                }
+                all
+            }
+        };
+        run(Instant::now() + Duration::from_millis(500)).await; // warm connections and lanes
+        let (srv0, cli0, t0) = (cpu_seconds(&pid), cpu_seconds("self"), Instant::now());
+        let (mut lat, mut over, errors) = run(Instant::now() + Duration::from_secs_f64(secs)).await;
+        let wall = t0.elapsed().as_secs_f64();
+        let (srv, cli) = (cpu_seconds(&pid) - srv0, cpu_seconds("self") - cli0);
+        lat.sort_by(f64::total_cmp);
+        over.sort_by(f64::total_cmp);
+        let q = |v: &[f64], p: f64| if v.is_empty() { f64::NAN } else { v[((v.len() - 1) as f64 * p) as usize] };
+        Load {
+            rate: lat.len() as f64 / wall,
+            errors,
+            overhead_p50_ms: q(&over, 0.5),
+            latency_p50_ms: q(&lat, 0.5),
+            latency_p99_ms: q(&lat, 0.99),
+            server_cores: srv / wall,
+            client_cores: cli / wall,
+        }
+    })
+}
+
+fn main() {
+    let secs: f64 = std::env::var("LINESIDE_BENCH_SECS").ok().and_then(|s| s.parse().ok()).unwrap_or(5.0);
+    let dir = std::env::temp_dir().join(format!("lineside-bench-serve-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let mut bundles = vec![bundle(
+        &dir,
+        "washers",
+        &root().join("models/washers/classifier.onnx"),
+        &root().join("models/washers/classes.txt"),
+        96,
+    )];
+    let resnet = root().join("target/tmp/paper-models/resnet18.onnx");
+    if resnet.exists() {
+        let labels = dir.join("imagenet-1000.txt");
+        std::fs::write(&labels, (0..1000).map(|i| format!("class{i}\n")).collect::<String>()).unwrap();
+        bundles.push(bundle(&dir, "resnet18", &resnet, &labels, 224));
+    } else {
+        println!("(ResNet-18 skipped: run the tests once to build target/tmp/paper-models/resnet18.onnx)");
+    }
+    println!("lineside serving benchmark ({secs} s per step; loopback; this machine only)");
+    let mut port = 18500u16;
+    for b in &bundles {
+        let raw = raw_engine(b, 2, secs);
+        port += 1;
+        let s = start(&b.config, port);
+        let l = load(&s, b.name, &b.png, 16, secs);
+        drop(s);
+        println!(
+            "  {}: raw engine, 2 lanes x 1 thread: {raw:.1} img/s; server, 16 clients: {:.1} req/s ({} errors) \
+             = {:.3}x the raw engine; p50 {:.2} ms, p99 {:.2} ms; CPU: server {:.2} cores, load client {:.2} cores",
+            b.name,
+            l.rate,
+            l.errors,
+            l.rate / raw,
+            l.latency_p50_ms,
+            l.latency_p99_ms,
+            l.server_cores,
+            l.client_cores
+        );
+    }
+    let b = &bundles[0];
+    let onnx = root().join("models/washers/classifier.onnx");
+    let labels = root().join("models/washers/classes.txt");
+    let cap1 = write_config(&dir, "washers", &onnx, &labels, 96, 2, 1);
+    port += 1;
+    let s8 = start(&b.config, port);
+    let l8 = load(&s8, "washers", &b.png, 16, secs);
+    let idle = load(&s8, "washers", &b.png, 1, secs);
+    drop(s8);
+    port += 1;
+    let s1 = start(&cap1, port);
+    let l1 = load(&s1, "washers", &b.png, 16, secs);
+    drop(s1);
+    println!(
+        "  gathering, washers, 16 clients: batch_cap 8 {:.1} req/s, batch_cap 1 {:.1} req/s: ratio {:.3}",
+        l8.rate,
+        l1.rate,
+        l8.rate / l1.rate
+    );
+    println!(
+        "  idle overhead, washers, 1 client: p50 of total - infer - decode - preprocess = {:.3} ms \
+         (latency p50 {:.2} ms, {:.1} req/s)",
+        idle.overhead_p50_ms, idle.latency_p50_ms, idle.rate
+    );
+    let _ = std::fs::remove_dir_all(&dir);
+}
