@@ -33,12 +33,17 @@ pub(crate) fn washer_config() -> Config {
 /// The washer config with some of its lines edited. Each `(from, to)` must match, so that an
 /// edit cannot silently do nothing when the example config changes.
 pub(crate) fn washer_config_with(edits: &[(&str, &str)]) -> Config {
+    config_from_text(&washer_text_with(edits))
+}
+
+/// The documented washer config's text with `edits` applied; each must match.
+fn washer_text_with(edits: &[(&str, &str)]) -> String {
     let mut text = std::fs::read_to_string(root().join("config/lineside.toml")).unwrap();
     for (from, to) in edits {
         assert!(text.contains(from), "config/lineside.toml has no {from:?}");
         text = text.replace(from, to);
     }
-    config_from_text(&text)
+    text
 }
 
 /// The washer config text with its self-test removed, for tests that change the
@@ -51,12 +56,7 @@ pub(crate) fn without_selftest(text: &str) -> String {
 
 /// The washer config with some lines edited (as [`washer_config_with`]) and no self-test.
 pub(crate) fn washer_config_without_selftest(edits: &[(&str, &str)]) -> Config {
-    let mut text = std::fs::read_to_string(root().join("config/lineside.toml")).unwrap();
-    for (from, to) in edits {
-        assert!(text.contains(from), "config/lineside.toml has no {from:?}");
-        text = text.replace(from, to);
-    }
-    config_from_text(&without_selftest(&text))
+    config_from_text(&without_selftest(&washer_text_with(edits)))
 }
 
 /// A config from TOML text, with paths relative to `config/` and an ephemeral port.
