@@ -5,6 +5,7 @@ WORKDIR /src
 COPY Cargo.toml Cargo.lock ./
 COPY src src
 COPY tests tests
+COPY benches benches
 COPY models models
 COPY config config
 # Portable x86-64 build: tract picks its AVX2/AVX-512 kernels at run time, so no
