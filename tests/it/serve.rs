@@ -557,3 +557,38 @@ async fn models_request_ids_and_low_confidence() {
     assert_eq!(predicted, 15.0);
     server.stop().await.unwrap();
 }
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn two_models_are_served_side_by_side_each_with_its_own_backlog() {
+    // The washer model twice under two names, the second with one lane, backlog 3 and a
+    // letterbox: each has its own contract, backlog and metrics.
+    let base = std::fs::read_to_string(root().join("config/lineside.toml")).unwrap();
+    let second = base[base.find("[[models]]").unwrap()..]
+        .replace("name = \"washers\"", "name = \"washers_side\"")
+        .replace("lanes = \"auto\"", "lanes = 1")
+        .replace("backlog = 64", "backlog = 3")
+        .replace("resize = \"stretch\"", "resize = \"letterbox\"");
+    let text = format!("{base}\n{}", crate::util::without_selftest(&second));
+    let server = TestServer::start(crate::util::config_from_text(&text)).await;
+    let c = client();
+    let v: Value = c.get(server.url("/models")).send().await.unwrap().json().await.unwrap();
+    let names: Vec<&str> = v["models"].as_array().unwrap().iter().map(|m| m["name"].as_str().unwrap()).collect();
+    assert_eq!(names, ["washers", "washers_side"]);
+    assert_eq!(v["models"][1]["batching"]["backlog"], 3);
+    assert_eq!(v["models"][1]["preprocess"]["resize"], "letterbox");
+    for s in samples().iter().take(4) {
+        for name in ["washers", "washers_side"] {
+            let r = c.post(server.url(&format!("/classify/{name}"))).body(s.bytes.clone()).send().await.unwrap();
+            assert_eq!(r.status(), 200, "{name}");
+            let v: Value = r.json().await.unwrap();
+            assert_eq!(v["model"], name);
+        }
+    }
+    let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
+    for name in ["washers", "washers_side"] {
+        let key = format!(r#"lineside_request_duration_seconds_count{{model="{name}",outcome="ok"}}"#);
+        assert_eq!(metric(&m, &key), 4.0, "{name}");
+    }
+    assert_eq!(metric(&m, r#"lineside_lanes{model="washers_side"}"#), 1.0);
+    server.stop().await.unwrap();
+}
