@@ -1,7 +1,8 @@
 //! lineside: a CPU inference server for small ONNX image classifiers beside a production line.
 //!
 //! `check` loads a model and verifies its input/output contract, `serve` answers images over
-//! HTTP (decode, preprocess, batch, infer) with health probes and Prometheus metrics.
+//! HTTP (decode, preprocess, batch, infer) with health probes and Prometheus metrics, and
+//! `preprocess` writes the exact tensor a model gets for one image.
 //!
 //! # Layout
 //!
@@ -11,10 +12,10 @@
 //! |---|---|
 //! | [`config`] | TOML + flags, validated once into typed settings |
 //! | [`model`] | load the ONNX file, check its contract, plan and run it (tract stays here) |
-//! | [`preprocess`] | decode, convert, resize, normalise; the bounded decode pool |
-//! | [`batch`] | per-model backlog, inference lanes, pass formation |
+//! | [`preprocess`] | decode, ROI, convert, resize (Pillow's arithmetic), normalise; the bounded decode pool |
+//! | [`batch`] | per-model backlog, inference lanes, pass formation, deadlines at the lane |
 //! | [`selftest`] | sample images through the serving path at load, against expectations |
-//! | [`http`] | router, handlers, the one error type |
+//! | [`http`] | router, handlers, request ids, multipart, the OpenAPI document, the one error type |
 //! | [`metrics`] | the registry and the response-counting middleware |
 //! | [`server`] | bind, load, serve, drain |
 //! | [`cli`] | the subcommands, as library calls |
