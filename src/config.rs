@@ -577,6 +577,17 @@ impl Config {
     pub fn model(&self, name: &str) -> Option<&ModelConfig> {
         self.models.iter().find(|m| m.name == name)
     }
+
+    /// The model called `name`, or an error naming the config and the models it has.
+    ///
+    /// # Errors
+    /// No model by that name.
+    pub fn named(&self, name: &str) -> anyhow::Result<&ModelConfig> {
+        self.model(name).ok_or_else(|| {
+            let known: Vec<&str> = self.models.iter().map(|m| m.name.as_str()).collect();
+            anyhow::anyhow!("{}: no model named {name:?}; it has {known:?}", self.origin)
+        })
+    }
 }
 
 fn validate(

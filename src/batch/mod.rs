@@ -129,9 +129,14 @@ impl Drop for BatcherGuard {
     fn drop(&mut self) {
         // Refuse new jobs first, so that none is queued behind the sweep below.
         self.closed.store(true, Ordering::SeqCst);
-        while let Ok(job) = self.queued.try_recv() {
-            let _ = job.reply.send(Err(BatchError::ShuttingDown));
-        }
+        refuse_queued(&self.queued);
+    }
+}
+
+/// Answer every job still in a closing backlog `ShuttingDown`.
+fn refuse_queued(jobs: &Receiver<Job>) {
+    while let Ok(job) = jobs.try_recv() {
+        let _ = job.reply.send(Err(BatchError::ShuttingDown));
     }
 }
 

@@ -78,9 +78,8 @@ impl Lane {
             self.run_pass(pass);
             self.ends.busy.stop(self.ends.index);
         }
-        while let Ok(job) = self.ends.jobs.try_recv() {
-            let _ = job.reply.send(Err(BatchError::ShuttingDown));
-        }
+        // A job sent in the instant before the guard closed the batcher is answered here.
+        super::refuse_queued(&self.ends.jobs);
     }
 
     fn form_pass(&self, first: Job) -> Vec<Job> {

@@ -109,13 +109,7 @@ pub fn run(args: CheckArgs) -> anyhow::Result<Outcome> {
         None => {
             let config = Config::load(args.config.config.as_deref(), &Overrides::default())?;
             let models = match &args.model {
-                Some(name) => match config.model(name) {
-                    Some(m) => vec![m.clone()],
-                    None => {
-                        let known: Vec<&str> = config.models.iter().map(|m| m.name.as_str()).collect();
-                        anyhow::bail!("{}: no model named {name:?}; it has {known:?}", config.origin);
-                    }
-                },
+                Some(name) => vec![config.named(name)?.clone()],
                 None => config.models.clone(),
             };
             (config.origin, models)

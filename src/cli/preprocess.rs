@@ -42,14 +42,12 @@ pub struct PreprocessArgs {
 /// undecodable image (the message says what was wrong), an unwritable output.
 pub fn run(args: PreprocessArgs) -> anyhow::Result<Outcome> {
     let config = Config::load(args.config.config.as_deref(), &Overrides::default())?;
-    let names: Vec<&str> = config.models.iter().map(|m| m.name.as_str()).collect();
     let mc = match (&args.model, config.models.as_slice()) {
+        (Some(name), _) => config.named(name)?,
         (None, [only]) => only,
-        (None, _) => {
+        (None, all) => {
+            let names: Vec<&str> = all.iter().map(|m| m.name.as_str()).collect();
             anyhow::bail!("{} serves {} models ({names:?}): choose one with --model", config.origin, names.len())
-        }
-        (Some(n), _) => {
-            config.model(n).with_context(|| format!("no model {n:?} in {}; it has {names:?}", config.origin))?
         }
     };
     let contract = load::contract(mc).with_context(|| format!("model {:?}", mc.name))?;

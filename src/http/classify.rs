@@ -21,7 +21,7 @@ use serde::{Deserialize, Serialize};
 
 use super::error::{ApiError, ErrorKind};
 use super::multipart;
-use super::state::{AppState, Readiness, ServedModel};
+use super::state::{AppState, ServedModel, find};
 use crate::model::top_k;
 
 /// The request header that may shorten the server's deadline, in milliseconds.
@@ -166,22 +166,14 @@ pub async fn classify(
     body: Body,
 ) -> Result<Response, ApiError> {
     let arrived = Instant::now();
-    let served = match &*state.readiness.borrow() {
-        Readiness::Ready(s) => Ok(s.clone()),
-        Readiness::Draining(_) => {
-            Err(ApiError::new(ErrorKind::Draining, "the server is shutting down; retry on another instance"))
-        }
-        Readiness::Loading(what) => Err(ApiError::new(ErrorKind::NotReady, format!("not ready yet: {what}"))),
-        Readiness::Failed(why) => Err(ApiError::new(ErrorKind::NotReady, format!("not ready: {why}"))),
-    };
+    let served = state.readiness.borrow().served(false);
     let served = match served {
         Ok(s) => s,
         Err(e) => return Err(refuse(&state, body, e).await),
     };
-    let Some(m) = served.get(&name) else {
-        let known: Vec<&str> = served.keys().map(String::as_str).collect();
-        let e = ApiError::new(ErrorKind::UnknownModel, format!("no model named {name:?}; this server has {known:?}"));
-        return Err(refuse(&state, body, e).await);
+    let m = match find(&served, &name) {
+        Ok(m) => m,
+        Err(e) => return Err(refuse(&state, body, e).await),
     };
     // Counted from here until the answer leaves (or the client goes): the drain waits for it.
     let _in_flight = state.in_flight.enter();

@@ -6,8 +6,8 @@ use axum::Json;
 use axum::extract::{Path, State};
 use serde_json::{Value, json};
 
-use super::error::{ApiError, ErrorKind};
-use super::state::{AppState, Readiness, ServedModel};
+use super::error::ApiError;
+use super::state::{AppState, ServedModel, find};
 
 fn describe(m: &ServedModel) -> Value {
     let c = &m.model.contract;
@@ -43,28 +43,14 @@ fn describe(m: &ServedModel) -> Value {
     })
 }
 
-fn served(state: &AppState) -> Result<std::sync::Arc<super::state::Served>, ApiError> {
-    match &*state.readiness.borrow() {
-        Readiness::Ready(s) | Readiness::Draining(s) => Ok(s.clone()),
-        Readiness::Loading(what) => Err(ApiError::new(ErrorKind::NotReady, format!("not ready yet: {what}"))),
-        Readiness::Failed(why) => Err(ApiError::new(ErrorKind::NotReady, format!("not ready: {why}"))),
-    }
-}
-
 /// Every served model.
 pub async fn list(State(state): State<AppState>) -> Result<Json<Value>, ApiError> {
-    let s = served(&state)?;
+    let s = state.readiness.borrow().served(true)?;
     Ok(Json(json!({ "models": s.values().map(describe).collect::<Vec<_>>() })))
 }
 
 /// One model.
 pub async fn one(State(state): State<AppState>, Path(name): Path<String>) -> Result<Json<Value>, ApiError> {
-    let s = served(&state)?;
-    match s.get(&name) {
-        Some(m) => Ok(Json(describe(m))),
-        None => {
-            let known: Vec<&str> = s.keys().map(String::as_str).collect();
-            Err(ApiError::new(ErrorKind::UnknownModel, format!("no model named {name:?}; this server has {known:?}")))
-        }
-    }
+    let s = state.readiness.borrow().served(true)?;
+    Ok(Json(describe(find(&s, &name)?)))
 }

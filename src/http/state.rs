@@ -11,6 +11,7 @@ use std::time::Duration;
 
 use tokio::sync::watch;
 
+use super::error::{ApiError, ErrorKind};
 use crate::batch::Batcher;
 use crate::metrics::{Metrics, ModelMetrics};
 use crate::model::Model;
@@ -52,6 +53,36 @@ pub enum Readiness {
     Failed(String),
     /// Shutting down: requests in flight are answered, `/readyz` says 503.
     Draining(Arc<Served>),
+}
+
+impl Readiness {
+    /// The served models, for a handler that needs them: `not_ready` while loading or after
+    /// a failure, and `draining` on shutdown unless `while_draining` (read-only endpoints).
+    ///
+    /// # Errors
+    /// The `ApiError` the handler answers with.
+    pub fn served(&self, while_draining: bool) -> Result<Arc<Served>, ApiError> {
+        match self {
+            Readiness::Ready(s) => Ok(s.clone()),
+            Readiness::Draining(s) if while_draining => Ok(s.clone()),
+            Readiness::Draining(_) => {
+                Err(ApiError::new(ErrorKind::Draining, "the server is shutting down; retry on another instance"))
+            }
+            Readiness::Loading(what) => Err(ApiError::new(ErrorKind::NotReady, format!("not ready yet: {what}"))),
+            Readiness::Failed(why) => Err(ApiError::new(ErrorKind::NotReady, format!("not ready: {why}"))),
+        }
+    }
+}
+
+/// The model called `name`, or 404 `unknown_model` listing the ones served.
+///
+/// # Errors
+/// No model by that name.
+pub fn find<'a>(served: &'a Served, name: &str) -> Result<&'a ServedModel, ApiError> {
+    served.get(name).ok_or_else(|| {
+        let known: Vec<&str> = served.keys().map(String::as_str).collect();
+        ApiError::new(ErrorKind::UnknownModel, format!("no model named {name:?}; this server has {known:?}"))
+    })
 }
 
 /// State shared by all handlers; cheap to clone.
