@@ -41,6 +41,20 @@ fn cpu_seconds(pid: &str) -> f64 {
     if f.len() < 13 { 0.0 } else { (f[11] + f[12]) / 100.0 }
 }
 
+/// CPU seconds per thread role of a process: threads are grouped by the name prefix before
+/// their first '-' ("lane", "decode", "lineside" for the HTTP runtime).
+fn cpu_by_role(pid: &str) -> std::collections::BTreeMap<String, f64> {
+    let mut out = std::collections::BTreeMap::new();
+    let Ok(tasks) = std::fs::read_dir(format!("/proc/{pid}/task")) else { return out };
+    for t in tasks.flatten() {
+        let tid = t.file_name().to_string_lossy().to_string();
+        let comm = std::fs::read_to_string(format!("/proc/{pid}/task/{tid}/comm")).unwrap_or_default();
+        let role = comm.trim().split('-').next().unwrap_or("").to_string();
+        *out.entry(role).or_insert(0.0) += cpu_seconds(&format!("{pid}/task/{tid}"));
+    }
+    out
+}
+
 struct Bundle {
     name: &'static str,
     config: PathBuf,
@@ -51,8 +65,10 @@ struct Bundle {
 /// A config for `onnx` at `size`, with `lanes` lanes and `batch_cap`.
 fn write_config(dir: &Path, name: &str, onnx: &Path, labels: &Path, size: u32, lanes: usize, cap: usize) -> PathBuf {
     let p = dir.join(format!("{name}-{lanes}-{cap}.toml"));
+    // Extra `[server]` lines for experiments, e.g. LINESIDE_BENCH_SERVER="decode_threads = 1".
+    let server = std::env::var("LINESIDE_BENCH_SERVER").unwrap_or_default().replace(';', "\n");
     let text = format!(
-        "[[models]]\nname = \"{name}\"\nonnx = {:?}\nlabels = {:?}\n[models.preprocess]\nwidth = {size}\n\
+        "[server]\n{server}\n[[models]]\nname = \"{name}\"\nonnx = {:?}\nlabels = {:?}\n[models.preprocess]\nwidth = {size}\n\
          height = {size}\n[models.batching]\nlanes = {lanes}\nbatch_cap = {cap}\nbacklog = 256\n",
         onnx.display().to_string(),
         labels.display().to_string()
@@ -147,9 +163,15 @@ struct Load {
     rate: f64,
     errors: u64,
     overhead_p50_ms: f64,
+    /// Mean engine time per image as the server measured it.
+    infer_mean_ms: f64,
+    /// Mean decode + preprocess time per image as the server measured it.
+    prepare_mean_ms: f64,
     latency_p50_ms: f64,
     latency_p99_ms: f64,
     server_cores: f64,
+    /// Server CPU milliseconds per answered request, by thread role.
+    cpu_ms_per_request: Vec<(String, f64)>,
     client_cores: f64,
 }
 
@@ -166,6 +188,7 @@ fn load(s: &Server, model: &str, body: &[u8], conc: usize, secs: f64) -> Load {
                     let (client, url, body) = (client.clone(), url.clone(), body.to_vec());
                     tokio::spawn(async move {
                         let (mut lat, mut over, mut errors) = (Vec::new(), Vec::new(), 0u64);
+                        let (mut inf, mut prep) = (Vec::new(), Vec::new());
                         while Instant::now() < until {
                             let t = Instant::now();
                             match client.post(&url).body(body.clone()).send().await {
@@ -175,40 +198,55 @@ fn load(s: &Server, model: &str, body: &[u8], conc: usize, secs: f64) -> Load {
                                     let tm = &v["timing_ms"];
                                     let f = |k: &str| tm[k].as_f64().unwrap_or(0.0);
                                     over.push(f("total") - f("infer") - f("decode") - f("preprocess"));
+                                    inf.push(f("infer"));
+                                    prep.push(f("decode") + f("preprocess"));
                                 }
                                 _ => errors += 1,
                             }
                         }
-                        (lat, over, errors)
+                        (lat, over, errors, inf, prep)
                     })
                 })
                 .collect();
             async move {
-                let mut all = (Vec::new(), Vec::new(), 0u64);
+                let mut all = (Vec::new(), Vec::new(), 0u64, Vec::new(), Vec::new());
                 for t in tasks {
-                    let (l, o, e) = t.await.unwrap();
+                    let (l, o, e, i, p) = t.await.unwrap();
                     all.0.extend(l);
                     all.1.extend(o);
                     all.2 += e;
+                    all.3.extend(i);
+                    all.4.extend(p);
                 }
                 all
             }
         };
         run(Instant::now() + Duration::from_millis(500)).await; // warm connections and lanes
         let (srv0, cli0, t0) = (cpu_seconds(&pid), cpu_seconds("self"), Instant::now());
-        let (mut lat, mut over, errors) = run(Instant::now() + Duration::from_secs_f64(secs)).await;
+        let roles0 = cpu_by_role(&pid);
+        let (mut lat, mut over, errors, mut inf, mut prep) = run(Instant::now() + Duration::from_secs_f64(secs)).await;
         let wall = t0.elapsed().as_secs_f64();
         let (srv, cli) = (cpu_seconds(&pid) - srv0, cpu_seconds("self") - cli0);
+        let roles: Vec<(String, f64)> = cpu_by_role(&pid)
+            .into_iter()
+            .map(|(k, v)| (k.clone(), (v - roles0.get(&k).copied().unwrap_or(0.0)) / lat.len().max(1) as f64 * 1e3))
+            .filter(|(_, v)| *v > 0.0)
+            .collect();
         lat.sort_by(f64::total_cmp);
         over.sort_by(f64::total_cmp);
+        inf.sort_by(f64::total_cmp);
+        prep.sort_by(f64::total_cmp);
         let q = |v: &[f64], p: f64| if v.is_empty() { f64::NAN } else { v[((v.len() - 1) as f64 * p) as usize] };
         Load {
             rate: lat.len() as f64 / wall,
             errors,
             overhead_p50_ms: q(&over, 0.5),
+            infer_mean_ms: inf.iter().sum::<f64>() / inf.len().max(1) as f64,
+            prepare_mean_ms: prep.iter().sum::<f64>() / prep.len().max(1) as f64,
             latency_p50_ms: q(&lat, 0.5),
             latency_p99_ms: q(&lat, 0.99),
             server_cores: srv / wall,
+            cpu_ms_per_request: roles,
             client_cores: cli / wall,
         }
     })
@@ -226,7 +264,10 @@ fn main() {
         96,
     )];
     let resnet = root().join("target/tmp/paper-models/resnet18.onnx");
-    if resnet.exists() {
+    let only = std::env::var("LINESIDE_BENCH_ONLY").unwrap_or_default();
+    if only == "washers" {
+        println!("(LINESIDE_BENCH_ONLY=washers: ResNet-18 skipped)");
+    } else if resnet.exists() {
         let labels = dir.join("imagenet-1000.txt");
         std::fs::write(&labels, (0..1000).map(|i| format!("class{i}\n")).collect::<String>()).unwrap();
         bundles.push(bundle(&dir, "resnet18", &resnet, &labels, 224));
@@ -253,7 +294,8 @@ fn main() {
         println!(
             "  {}: median of {ROUNDS} rounds: server {:.3}x the raw engine (range {:.3} - {:.3}); in that round \
              raw engine, 2 lanes x 1 thread: {raw:.1} img/s, server, 16 clients: {:.1} req/s ({} errors), \
-             p50 {:.2} ms, p99 {:.2} ms; CPU: server {:.2} cores, load client {:.2} cores",
+             p50 {:.2} ms, p99 {:.2} ms; per image in the server: engine {:.3} ms (raw engine: {:.3} ms), decode + \
+             preprocess {:.3} ms; CPU: server {:.2} cores ({}), load client {:.2} cores",
             b.name,
             ratio,
             rounds[0].0,
@@ -262,9 +304,18 @@ fn main() {
             l.errors,
             l.latency_p50_ms,
             l.latency_p99_ms,
+            l.infer_mean_ms,
+            2e3 / raw,
+            l.prepare_mean_ms,
             l.server_cores,
+            l.cpu_ms_per_request.iter().map(|(k, v)| format!("{k} {v:.3} ms/request")).collect::<Vec<_>>().join(", "),
             l.client_cores
         );
+    }
+    if !only.is_empty() {
+        println!("(LINESIDE_BENCH_ONLY={only}: gathering and idle steps skipped)");
+        let _ = std::fs::remove_dir_all(&dir);
+        return;
     }
     let b = &bundles[0];
     let onnx = root().join("models/washers/classifier.onnx");
