@@ -861,12 +861,8 @@ fn validate_batching(b: RawBatching) -> Result<BatchingConfig, String> {
         }
     };
     let lane_threads = b.lane_threads.unwrap_or(defaults::LANE_THREADS);
-    if lane_threads != 1 {
-        // Multi-threaded inference inside a lane needs tract's multithread-mm executor,
-        // which lineside does not build yet; refusing beats silently ignoring the key.
-        return Err(format!(
-            "batching.lane_threads = {lane_threads}: only 1 is supported by this build; use more lanes instead"
-        ));
+    if !(1..=64).contains(&lane_threads) {
+        return Err(format!("batching.lane_threads = {lane_threads}: expected 1 ..= 64"));
     }
     Ok(BatchingConfig { batch_cap, gather: Duration::from_micros(gather_us), backlog, lanes, lane_threads })
 }
@@ -965,7 +961,7 @@ height = 32
             ("lanes = \"many\"", "batching.lanes"),
             ("lanes = 0", "batching.lanes = 0"),
             ("backlog = 0", "batching.backlog = 0"),
-            ("lane_threads = 2", "lane_threads = 2"),
+            ("lane_threads = 0", "lane_threads = 0"),
         ] {
             let err = parse(&format!("{MINIMAL}[models.batching]\n{batching}\n")).unwrap_err();
             assert!(err.contains(needle), "{batching}: {err}");

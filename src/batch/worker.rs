@@ -13,6 +13,7 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::Instant;
 
 use crossbeam_channel::{Receiver, RecvTimeoutError, TryRecvError, select};
+use tract_linalg::multithread::{Executor, multithread_tract_scope};
 
 use super::{BatchError, BusyClock, FaultPlan, Gather, Job, Scored};
 use crate::metrics::ModelMetrics;
@@ -38,6 +39,9 @@ pub struct Lane {
     runner: Runner,
     ends: LaneEnds,
     gather: Gather,
+    /// The lane's own thread pool for `lane_threads > 1`; `SingleThread` otherwise. (Never
+    /// `Executor::multithread(1)`: that uses rayon's global pool, i.e. every core.)
+    executor: Executor,
     metrics: ModelMetrics,
     fault: FaultPlan,
 }
@@ -51,15 +55,22 @@ impl Lane {
         model: Arc<Model>,
         ends: LaneEnds,
         gather: Gather,
+        threads: usize,
         metrics: ModelMetrics,
         fault: FaultPlan,
     ) -> anyhow::Result<Lane> {
         let runner = model.runner()?;
-        Ok(Lane { model, runner, ends, gather, metrics, fault })
+        let executor = lane_executor(&model.name, ends.index, threads)?;
+        Ok(Lane { model, runner, ends, gather, executor, metrics, fault })
     }
 
     /// Serve until the stop channel closes, then answer what is left and return.
-    pub fn run(mut self) {
+    pub fn run(self) {
+        // The plan has no executor of its own, so tract uses this thread's.
+        multithread_tract_scope(self.executor.clone(), || self.serve());
+    }
+
+    fn serve(mut self) {
         loop {
             // Stop before taking more work once closed (select! picks among ready arms at random).
             if self.ends.closed.load(Ordering::SeqCst) {
@@ -193,4 +204,19 @@ impl Lane {
             }
         }
     }
+}
+
+/// The executor for a lane of `threads` threads: tract's default single-threaded one for 1,
+/// else a private rayon pool of `threads` threads named after the lane.
+///
+/// # Errors
+/// When the pool's threads cannot be started.
+pub fn lane_executor(model: &str, lane: usize, threads: usize) -> anyhow::Result<Executor> {
+    if threads <= 1 {
+        return Ok(Executor::SingleThread);
+    }
+    // tract panics when the pool cannot be built; at start-up that is an error, not a crash.
+    let name = format!("lane-{model}-{lane}");
+    catch_unwind(|| Executor::multithread_with_name(threads, &name))
+        .map_err(|_| anyhow::anyhow!("cannot start {threads} inference threads for lane {name}"))
 }
