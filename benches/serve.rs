@@ -23,6 +23,9 @@ use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::time::{Duration, Instant};
 
+use tract_linalg::multithread::multithread_tract_scope;
+
+use lineside::batch::worker::lane_executor;
 use lineside::config::{Config, Overrides};
 use lineside::model::load;
 use lineside::preprocess::Pipeline;
@@ -57,19 +60,33 @@ fn cpu_by_role(pid: &str) -> std::collections::BTreeMap<String, f64> {
 
 struct Bundle {
     name: &'static str,
+    onnx: PathBuf,
+    labels: PathBuf,
+    size: u32,
     config: PathBuf,
     png: Vec<u8>,
     tensor: Vec<f32>,
 }
 
-/// A config for `onnx` at `size`, with `lanes` lanes and `batch_cap`.
-fn write_config(dir: &Path, name: &str, onnx: &Path, labels: &Path, size: u32, lanes: usize, cap: usize) -> PathBuf {
-    let p = dir.join(format!("{name}-{lanes}-{cap}.toml"));
+/// A config for `onnx` at `size`, with `lanes` lanes of `threads` threads and `batch_cap`.
+#[allow(clippy::too_many_arguments)]
+fn write_config(
+    dir: &Path,
+    name: &str,
+    onnx: &Path,
+    labels: &Path,
+    size: u32,
+    lanes: usize,
+    threads: usize,
+    cap: usize,
+) -> PathBuf {
+    let p = dir.join(format!("{name}-{lanes}x{threads}-{cap}.toml"));
     // Extra `[server]` lines for experiments, e.g. LINESIDE_BENCH_SERVER="decode_threads = 1".
     let server = std::env::var("LINESIDE_BENCH_SERVER").unwrap_or_default().replace(';', "\n");
     let text = format!(
         "[server]\n{server}\n[[models]]\nname = \"{name}\"\nonnx = {:?}\nlabels = {:?}\n[models.preprocess]\nwidth = {size}\n\
-         height = {size}\n[models.batching]\nlanes = {lanes}\nbatch_cap = {cap}\nbacklog = 256\n",
+         height = {size}\n[models.batching]\nlanes = {lanes}\nlane_threads = {threads}\nbatch_cap = {cap}\n\
+         backlog = 256\n",
         onnx.display().to_string(),
         labels.display().to_string()
     );
@@ -86,29 +103,33 @@ fn png_of_size(size: u32) -> Vec<u8> {
 }
 
 fn bundle(dir: &Path, name: &'static str, onnx: &Path, labels: &Path, size: u32) -> Bundle {
-    let config = write_config(dir, name, onnx, labels, size, 2, 8);
+    let config = write_config(dir, name, onnx, labels, size, 2, 1, 8);
     let png = png_of_size(size);
     let cfg = Config::from_file(&config, &Overrides::default()).unwrap();
     let contract = load::contract(&cfg.models[0]).unwrap();
     let tensor = Pipeline::new(cfg.models[0].preprocess.clone(), &contract, u64::MAX).run(&png).unwrap().tensor;
-    Bundle { name, config, png, tensor }
+    Bundle { name, onnx: onnx.to_path_buf(), labels: labels.to_path_buf(), size, config, png, tensor }
 }
 
-/// Images per second of `lanes` threads running the engine back to back.
-fn raw_engine(b: &Bundle, lanes: usize, secs: f64) -> f64 {
+/// Images per second of `lanes` lanes of `threads` threads each running the engine back to
+/// back, as the server's lanes do.
+fn raw_engine(b: &Bundle, lanes: usize, threads: usize, secs: f64) -> f64 {
     let cfg = Config::from_file(&b.config, &Overrides::default()).unwrap();
     let model = Arc::new(load::load(&cfg.models[0]).unwrap());
     let stop = Arc::new(AtomicBool::new(false));
     let done = Arc::new(AtomicU64::new(0));
     let threads: Vec<_> = (0..lanes)
-        .map(|_| {
+        .map(|i| {
             let (model, stop, done, t) = (Arc::clone(&model), Arc::clone(&stop), Arc::clone(&done), b.tensor.clone());
+            let executor = lane_executor("raw", i, threads).unwrap();
             std::thread::spawn(move || {
                 let mut r = model.runner().unwrap();
-                while !stop.load(Ordering::Relaxed) {
-                    std::hint::black_box(r.run(&t).unwrap());
-                    done.fetch_add(1, Ordering::Relaxed);
-                }
+                multithread_tract_scope(executor, || {
+                    while !stop.load(Ordering::Relaxed) {
+                        std::hint::black_box(r.run(&t).unwrap());
+                        done.fetch_add(1, Ordering::Relaxed);
+                    }
+                })
             })
         })
         .collect();
@@ -265,7 +286,7 @@ fn main() {
     )];
     let resnet = root().join("target/tmp/paper-models/resnet18.onnx");
     let only = std::env::var("LINESIDE_BENCH_ONLY").unwrap_or_default();
-    if only == "washers" {
+    if only == "washers" || only == "lanes-washers" {
         println!("(LINESIDE_BENCH_ONLY=washers: ResNet-18 skipped)");
     } else if resnet.exists() {
         let labels = dir.join("imagenet-1000.txt");
@@ -276,6 +297,13 @@ fn main() {
     }
     println!("lineside serving benchmark ({secs} s per step; loopback; this machine only)");
     let mut port = 18500u16;
+    if only == "lanes" {
+        for b in &bundles {
+            lane_arrangements(&dir, b, secs, &mut port);
+        }
+        let _ = std::fs::remove_dir_all(&dir);
+        return;
+    }
     // The machine drifts by 10-20% between steps: alternate raw and served steps and report
     // the median of the per-round ratios, with their range.
     const ROUNDS: usize = 3;
@@ -284,7 +312,7 @@ fn main() {
         let s = start(&b.config, port);
         let mut rounds = Vec::new();
         for _ in 0..ROUNDS {
-            let raw = raw_engine(b, 2, secs);
+            let raw = raw_engine(b, 2, 1, secs);
             let l = load(&s, b.name, &b.png, 16, secs);
             rounds.push((l.rate / raw, raw, l));
         }
@@ -312,15 +340,18 @@ fn main() {
             l.client_cores
         );
     }
+    if only == "lanes-washers" {
+        lane_arrangements(&dir, &bundles[0], secs, &mut port);
+    }
     if !only.is_empty() {
-        println!("(LINESIDE_BENCH_ONLY={only}: gathering and idle steps skipped)");
+        println!("(LINESIDE_BENCH_ONLY={only}: gathering, idle and lane steps skipped)");
         let _ = std::fs::remove_dir_all(&dir);
         return;
     }
     let b = &bundles[0];
     let onnx = root().join("models/washers/classifier.onnx");
     let labels = root().join("models/washers/classes.txt");
-    let cap1 = write_config(&dir, "washers", &onnx, &labels, 96, 2, 1);
+    let cap1 = write_config(&dir, "washers", &onnx, &labels, 96, 2, 1, 1);
     port += 1;
     let s8 = start(&b.config, port);
     let l8 = load(&s8, "washers", &b.png, 16, secs);
@@ -341,5 +372,26 @@ fn main() {
          (latency p50 {:.2} ms, {:.1} req/s)",
         idle.overhead_p50_ms, idle.latency_p50_ms, idle.rate
     );
+    for b in &bundles {
+        lane_arrangements(&dir, b, secs, &mut port);
+    }
     let _ = std::fs::remove_dir_all(&dir);
+}
+
+/// Two lanes of one thread against one lane of two threads (tract's multithread-mm executor):
+/// raw throughput, and the served latency of one client (the line at low load).
+fn lane_arrangements(dir: &Path, b: &Bundle, secs: f64, port: &mut u16) {
+    for (lanes, threads) in [(2, 1), (1, 2)] {
+        let raw = raw_engine(b, lanes, threads, secs);
+        let config = write_config(dir, b.name, &b.onnx, &b.labels, b.size, lanes, threads, 8);
+        *port += 1;
+        let s = start(&config, *port);
+        let one = load(&s, b.name, &b.png, 1, secs);
+        drop(s);
+        println!(
+            "  lanes, {}: {lanes} lane(s) x {threads} thread(s): raw engine {raw:.1} img/s; served to 1 client: \
+             latency p50 {:.2} ms, p99 {:.2} ms, engine {:.3} ms per image, server {:.2} cores",
+            b.name, one.latency_p50_ms, one.latency_p99_ms, one.infer_mean_ms, one.server_cores
+        );
+    }
 }

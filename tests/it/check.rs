@@ -327,11 +327,21 @@ fn paper_architectures_match_their_published_totals_and_onnxruntime() {
 
         let n = model.input_len();
         let x: Vec<f32> = (0..n as u64).map(|i| ((i * 7919) % 1000) as f32 / 1000.0).collect();
-        let ours = model.runner().unwrap().run_raw(&x).unwrap();
         let theirs: Vec<f64> =
             reference[name]["outputs"].as_array().unwrap().iter().map(|v| v.as_f64().unwrap()).collect();
-        let worst = ours.iter().zip(&theirs).map(|(a, b)| (f64::from(*a) - b).abs()).fold(0.0, f64::max);
-        assert!(worst <= 1e-4, "{name}: max |lineside - onnxruntime| = {worst:e} on the logits");
+        // Single-threaded, and as a lane with `lane_threads = 2` runs it (tract's rayon
+        // executor splits the matrix products between two threads).
+        for threads in [1, 2] {
+            let executor = lineside::batch::worker::lane_executor("test", 0, threads).unwrap();
+            let ours = tract_linalg::multithread::multithread_tract_scope(executor, || {
+                model.runner().unwrap().run_raw(&x).unwrap()
+            });
+            let worst = ours.iter().zip(&theirs).map(|(a, b)| (f64::from(*a) - b).abs()).fold(0.0, f64::max);
+            assert!(
+                worst <= 1e-4,
+                "{name}, {threads} thread(s): max |lineside - onnxruntime| = {worst:e} on the logits"
+            );
+        }
     }
 }
 

@@ -7,7 +7,7 @@
 
 use serde_json::Value;
 
-use crate::util::{TestServer, root, samples, washer_config};
+use crate::util::{TestServer, root, samples, washer_config, washer_config_with};
 use lineside::config::Layout;
 use lineside::model::load;
 use lineside::preprocess::Pipeline;
@@ -86,7 +86,17 @@ fn preprocessing_matches_pillow_bilinear_exactly() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn served_scores_match_onnxruntime() {
-    let server = TestServer::start(washer_config()).await;
+    // The default lanes, and one lane of two threads (tract's multithread-mm executor).
+    let two_threads =
+        washer_config_with(&[("lanes = \"auto\"", "lanes = 1"), ("lane_threads = 1 ", "lane_threads = 2 ")]);
+    for config in [washer_config(), two_threads] {
+        served_scores_match_onnxruntime_with(config).await;
+    }
+}
+
+async fn served_scores_match_onnxruntime_with(config: lineside::config::Config) {
+    let threads = config.models[0].batching.lane_threads;
+    let server = TestServer::start(config).await;
     let c = reqwest::Client::new();
     let r = reference();
     let labels: Vec<String> = r["labels"].as_array().unwrap().iter().map(|l| l.as_str().unwrap().into()).collect();
@@ -110,7 +120,7 @@ async fn served_scores_match_onnxruntime() {
     }
     // The tensors are the same (test above, up to float rounding in the normalisation), so
     // what is left is the engines' rounding: <= 1e-5 measured on the same tensor.
-    assert!(worst <= 1e-4, "max |served - onnxruntime| = {worst:e}");
+    assert!(worst <= 1e-4, "lane_threads = {threads}: max |served - onnxruntime| = {worst:e}");
     server.stop().await.unwrap();
 }
 
