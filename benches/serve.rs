@@ -286,6 +286,9 @@ fn main() {
     )];
     let resnet = root().join("target/tmp/paper-models/resnet18.onnx");
     let only = std::env::var("LINESIDE_BENCH_ONLY").unwrap_or_default();
+    if only == "resnet18" {
+        bundles.clear();
+    }
     if only == "washers" || only == "lanes-washers" {
         println!("(LINESIDE_BENCH_ONLY=washers: ResNet-18 skipped)");
     } else if resnet.exists() {
@@ -306,28 +309,28 @@ fn main() {
     }
     // The machine drifts by 10-20% between steps: alternate raw and served steps and report
     // the median of the per-round ratios, with their range.
-    const ROUNDS: usize = 3;
+    let rounds_n: usize = std::env::var("LINESIDE_BENCH_ROUNDS").ok().and_then(|s| s.parse().ok()).unwrap_or(3);
     for b in &bundles {
         port += 1;
         let s = start(&b.config, port);
         let mut rounds = Vec::new();
-        for _ in 0..ROUNDS {
+        for _ in 0..rounds_n {
             let raw = raw_engine(b, 2, 1, secs);
             let l = load(&s, b.name, &b.png, 16, secs);
             rounds.push((l.rate / raw, raw, l));
         }
         drop(s);
         rounds.sort_by(|a, b| a.0.total_cmp(&b.0));
-        let (ratio, raw, l) = &rounds[ROUNDS / 2];
+        let (ratio, raw, l) = &rounds[rounds_n / 2];
         println!(
-            "  {}: median of {ROUNDS} rounds: server {:.3}x the raw engine (range {:.3} - {:.3}); in that round \
+            "  {}: median of {rounds_n} rounds: server {:.3}x the raw engine (range {:.3} - {:.3}); in that round \
              raw engine, 2 lanes x 1 thread: {raw:.1} img/s, server, 16 clients: {:.1} req/s ({} errors), \
              p50 {:.2} ms, p99 {:.2} ms; per image in the server: engine {:.3} ms (raw engine: {:.3} ms), decode + \
              preprocess {:.3} ms; CPU: server {:.2} cores ({}), load client {:.2} cores",
             b.name,
             ratio,
             rounds[0].0,
-            rounds[ROUNDS - 1].0,
+            rounds[rounds_n - 1].0,
             l.rate,
             l.errors,
             l.latency_p50_ms,
