@@ -510,6 +510,33 @@ pub mod defaults {
 pub struct Overrides {
     /// `--listen ADDR`.
     pub listen: Option<String>,
+    /// `--batch-cap`, `--gather-us`, `--lanes`, `--lane-threads`: every model's
+    /// `[models.batching]` key of that name (for trials and `lineside bench --tune`).
+    pub batching: BatchingOverrides,
+}
+
+/// Batching keys set from the command line for every model; checked like the file's.
+#[derive(Debug, Default, Clone, PartialEq, Eq)]
+pub struct BatchingOverrides {
+    /// `batch_cap`.
+    pub batch_cap: Option<usize>,
+    /// `gather_us`.
+    pub gather_us: Option<u64>,
+    /// `lanes`: a number, or "auto".
+    pub lanes: Option<String>,
+    /// `lane_threads`.
+    pub lane_threads: Option<usize>,
+}
+
+impl BatchingOverrides {
+    fn apply(&self, raw: &mut RawBatching) {
+        raw.batch_cap = self.batch_cap.or(raw.batch_cap);
+        raw.gather_us = self.gather_us.or(raw.gather_us);
+        raw.lane_threads = self.lane_threads.or(raw.lane_threads);
+        if let Some(l) = &self.lanes {
+            raw.lanes = Some(l.parse::<i64>().map_or_else(|_| RawLanes::Word(l.clone()), RawLanes::Count));
+        }
+    }
 }
 
 impl Config {
@@ -660,7 +687,9 @@ fn validate(
             return Err(format!("{ctx}: min_score = {v}: expected a score 0 ..= 1"));
         }
         let min_score = m.min_score;
-        let batching = validate_batching(m.batching).map_err(|e| format!("{ctx}: {e}"))?;
+        let mut raw_batching = m.batching;
+        overrides.batching.apply(&mut raw_batching);
+        let batching = validate_batching(raw_batching).map_err(|e| format!("{ctx}: {e}"))?;
         let selftest = match m.selftest {
             None => None,
             Some(t) => {
@@ -979,7 +1008,7 @@ height = 32
 
     #[test]
     fn listen_flag_overrides_file() {
-        let o = Overrides { listen: Some("0.0.0.0:9000".into()) };
+        let o = Overrides { listen: Some("0.0.0.0:9000".into()), ..Default::default() };
         let cfg = Config::builtin(&o).unwrap();
         assert_eq!(cfg.server.listen.to_string(), "0.0.0.0:9000");
     }

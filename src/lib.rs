@@ -1,8 +1,9 @@
 //! lineside: a CPU inference server for small ONNX image classifiers beside a production line.
 //!
 //! `check` loads a model and verifies its input/output contract, `serve` answers images over
-//! HTTP (decode, preprocess, batch, infer) with health probes and Prometheus metrics, and
-//! `preprocess` writes the exact tensor a model gets for one image.
+//! HTTP (decode, preprocess, batch, infer) with health probes and Prometheus metrics,
+//! `preprocess` writes the exact tensor a model gets for one image, and `bench` measures
+//! throughput and latency on this box and recommends settings.
 //!
 //! # Layout
 //!
@@ -18,12 +19,14 @@
 //! | [`http`] | router, handlers, request ids, multipart, the OpenAPI document, the one error type |
 //! | [`metrics`] | the registry and the response-counting middleware |
 //! | [`server`] | bind, load, serve, drain |
+//! | [`bench`] | load generator, engine-alone runs, bench reports and charts |
 //! | [`cli`] | the subcommands, as library calls |
 //!
 //! lineside assists visual inspection; it does not replace the plant's safety systems or
 //! qualified sign-off of accept/reject decisions.
 
 pub mod batch;
+pub mod bench;
 pub mod cli;
 pub mod config;
 pub mod http;

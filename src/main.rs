@@ -30,6 +30,7 @@ fn main() -> ExitCode {
         Command::Serve(args) => lineside::cli::serve::run(args),
         Command::Check(args) => lineside::cli::check::run(args),
         Command::Preprocess(args) => lineside::cli::preprocess::run(args),
+        Command::Bench(args) => lineside::cli::bench::run(args),
     };
     match result {
         Ok(Outcome::Ok) => ExitCode::SUCCESS,

@@ -1,5 +1,6 @@
 //! Command-line types. Each subcommand's file turns its arguments into library calls.
 
+pub mod bench;
 pub mod check;
 pub mod preprocess;
 pub mod serve;
@@ -32,6 +33,9 @@ pub enum Command {
     Check(check::CheckArgs),
     /// Write the exact input tensor a model gets for one image (.npy), and a preview.
     Preprocess(preprocess::PreprocessArgs),
+    /// Measure throughput and latency on this box (closed or open loop), optionally the
+    /// engine alone and a grid of batching settings; print a table and a recommendation.
+    Bench(bench::BenchArgs),
 }
 
 /// Where the config comes from (shared by every subcommand).

@@ -3,7 +3,7 @@
 use anyhow::Context as _;
 
 use super::{ConfigArg, Outcome};
-use crate::config::{Config, Overrides};
+use crate::config::{BatchingOverrides, Config, Overrides};
 
 /// Arguments of `lineside serve`.
 #[derive(Debug, clap::Args)]
@@ -14,6 +14,39 @@ pub struct ServeArgs {
     /// Address to listen on (overrides `[server] listen`), e.g. 0.0.0.0:8080.
     #[arg(long, value_name = "ADDR")]
     pub listen: Option<String>,
+    /// Batching settings for every model, overriding `[models.batching]` (for trials; `lineside
+    /// bench --tune` uses them).
+    #[command(flatten)]
+    pub batching: BatchingArgs,
+}
+
+/// `[models.batching]` keys as flags.
+#[derive(Debug, Default, clap::Args)]
+pub struct BatchingArgs {
+    /// Override `batch_cap` for every model.
+    #[arg(long, value_name = "N")]
+    pub batch_cap: Option<usize>,
+    /// Override `gather_us` for every model.
+    #[arg(long, value_name = "US")]
+    pub gather_us: Option<u64>,
+    /// Override `lanes` for every model (a number or "auto").
+    #[arg(long, value_name = "N|auto")]
+    pub lanes: Option<String>,
+    /// Override `lane_threads` for every model.
+    #[arg(long, value_name = "N")]
+    pub lane_threads: Option<usize>,
+}
+
+impl BatchingArgs {
+    /// As config overrides.
+    pub fn overrides(&self) -> BatchingOverrides {
+        BatchingOverrides {
+            batch_cap: self.batch_cap,
+            gather_us: self.gather_us,
+            lanes: self.lanes.clone(),
+            lane_threads: self.lane_threads,
+        }
+    }
 }
 
 /// Run the server until Ctrl-C or SIGTERM.
@@ -21,7 +54,7 @@ pub struct ServeArgs {
 /// # Errors
 /// Config errors, a port that cannot be bound, a model that fails to load.
 pub fn run(args: ServeArgs) -> anyhow::Result<Outcome> {
-    let config = Config::load(args.config.config.as_deref(), &Overrides { listen: args.listen })?;
+    let config = Config::load(args.config.config.as_deref(), &Overrides { listen: args.listen, batching: args.batching.overrides() })?;
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .thread_name("lineside-http")

@@ -66,7 +66,7 @@ pub(crate) fn config_from_text(text: &str) -> Config {
         text,
         "test config",
         &|p: &Path| lineside::config::Source::File(base.join(p)),
-        &Overrides { listen: Some("127.0.0.1:0".into()) },
+        &Overrides { listen: Some("127.0.0.1:0".into()), ..Default::default() },
     )
     .expect("test config is valid")
 }

@@ -1,0 +1,500 @@
+//! `lineside bench`: drive a server with frames and report throughput and latency, a
+//! recommendation, and optionally the engine alone and a grid of batching settings.
+//!
+//! Without `--url` lineside starts `lineside serve` as a child process on a free loopback
+//! port (so its CPU time is read apart from the load generator's); with `--url` it drives a
+//! running server. The load generator runs on this process's main thread.
+
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use anyhow::Context as _;
+use axum::body::Bytes;
+
+use super::{ConfigArg, Outcome};
+use crate::batch::auto_lanes;
+use crate::bench::load::{self, Mode, Target};
+use crate::bench::report::{self, EngineStep, GridPoint, Run, Settings, Step};
+use crate::bench::{Machine, cpu_seconds, engine, summarize};
+use crate::config::{Config, Lanes, ModelConfig, Overrides};
+use crate::model::load as model_load;
+use crate::preprocess::Pipeline;
+use crate::selftest::Samples;
+
+/// Arguments of `lineside bench`.
+#[derive(Debug, clap::Args)]
+pub struct BenchArgs {
+    /// Config file (the server lineside starts uses it; also where the model and its sample
+    /// frames come from).
+    #[command(flatten)]
+    pub config: ConfigArg,
+    /// The model to drive (default: the config's first).
+    #[arg(long, value_name = "NAME")]
+    pub model: Option<String>,
+    /// Drive this running server (http://host:port) instead of starting one.
+    #[arg(long, value_name = "URL")]
+    pub url: Option<String>,
+    /// Frames to post, files or folders of images (default: the model's self-test samples).
+    #[arg(long, value_name = "DIR|FILE", num_args = 1..)]
+    pub images: Vec<PathBuf>,
+    /// Closed loop: the numbers of concurrent clients to sweep.
+    #[arg(long, value_name = "N,N,...", value_delimiter = ',', default_value = "1,2,4,8,16,32")]
+    pub concurrency: Vec<usize>,
+    /// Open loop instead: frames due at this rate (e.g. 200/s), latency from the due time.
+    #[arg(long, value_name = "RATE", value_parser = parse_rate)]
+    pub rate: Option<f64>,
+    /// Re-run the server with a grid of batch_cap x gather_us x lanes x lane_threads and
+    /// report the best setting within the p99 budget.
+    #[arg(long, conflicts_with_all = ["url", "rate", "engine_only"])]
+    pub tune: bool,
+    /// The p99 latency budget in milliseconds (the line's cycle allowance for one frame).
+    #[arg(long, value_name = "MS", default_value_t = 100.0)]
+    pub p99_ms: f64,
+    /// The frame rate the line needs (e.g. 40/s), to report the headroom against.
+    #[arg(long, value_name = "RATE", value_parser = parse_rate)]
+    pub line_rate: Option<f64>,
+    /// Run the model through its engine only (no HTTP, no decoding): images per second.
+    #[arg(long, conflicts_with_all = ["url", "rate"])]
+    pub engine_only: bool,
+    /// Measured time per step (e.g. 10s, 500ms).
+    #[arg(long, value_name = "TIME", value_parser = parse_duration, default_value = "10s")]
+    pub duration: Duration,
+    /// Unrecorded warm-up before each step.
+    #[arg(long, value_name = "TIME", value_parser = parse_duration, default_value = "2s")]
+    pub warmup: Duration,
+    /// Write every figure, the machine, versions and the model's settings as JSON.
+    #[arg(long, value_name = "FILE")]
+    pub json: Option<PathBuf>,
+    /// Write the charts: FILE.html (a page with the table) or FILE.svg.
+    #[arg(long, value_name = "FILE")]
+    pub report: Option<PathBuf>,
+    /// Write every recorded latency (CSV: step,latency_us).
+    #[arg(long, value_name = "FILE")]
+    pub samples: Option<PathBuf>,
+}
+
+/// "200/s", "200" or "12.5/s" → frames per second.
+fn parse_rate(s: &str) -> Result<f64, String> {
+    let n = s.trim().trim_end_matches("/s");
+    match n.parse::<f64>() {
+        Ok(r) if r > 0.0 && r.is_finite() => Ok(r),
+        _ => Err(format!("{s:?}: expected a rate such as 200/s")),
+    }
+}
+
+/// "10s", "500ms", "1.5s", "2m" → a duration.
+fn parse_duration(s: &str) -> Result<Duration, String> {
+    let t = s.trim();
+    let (num, unit) = t.find(|c: char| c.is_ascii_alphabetic()).map_or((t, "s"), |i| t.split_at(i));
+    let v: f64 = num.parse().map_err(|_| format!("{s:?}: expected a time such as 10s or 500ms"))?;
+    let secs = match unit {
+        "ms" => v / 1e3,
+        "s" => v,
+        "m" | "min" => v * 60.0,
+        _ => return Err(format!("{s:?}: unknown unit {unit:?} (use ms, s or m)")),
+    };
+    if !(0.0..=86_400.0).contains(&secs) {
+        return Err(format!("{s:?}: expected 0 .. 24 h"));
+    }
+    Ok(Duration::from_secs_f64(secs))
+}
+
+/// A `lineside serve` child process; killed when dropped.
+struct ChildServer {
+    child: Child,
+    port: u16,
+}
+
+impl Drop for ChildServer {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+impl ChildServer {
+    fn start(config: Option<&Path>, batching: &[String]) -> anyhow::Result<ChildServer> {
+        // A free port: bind, read, release (the child binds it a moment later).
+        let port = std::net::TcpListener::bind("127.0.0.1:0")?.local_addr()?.port();
+        let exe = std::env::current_exe().context("cannot find the lineside executable to start the server")?;
+        let mut cmd = Command::new(exe);
+        cmd.args(["--log-level", "warn", "serve", "--listen", &format!("127.0.0.1:{port}")]);
+        if let Some(c) = config {
+            cmd.arg("--config").arg(c);
+        }
+        cmd.args(batching).stdout(Stdio::null());
+        let child = cmd.spawn().context("cannot start `lineside serve`")?;
+        let mut server = ChildServer { child, port };
+        server.wait_ready()?;
+        Ok(server)
+    }
+
+    fn wait_ready(&mut self) -> anyhow::Result<()> {
+        let started = Instant::now();
+        while started.elapsed() < Duration::from_secs(180) {
+            if let Some(status) = self.child.try_wait()? {
+                anyhow::bail!("`lineside serve` exited with {status} before it was ready (its log is above)");
+            }
+            if let Ok(mut s) = std::net::TcpStream::connect(("127.0.0.1", self.port)) {
+                use std::io::{Read, Write};
+                let _ = s.set_read_timeout(Some(Duration::from_secs(2)));
+                let _ = s.write_all(b"GET /readyz HTTP/1.1\r\nHost: localhost\r\nConnection: close\r\n\r\n");
+                let mut head = [0u8; 12];
+                if s.read_exact(&mut head).is_ok() && &head[9..12] == b"200" {
+                    return Ok(());
+                }
+            }
+            std::thread::sleep(Duration::from_millis(100));
+        }
+        anyhow::bail!("`lineside serve` was not ready after 180 s (see /readyz)")
+    }
+
+    fn pid(&self) -> String {
+        self.child.id().to_string()
+    }
+}
+
+/// Frames to post: the given files and image files in the given folders, else the model's
+/// self-test samples.
+fn frames(args: &BenchArgs, model: Option<&ModelConfig>) -> anyhow::Result<Vec<(String, Vec<u8>)>> {
+    const IMAGE_EXTENSIONS: &[&str] = &["png", "jpg", "jpeg", "bmp", "tif", "tiff", "webp"];
+    let is_image =
+        |p: &Path| p.extension().is_some_and(|e| IMAGE_EXTENSIONS.contains(&e.to_string_lossy().to_ascii_lowercase().as_str()));
+    let mut out = Vec::new();
+    for p in &args.images {
+        if p.is_dir() {
+            let mut files: Vec<PathBuf> = std::fs::read_dir(p)
+                .with_context(|| format!("{}: cannot read the folder", p.display()))?
+                .filter_map(|e| e.ok().map(|e| e.path()))
+                .filter(|p| is_image(p))
+                .collect();
+            files.sort();
+            for f in files {
+                out.push((f.display().to_string(), std::fs::read(&f).with_context(|| format!("{}", f.display()))?));
+            }
+        } else {
+            out.push((p.display().to_string(), std::fs::read(p).with_context(|| format!("{}: cannot read", p.display()))?));
+        }
+    }
+    if args.images.is_empty() {
+        let st = model.and_then(|m| m.selftest.as_ref()).context(
+            "no frames: give --images DIR|FILE (the model has no [models.selftest] samples to fall back on)",
+        )?;
+        out = Samples::images_only(st)?;
+    }
+    anyhow::ensure!(!out.is_empty(), "no image files (png, jpg, bmp, tif, webp) among --images");
+    Ok(out)
+}
+
+/// The server's settings for this model as `/models/{model}` reports them.
+fn settings_of(info: &serde_json::Value) -> Option<Settings> {
+    let b = &info["batching"];
+    Some(Settings {
+        batch_cap: b["batch_cap"].as_u64()? as usize,
+        gather_us: b["gather_us"].as_u64()?,
+        lanes: b["lanes"].as_u64()? as usize,
+        lane_threads: b["lane_threads"].as_u64()? as usize,
+    })
+}
+
+/// Run the bench.
+///
+/// # Errors
+/// Bad arguments, a config or model that does not load, a server that does not start or
+/// cannot be reached, files that cannot be written.
+pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
+    anyhow::ensure!(args.p99_ms > 0.0, "--p99-ms {}: expected a positive budget", args.p99_ms);
+    anyhow::ensure!(
+        args.concurrency.iter().all(|&c| (1..=4096).contains(&c)),
+        "--concurrency {:?}: expected numbers 1 ..= 4096",
+        args.concurrency
+    );
+    let config = Config::load(args.config.config.as_deref(), &Overrides::default())?;
+    let model_cfg = match &args.model {
+        Some(name) => config.models.iter().find(|m| &m.name == name),
+        None => config.models.first(),
+    };
+    let model_name = match (&args.model, model_cfg) {
+        (Some(n), _) => n.clone(),
+        (None, Some(m)) => m.name.clone(),
+        (None, None) => anyhow::bail!("no model: give --model NAME"),
+    };
+    if args.url.is_none() && model_cfg.is_none() {
+        anyhow::bail!("{}: no model named {model_name:?} (configured: {})", config.origin, names(&config));
+    }
+    let frames = frames(&args, model_cfg)?;
+    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build()?;
+
+    let mut run = Run {
+        lineside_version: env!("CARGO_PKG_VERSION").into(),
+        unix_time: std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map_or(0, |d| d.as_secs()),
+        machine: Machine::this(),
+        url: String::new(),
+        model: model_name.clone(),
+        model_info: serde_json::Value::Null,
+        config: args.url.is_none().then(|| config.origin.clone()),
+        frames: frames.iter().map(|f| f.0.clone()).collect(),
+        warmup_s: args.warmup.as_secs_f64(),
+        duration_s: args.duration.as_secs_f64(),
+        p99_budget_ms: args.p99_ms,
+        line_rate: args.line_rate,
+        steps: Vec::new(),
+        engine: None,
+        serving_ratio: None,
+        grid: Vec::new(),
+        recommendation: report::recommend(&[], &[], None, args.p99_ms, None),
+        caution: report::CAUTION.into(),
+    };
+    let bodies: Vec<Bytes> = frames.iter().map(|f| Bytes::from(f.1.clone())).collect();
+
+    if !args.engine_only {
+        let config_path = args.config.config.as_deref();
+        let (server, target) = match &args.url {
+            Some(url) => (None, target_of(url, &model_name)?),
+            None => {
+                let s = ChildServer::start(config_path, &[])?;
+                let t = Target {
+                    addr: ([127, 0, 0, 1], s.port).into(),
+                    host: format!("127.0.0.1:{}", s.port),
+                    path: format!("/classify/{model_name}"),
+                };
+                (Some(s), t)
+            }
+        };
+        run.url = format!("http://{}", target.host);
+        run.model_info = rt.block_on(load::get_json(&target, &format!("/models/{model_name}"))).with_context(|| {
+            format!("{}/models/{model_name}: cannot read the model's description (is it a lineside server serving {model_name:?}?)", run.url)
+        })?;
+        let configured = settings_of(&run.model_info);
+        let modes: Vec<Mode> = match args.rate {
+            Some(r) => vec![Mode::Open(r)],
+            None => args.concurrency.iter().map(|&c| Mode::Closed(c)).collect(),
+        };
+        for mode in modes {
+            let step = measure(&rt, &target, &bodies, mode, &args, server.as_ref(), configured.clone());
+            run.steps.push(step);
+        }
+        drop(server);
+        if args.tune {
+            run.grid = tune(&rt, &args, config_path, &model_name, &bodies)?;
+        }
+    }
+    if args.engine_only || args.url.is_none() {
+        let m = model_cfg.context("the engine needs the model's config")?;
+        run.engine = Some(engine_step(m, &frames, &args)?);
+    }
+    if let (Some(e), Some(best)) =
+        (&run.engine, run.steps.iter().filter(|s| s.errors.is_empty()).map(|s| s.throughput).reduce(f64::max))
+    {
+        run.serving_ratio = Some(best / e.throughput);
+    }
+    run.recommendation =
+        report::recommend(&run.steps, &run.grid, settings_of(&run.model_info), args.p99_ms, args.line_rate);
+
+    print!("{}", report::table(&run));
+    if !args.engine_only {
+        println!("\n{}", run.recommendation.text);
+    }
+    write_outputs(&args, &run)?;
+    Ok(Outcome::Ok)
+}
+
+fn names(config: &Config) -> String {
+    config.models.iter().map(|m| m.name.as_str()).collect::<Vec<_>>().join(", ")
+}
+
+fn target_of(url: &str, model: &str) -> anyhow::Result<Target> {
+    let rest = url
+        .strip_prefix("http://")
+        .with_context(|| format!("--url {url}: expected http://host:port (lineside serves plain HTTP)"))?;
+    let host = rest.trim_end_matches('/');
+    anyhow::ensure!(!host.contains('/'), "--url {url}: give the server's root, e.g. http://10.0.0.5:8080");
+    let with_port = if host.rsplit_once(':').is_some_and(|(_, p)| p.parse::<u16>().is_ok()) {
+        host.to_string()
+    } else {
+        format!("{host}:80")
+    };
+    use std::net::ToSocketAddrs as _;
+    let addr = with_port
+        .to_socket_addrs()
+        .with_context(|| format!("--url {url}: cannot resolve {with_port}"))?
+        .next()
+        .with_context(|| format!("--url {url}: {with_port} has no address"))?;
+    Ok(Target { addr, host: host.to_string(), path: format!("/classify/{model}") })
+}
+
+/// One step, with a progress bar and the CPU time of both processes.
+fn measure(
+    rt: &tokio::runtime::Runtime,
+    target: &Target,
+    bodies: &[Bytes],
+    mode: Mode,
+    args: &BenchArgs,
+    server: Option<&ChildServer>,
+    settings: Option<Settings>,
+) -> Step {
+    let bar = indicatif::ProgressBar::new(1000);
+    bar.set_style(
+        indicatif::ProgressStyle::with_template("{prefix:>24} [{bar:40}] {elapsed}")
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar())
+            .progress_chars("=> "),
+    );
+    bar.set_prefix(mode.to_string());
+    let server_pid = server.map(ChildServer::pid);
+    let cpu = |pid: &Option<String>| pid.as_deref().and_then(cpu_seconds);
+    let (srv0, cli0, t0) = (cpu(&server_pid), cpu_seconds("self"), Instant::now());
+    let progress = |f: f64| bar.set_position((f * 1000.0) as u64);
+    let grace = Duration::from_secs(30);
+    let m = rt.block_on(load::run_step(target, bodies, mode, args.warmup, args.duration, grace, &progress));
+    let wall = t0.elapsed().as_secs_f64();
+    let cores = |a: Option<f64>, b: Option<f64>| a.zip(b).map(|(a, b)| (b - a) / wall);
+    let (srv1, cli1) = (cpu(&server_pid), cpu_seconds("self"));
+    bar.finish_and_clear();
+    let (concurrency, rate) = match mode {
+        Mode::Closed(c) => (Some(c), None),
+        Mode::Open(r) => (None, Some(r)),
+    };
+    Step {
+        mode: if concurrency.is_some() { "closed" } else { "open" }.into(),
+        concurrency,
+        rate,
+        settings,
+        requests: m.total(),
+        ok: m.ok,
+        throughput: m.throughput(),
+        duration_s: m.wall_s,
+        latency: summarize(&m.samples_us),
+        server_cpu_cores: cores(srv0, srv1),
+        client_cpu_cores: cores(cli0, cli1),
+        errors: m.errors,
+        samples_us: m.samples_us,
+    }
+}
+
+/// The batching grid: each point restarts the server with those settings and sweeps the
+/// concurrency list upwards until p99 leaves the budget or errors appear.
+fn tune(
+    rt: &tokio::runtime::Runtime,
+    args: &BenchArgs,
+    config_path: Option<&Path>,
+    model: &str,
+    bodies: &[Bytes],
+) -> anyhow::Result<Vec<GridPoint>> {
+    let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
+    let mut arrangements = vec![(cores, 1)];
+    if cores > 1 {
+        arrangements.push((1, cores));
+    }
+    let mut grid = Vec::new();
+    for (lanes, lane_threads) in arrangements {
+        for batch_cap in [1usize, 8] {
+            for gather_us in [0u64, 2000] {
+                let settings = Settings { batch_cap, gather_us, lanes, lane_threads };
+                eprintln!("tuning: {settings}");
+                let flags = [
+                    format!("--batch-cap={batch_cap}"),
+                    format!("--gather-us={gather_us}"),
+                    format!("--lanes={lanes}"),
+                    format!("--lane-threads={lane_threads}"),
+                ];
+                let server = ChildServer::start(config_path, &flags)?;
+                let target = Target {
+                    addr: ([127, 0, 0, 1], server.port).into(),
+                    host: format!("127.0.0.1:{}", server.port),
+                    path: format!("/classify/{model}"),
+                };
+                let mut steps = Vec::new();
+                for &c in &args.concurrency {
+                    let s = measure(rt, &target, bodies, Mode::Closed(c), args, Some(&server), Some(settings.clone()));
+                    let over = !s.within(args.p99_ms);
+                    steps.push(s);
+                    if over {
+                        break;
+                    }
+                }
+                let best = report::best_within(&steps, args.p99_ms);
+                grid.push(GridPoint {
+                    settings,
+                    throughput_at_budget: best.map(|s| s.throughput),
+                    p99_ms: best.map(|s| s.latency.p99_ms),
+                    concurrency: best.and_then(|s| s.concurrency),
+                });
+            }
+        }
+    }
+    Ok(grid)
+}
+
+/// The engine alone, with the model's configured lanes and threads.
+fn engine_step(m: &ModelConfig, frames: &[(String, Vec<u8>)], args: &BenchArgs) -> anyhow::Result<EngineStep> {
+    let model = Arc::new(model_load::load(m)?);
+    let pipeline = Pipeline::new(m.preprocess.clone(), &model.contract, u64::MAX);
+    let tensors = frames
+        .iter()
+        .map(|(name, bytes)| pipeline.run(bytes).map(|p| p.tensor).with_context(|| format!("{name}: cannot prepare")))
+        .collect::<anyhow::Result<Vec<_>>>()?;
+    let lane_threads = m.batching.lane_threads;
+    let lanes = match m.batching.lanes {
+        Lanes::Auto => auto_lanes(lane_threads),
+        Lanes::Fixed(n) => n,
+    };
+    eprintln!("engine alone: {lanes} lane(s) x {lane_threads} thread(s) for {:?}", args.duration);
+    let r = engine::run(&model, &tensors, lanes, lane_threads, args.warmup, args.duration)?;
+    Ok(EngineStep { lanes, lane_threads, throughput: r.throughput(), latency: summarize(&r.samples_us) })
+}
+
+fn write_outputs(args: &BenchArgs, run: &Run) -> anyhow::Result<()> {
+    if let Some(p) = &args.json {
+        let text = serde_json::to_string_pretty(run)?;
+        std::fs::write(p, text).with_context(|| format!("{}: cannot write the JSON report", p.display()))?;
+    }
+    if let Some(p) = &args.report {
+        let ext = p.extension().map(|e| e.to_string_lossy().to_ascii_lowercase()).unwrap_or_default();
+        let text = match ext.as_str() {
+            "html" | "htm" => report::html(run)?,
+            "svg" => report::svg(run)?,
+            _ => anyhow::bail!("--report {}: expected a file ending in .html or .svg", p.display()),
+        };
+        std::fs::write(p, text).with_context(|| format!("{}: cannot write the report", p.display()))?;
+    }
+    if let Some(p) = &args.samples {
+        let mut text = String::from("step,latency_us\n");
+        for s in &run.steps {
+            let name = s.name();
+            for v in &s.samples_us {
+                text.push_str(&format!("{name},{v}\n"));
+            }
+        }
+        std::fs::write(p, text).with_context(|| format!("{}: cannot write the samples", p.display()))?;
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn rates_and_durations_parse_with_units() {
+        assert_eq!(parse_rate("200/s"), Ok(200.0));
+        assert_eq!(parse_rate("12.5"), Ok(12.5));
+        assert!(parse_rate("0/s").is_err());
+        assert!(parse_rate("fast").is_err());
+        assert_eq!(parse_duration("10s"), Ok(Duration::from_secs(10)));
+        assert_eq!(parse_duration("500ms"), Ok(Duration::from_millis(500)));
+        assert_eq!(parse_duration("2m"), Ok(Duration::from_secs(120)));
+        assert_eq!(parse_duration("3"), Ok(Duration::from_secs(3)));
+        assert!(parse_duration("3h").unwrap_err().contains("unknown unit"));
+    }
+
+    #[test]
+    fn urls_name_a_server_root() {
+        let t = target_of("http://127.0.0.1:9000/", "washers").unwrap();
+        assert_eq!(t.addr.port(), 9000);
+        assert_eq!(t.path, "/classify/washers");
+        assert!(target_of("https://127.0.0.1:9000", "m").unwrap_err().to_string().contains("plain HTTP"));
+        assert!(target_of("http://127.0.0.1:9000/classify/m", "m").is_err());
+    }
+}
