@@ -144,9 +144,8 @@ impl Conn {
 pub async fn get_json(target: &Target, path: &str) -> anyhow::Result<serde_json::Value> {
     let mut conn = Conn::open(target).await.map_err(|e| anyhow::anyhow!("{}: {e}", target.addr))?;
     conn.sender.ready().await?;
-    let req = hyper::Request::get(path)
-        .header(hyper::header::HOST, target.host.as_str())
-        .body(Full::new(Bytes::new()))?;
+    let req =
+        hyper::Request::get(path).header(hyper::header::HOST, target.host.as_str()).body(Full::new(Bytes::new()))?;
     let resp = conn.sender.send_request(req).await?;
     let status = resp.status();
     let body = resp.into_body().collect().await?.to_bytes();

@@ -43,7 +43,8 @@ pub struct Latency {
 /// smallest recorded value with at least q of the samples at or below it (the inverted-CDF
 /// definition), reported as the upper edge of its histogram bucket.
 pub fn summarize(samples_us: &[u64]) -> Latency {
-    let mut h = Histogram::<u64>::new_with_bounds(1, 3_600_000_000, SIGNIFICANT_DIGITS).expect("static bounds are valid");
+    let mut h =
+        Histogram::<u64>::new_with_bounds(1, 3_600_000_000, SIGNIFICANT_DIGITS).expect("static bounds are valid");
     for &v in samples_us {
         h.saturating_record(v.max(1));
     }
@@ -64,7 +65,8 @@ pub fn summarize(samples_us: &[u64]) -> Latency {
 
 /// The latency at each of `quantiles`, in milliseconds (for the distribution chart).
 pub fn quantile_curve(samples_us: &[u64], quantiles: &[f64]) -> Vec<f64> {
-    let mut h = Histogram::<u64>::new_with_bounds(1, 3_600_000_000, SIGNIFICANT_DIGITS).expect("static bounds are valid");
+    let mut h =
+        Histogram::<u64>::new_with_bounds(1, 3_600_000_000, SIGNIFICANT_DIGITS).expect("static bounds are valid");
     for &v in samples_us {
         h.saturating_record(v.max(1));
     }
@@ -140,7 +142,8 @@ mod tests {
         let samples: Vec<u64> = (1..=1000).map(|ms| ms * 1000).collect();
         let l = summarize(&samples);
         assert_eq!(l.count, 1000);
-        for (got, want) in [(l.p50_ms, 500.0), (l.p90_ms, 900.0), (l.p99_ms, 990.0), (l.p999_ms, 999.0), (l.max_ms, 1000.0)]
+        for (got, want) in
+            [(l.p50_ms, 500.0), (l.p90_ms, 900.0), (l.p99_ms, 990.0), (l.p999_ms, 999.0), (l.max_ms, 1000.0)]
         {
             assert!((got - want).abs() <= want * 1e-3, "{got} vs {want}");
         }

@@ -283,7 +283,9 @@ pub fn table(run: &Run) -> String {
         for g in &run.grid {
             let v = g.throughput_at_budget.map_or_else(
                 || "none within budget".into(),
-                |f| format!("{f:.1} frames/s (p99 {:.1} ms, c={})", g.p99_ms.unwrap_or(0.0), g.concurrency.unwrap_or(0)),
+                |f| {
+                    format!("{f:.1} frames/s (p99 {:.1} ms, c={})", g.p99_ms.unwrap_or(0.0), g.concurrency.unwrap_or(0))
+                },
             );
             let _ = writeln!(t, "  {}: {v}", g.settings);
         }
@@ -341,7 +343,9 @@ fn draw_curve(run: &Run, area: &DrawingArea<SVGBackend<'_>, plotters::coord::Shi
         .label("closed-loop sweep")
         .legend(|(x, y)| PathElement::new([(x, y), (x + 16, y)], BLUE));
     c.draw_series(pts.iter().map(|p| {
-        EmptyElement::at((p.0, p.1)) + Circle::new((0, 0), 4, BLUE.filled()) + Text::new(p.2.clone(), (6, -14), ("sans-serif", 12))
+        EmptyElement::at((p.0, p.1))
+            + Circle::new((0, 0), 4, BLUE.filled())
+            + Text::new(p.2.clone(), (6, -14), ("sans-serif", 12))
     }))?;
     c.configure_series_labels().border_style(BLACK).background_style(WHITE.mix(0.8)).draw()?;
     Ok(())
@@ -409,13 +413,20 @@ fn draw_grid(run: &Run, area: &DrawingArea<SVGBackend<'_>, plotters::coord::Shif
         let x = cols.iter().position(|c| *c == (g.settings.batch_cap, g.settings.gather_us)).unwrap_or(0);
         let y = rows.iter().position(|r| *r == (g.settings.lanes, g.settings.lane_threads)).unwrap_or(0);
         let (fill, label) = match g.throughput_at_budget {
-            Some(f) => (ViridisRGB::get_color(f / best).to_rgba(), format!("{f:.0}/s")),
+            Some(f) => (shade(f / best).to_rgba(), format!("{f:.0}/s")),
             None => (RGBColor(200, 200, 200).to_rgba(), "over budget".into()),
         };
         c.draw_series([Rectangle::new([(x, y), (x + 1, y + 1)], fill.filled())])?;
         c.draw_series([EmptyElement::at((x, y)) + Text::new(label, (10, -24), ("sans-serif", 14))])?;
     }
     Ok(())
+}
+
+/// Pale yellow (0) to deep green (1).
+fn shade(t: f64) -> RGBColor {
+    let t = t.clamp(0.0, 1.0);
+    let mix = |a: f64, b: f64| (a + (b - a) * t).round() as u8;
+    RGBColor(mix(255.0, 26.0), mix(247.0, 152.0), mix(188.0, 80.0))
 }
 
 /// A self-contained HTML page: the table, the recommendation and the charts inline (no
@@ -465,7 +476,15 @@ mod tests {
             errors: e,
             throughput: fps,
             duration_s: 1.0,
-            latency: Latency { count: 100, mean_ms: p99 / 2.0, p50_ms: p99 / 2.0, p90_ms: p99, p99_ms: p99, p999_ms: p99, max_ms: p99 },
+            latency: Latency {
+                count: 100,
+                mean_ms: p99 / 2.0,
+                p50_ms: p99 / 2.0,
+                p90_ms: p99,
+                p99_ms: p99,
+                p999_ms: p99,
+                max_ms: p99,
+            },
             server_cpu_cores: None,
             client_cpu_cores: None,
             samples_us: vec![],
@@ -474,7 +493,8 @@ mod tests {
 
     #[test]
     fn the_recommendation_is_the_fastest_step_within_budget_without_errors() {
-        let steps = [step(1, 100.0, 5.0, 0), step(4, 300.0, 20.0, 0), step(8, 350.0, 45.0, 0), step(16, 400.0, 30.0, 3)];
+        let steps =
+            [step(1, 100.0, 5.0, 0), step(4, 300.0, 20.0, 0), step(8, 350.0, 45.0, 0), step(16, 400.0, 30.0, 3)];
         let r = recommend(&steps, &[], None, 40.0, Some(150.0));
         assert_eq!(r.concurrency, Some(4));
         assert_eq!(r.frames_per_s, Some(300.0));

@@ -160,8 +160,9 @@ impl ChildServer {
 /// self-test samples.
 fn frames(args: &BenchArgs, model: Option<&ModelConfig>) -> anyhow::Result<Vec<(String, Vec<u8>)>> {
     const IMAGE_EXTENSIONS: &[&str] = &["png", "jpg", "jpeg", "bmp", "tif", "tiff", "webp"];
-    let is_image =
-        |p: &Path| p.extension().is_some_and(|e| IMAGE_EXTENSIONS.contains(&e.to_string_lossy().to_ascii_lowercase().as_str()));
+    let is_image = |p: &Path| {
+        p.extension().is_some_and(|e| IMAGE_EXTENSIONS.contains(&e.to_string_lossy().to_ascii_lowercase().as_str()))
+    };
     let mut out = Vec::new();
     for p in &args.images {
         if p.is_dir() {
@@ -175,7 +176,10 @@ fn frames(args: &BenchArgs, model: Option<&ModelConfig>) -> anyhow::Result<Vec<(
                 out.push((f.display().to_string(), std::fs::read(&f).with_context(|| format!("{}", f.display()))?));
             }
         } else {
-            out.push((p.display().to_string(), std::fs::read(p).with_context(|| format!("{}: cannot read", p.display()))?));
+            out.push((
+                p.display().to_string(),
+                std::fs::read(p).with_context(|| format!("{}: cannot read", p.display()))?,
+            ));
         }
     }
     if args.images.is_empty() {

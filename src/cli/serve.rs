@@ -54,7 +54,10 @@ impl BatchingArgs {
 /// # Errors
 /// Config errors, a port that cannot be bound, a model that fails to load.
 pub fn run(args: ServeArgs) -> anyhow::Result<Outcome> {
-    let config = Config::load(args.config.config.as_deref(), &Overrides { listen: args.listen, batching: args.batching.overrides() })?;
+    let config = Config::load(
+        args.config.config.as_deref(),
+        &Overrides { listen: args.listen, batching: args.batching.overrides() },
+    )?;
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .thread_name("lineside-http")

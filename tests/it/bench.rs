@@ -1,0 +1,201 @@
+//! `lineside bench` as a user runs it: a short run's JSON report and charts, its percentiles
+//! against numpy's, and the open loop against a server that stalls.
+
+use std::path::Path;
+use std::process::Command;
+use std::sync::atomic::Ordering;
+use std::time::Duration;
+
+use serde_json::Value;
+
+use crate::util::{TestServer, python, root, temp_dir, washer_config_with};
+
+fn bench(args: &[&str]) -> Value {
+    let dir = temp_dir("bench-json");
+    let json = dir.join("run.json");
+    let out = Command::new(env!("CARGO_BIN_EXE_lineside"))
+        .current_dir(root())
+        .arg("bench")
+        .args(args)
+        .arg("--json")
+        .arg(&json)
+        .output()
+        .expect("run lineside bench");
+    assert!(out.status.success(), "lineside bench failed: {}", String::from_utf8_lossy(&out.stderr));
+    serde_json::from_slice(&std::fs::read(&json).unwrap()).unwrap()
+}
+
+/// Latencies per step from a `--samples` CSV.
+fn samples(path: &Path) -> std::collections::BTreeMap<String, Vec<u64>> {
+    let text = std::fs::read_to_string(path).unwrap();
+    let mut lines = text.lines();
+    assert_eq!(lines.next(), Some("step,latency_us"));
+    let mut out: std::collections::BTreeMap<String, Vec<u64>> = Default::default();
+    for l in lines {
+        let (step, v) = l.split_once(',').unwrap();
+        out.entry(step.into()).or_default().push(v.parse().unwrap());
+    }
+    out
+}
+
+#[test]
+fn a_short_bench_on_the_demo_model_reports_consistent_figures_and_valid_charts() {
+    let dir = temp_dir("bench-short");
+    let (html, csv) = (dir.join("report.html"), dir.join("samples.csv"));
+    let run = bench(&[
+        "--config",
+        "config/lineside.toml",
+        "--concurrency",
+        "1,4",
+        "--duration",
+        "1s",
+        "--warmup",
+        "300ms",
+        "--p99-ms",
+        "1000",
+        "--report",
+        html.to_str().unwrap(),
+        "--samples",
+        csv.to_str().unwrap(),
+    ]);
+    assert_eq!(run["lineside_version"], env!("CARGO_PKG_VERSION"));
+    assert!(run["machine"]["cores"].as_u64().unwrap() >= 1);
+    assert_eq!(run["model"], "washers");
+    assert!(run["model_info"]["version"].is_string(), "{}", run["model_info"]);
+    let steps = run["steps"].as_array().unwrap();
+    assert_eq!(steps.len(), 2);
+    let recorded = samples(&csv);
+    for s in steps {
+        let name = format!("c={}", s["concurrency"]);
+        let ok = s["ok"].as_u64().unwrap();
+        let errors: u64 = s["errors"].as_object().unwrap().values().map(|v| v.as_u64().unwrap()).sum();
+        assert_eq!(errors, 0, "{name}: {}", s["errors"]);
+        assert_eq!(s["requests"].as_u64().unwrap(), ok + errors, "{name}: requests = ok + errors");
+        assert!(ok > 0, "{name}: nothing answered");
+        let l = &s["latency"];
+        assert_eq!(l["count"].as_u64().unwrap(), ok, "{name}: one latency per answer");
+        assert_eq!(recorded[&name].len() as u64, ok, "{name}: --samples holds every latency");
+        let p: Vec<f64> =
+            ["p50_ms", "p90_ms", "p99_ms", "p999_ms", "max_ms"].iter().map(|k| l[k].as_f64().unwrap()).collect();
+        assert!(p.windows(2).all(|w| w[0] <= w[1]), "{name}: percentiles out of order: {p:?}");
+        let fps = s["throughput"].as_f64().unwrap();
+        let expect = ok as f64 / s["duration_s"].as_f64().unwrap();
+        assert!((fps - expect).abs() <= 1e-6 * expect, "{name}: throughput {fps} vs ok / duration {expect}");
+    }
+    assert!(run["engine"]["throughput"].as_f64().unwrap() > 0.0);
+    assert!(run["serving_ratio"].as_f64().unwrap() > 0.0);
+    let rec = run["recommendation"]["text"].as_str().unwrap();
+    assert!(rec.contains("this machine") && rec.contains("safety systems"), "{rec}");
+
+    // The page and its charts parse as HTML and as XML (SVG) with Python's standard library.
+    let check = r#"
+import sys, re, html.parser, xml.etree.ElementTree as ET
+page = open(sys.argv[1], encoding="utf-8").read()
+html.parser.HTMLParser().feed(page)
+svgs = re.findall(r"<svg.*?</svg>", page, re.S)
+assert len(svgs) == 1, len(svgs)
+root = ET.fromstring(svgs[0])
+assert root.tag == "{http://www.w3.org/2000/svg}svg", root.tag
+texts = [t.text or "" for t in root.iter("{http://www.w3.org/2000/svg}text")]
+assert any("throughput vs p99" in t for t in texts), texts[:5]
+assert any("latency distribution" in t for t in texts), texts[:5]
+assert "<script" not in page and "http://" not in page.replace("http://www.w3.org/2000/svg", "")
+print("ok")
+"#;
+    let out = Command::new(python()).arg("-c").arg(check).arg(&html).output().unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+}
+
+#[test]
+fn bench_percentiles_agree_with_numpy_inverted_cdf_on_the_same_samples() {
+    let dir = temp_dir("bench-numpy");
+    let csv = dir.join("samples.csv");
+    let run = bench(&[
+        "--config",
+        "config/lineside.toml",
+        "--concurrency",
+        "2",
+        "--duration",
+        "1s",
+        "--warmup",
+        "200ms",
+        "--samples",
+        csv.to_str().unwrap(),
+    ]);
+    // Reference: numpy.percentile(..., method="inverted_cdf") (numpy from PyPI, pinned in
+    // tools/requirements.txt) over the exported samples. lineside's histogram keeps 3
+    // significant digits (the hdrhistogram crate's documented precision for that setting), so
+    // each percentile may sit up to one bucket (1/1024 of the value) above the sample, plus
+    // the 1 us unit.
+    let script = r#"
+import sys, json, numpy as np
+v = np.loadtxt(sys.argv[1], delimiter=",", skiprows=1, usecols=1, ndmin=1)
+print(json.dumps([float(x) for x in np.percentile(v, [50, 90, 99, 99.9], method="inverted_cdf")] + [float(v.max())]))
+"#;
+    let out = Command::new(python()).arg("-c").arg(script).arg(&csv).output().unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let theirs: Vec<f64> = serde_json::from_slice(&out.stdout).unwrap();
+    let l = &run["steps"][0]["latency"];
+    for (k, want_us) in ["p50_ms", "p90_ms", "p99_ms", "p999_ms", "max_ms"].iter().zip(theirs) {
+        let got_us = l[k].as_f64().unwrap() * 1e3;
+        let tol = want_us / 1024.0 + 1.0;
+        assert!(
+            got_us >= want_us - 1.0 && got_us <= want_us + tol,
+            "{k}: lineside {got_us} us vs numpy {want_us} us (allowed +{tol})"
+        );
+    }
+}
+
+/// A server with one lane that stalls 300 ms once, mid-step. Closed loop with one client:
+/// the client waits through the stall and sends nothing meanwhile, so only the one request in
+/// flight is slow and the percentiles barely move. Open loop at 100/s: frames keep falling
+/// due during the stall and their latency counts from when they were due, so about 30
+/// frames show it.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_open_loop_shows_a_stall_that_the_closed_loop_hides() {
+    let mut slow = Vec::new();
+    for mode in [["--concurrency", "1"], ["--rate", "100/s"]] {
+        let fault = lineside::batch::FaultPlan::default();
+        let config = washer_config_with(&[("lanes = \"auto\"", "lanes = 1")]);
+        let server = TestServer::start_with_fault(config, fault.clone()).await;
+        let dir = temp_dir("bench-stall");
+        let csv = dir.join("samples.csv");
+        let url = server.url("");
+        let args: Vec<String> = [
+            "--config",
+            "config/lineside.toml",
+            "--url",
+            &url,
+            mode[0],
+            mode[1],
+            "--duration",
+            "2s",
+            "--warmup",
+            "0s",
+            "--samples",
+            csv.to_str().unwrap(),
+        ]
+        .iter()
+        .map(|s| s.to_string())
+        .collect();
+        let run = tokio::task::spawn_blocking(move || {
+            let a: Vec<&str> = args.iter().map(String::as_str).collect();
+            bench(&a)
+        });
+        tokio::time::sleep(Duration::from_millis(800)).await;
+        fault.stall_once_ms.store(300, Ordering::SeqCst);
+        let run = run.await.unwrap();
+        server.stop().await.unwrap();
+        let lat: Vec<u64> = samples(&csv).into_values().next().unwrap();
+        assert!(lat.len() >= 20, "{mode:?}: only {} answers", lat.len());
+        let over = lat.iter().filter(|&&v| v > 100_000).count();
+        slow.push((over, run["steps"][0]["latency"]["p99_ms"].as_f64().unwrap(), lat.len()));
+    }
+    let ((closed_slow, _, _), (open_slow, open_p99, open_n)) = (slow[0], slow[1]);
+    assert!(closed_slow <= 1, "closed loop: {closed_slow} answers over 100 ms; only the one in flight should be");
+    assert!(
+        open_slow >= 10,
+        "open loop: {open_slow} of {open_n} answers over 100 ms; frames due during the stall should be"
+    );
+    assert!(open_p99 >= 100.0, "open loop p99 {open_p99} ms hides the 300 ms stall");
+}
