@@ -20,12 +20,9 @@ use std::io::Cursor;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::sync::Arc;
-use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::time::{Duration, Instant};
 
-use tract_linalg::multithread::multithread_tract_scope;
-
-use lineside::batch::worker::lane_executor;
+use lineside::bench::engine;
 use lineside::config::{Config, Overrides};
 use lineside::model::load;
 use lineside::preprocess::Pipeline;
@@ -34,14 +31,9 @@ fn root() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))
 }
 
-/// CPU seconds (user + system) a process has used, from /proc/<pid>/stat (fields 14 and 15,
-/// in clock ticks of 1/100 s: the Linux USER_HZ on x86-64).
+/// CPU seconds a process (or "PID/task/TID" thread) has used; 0 when unreadable.
 fn cpu_seconds(pid: &str) -> f64 {
-    let stat = std::fs::read_to_string(format!("/proc/{pid}/stat")).unwrap_or_default();
-    // The command name (field 2) may contain spaces: count fields after its closing ')'.
-    let rest = stat.rsplit_once(')').map_or("", |(_, r)| r);
-    let f: Vec<f64> = rest.split_whitespace().map(|v| v.parse().unwrap_or(0.0)).collect();
-    if f.len() < 13 { 0.0 } else { (f[11] + f[12]) / 100.0 }
+    lineside::bench::cpu_seconds(pid).unwrap_or(0.0)
 }
 
 /// CPU seconds per thread role of a process: threads are grouped by the name prefix before
@@ -116,31 +108,10 @@ fn bundle(dir: &Path, name: &'static str, onnx: &Path, labels: &Path, size: u32)
 fn raw_engine(b: &Bundle, lanes: usize, threads: usize, secs: f64) -> f64 {
     let cfg = Config::from_file(&b.config, &Overrides::default()).unwrap();
     let model = Arc::new(load::load(&cfg.models[0]).unwrap());
-    let stop = Arc::new(AtomicBool::new(false));
-    let done = Arc::new(AtomicU64::new(0));
-    let threads: Vec<_> = (0..lanes)
-        .map(|i| {
-            let (model, stop, done, t) = (Arc::clone(&model), Arc::clone(&stop), Arc::clone(&done), b.tensor.clone());
-            let executor = lane_executor("raw", i, threads).unwrap();
-            std::thread::spawn(move || {
-                let mut r = model.runner().unwrap();
-                multithread_tract_scope(executor, || {
-                    while !stop.load(Ordering::Relaxed) {
-                        std::hint::black_box(r.run(&t).unwrap());
-                        done.fetch_add(1, Ordering::Relaxed);
-                    }
-                })
-            })
-        })
-        .collect();
-    std::thread::sleep(Duration::from_secs_f64(0.5)); // warm
-    let (n0, t0) = (done.load(Ordering::Relaxed), Instant::now());
-    std::thread::sleep(Duration::from_secs_f64(secs));
-    let n = done.load(Ordering::Relaxed) - n0;
-    let rate = n as f64 / t0.elapsed().as_secs_f64();
-    stop.store(true, Ordering::Relaxed);
-    threads.into_iter().for_each(|t| t.join().unwrap());
-    rate
+    let warm = Duration::from_millis(500);
+    engine::run(&model, std::slice::from_ref(&b.tensor), lanes, threads, warm, Duration::from_secs_f64(secs))
+        .unwrap()
+        .throughput()
 }
 
 struct Server {
