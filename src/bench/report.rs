@@ -5,6 +5,7 @@ use std::collections::BTreeMap;
 use std::fmt::Write as _;
 
 use plotters::prelude::*;
+use plotters::style::text_anchor::{HPos, Pos, VPos};
 use serde::Serialize;
 
 use super::{Latency, Machine};
@@ -370,10 +371,19 @@ fn draw_distribution(run: &Run, area: &DrawingArea<SVGBackend<'_>, plotters::coo
         .x_label_area_size(40)
         .y_label_area_size(60)
         .build_cartesian_2d(0.0..4.0f64, 0.0..ymax)?;
+    // Ticks at whole "nines" only: 0%, 90%, 99%, 99.9%, 99.99%.
     c.configure_mesh()
-        .x_desc("percentile")
+        .x_desc("percentile (the tail spread out)")
         .y_desc("latency, ms")
-        .x_label_formatter(&|x| format!("{}%", 100.0 - 100.0 * 10f64.powf(-x)))
+        .x_labels(5)
+        .x_label_formatter(&|x| {
+            let n = x.round() as i32;
+            if (x - f64::from(n)).abs() > 1e-9 {
+                return String::new();
+            }
+            let pct = 100.0 - 100.0 * 10f64.powi(-n);
+            format!("{}%", (pct * 100.0).round() / 100.0)
+        })
         .draw()?;
     for (i, (name, pts)) in curves.iter().enumerate() {
         let color = Palette99::pick(i).to_rgba();
@@ -389,6 +399,9 @@ fn draw_grid(run: &Run, area: &DrawingArea<SVGBackend<'_>, plotters::coord::Shif
     // Columns: batch_cap x gather_us; rows: lanes x lane_threads. Colour: frames/s within budget.
     let mut cols: Vec<(usize, u64)> = run.grid.iter().map(|g| (g.settings.batch_cap, g.settings.gather_us)).collect();
     let mut rows: Vec<(usize, usize)> = run.grid.iter().map(|g| (g.settings.lanes, g.settings.lane_threads)).collect();
+    if run.grid.is_empty() {
+        return Ok(());
+    }
     cols.sort_unstable();
     cols.dedup();
     rows.sort_unstable();
@@ -398,14 +411,23 @@ fn draw_grid(run: &Run, area: &DrawingArea<SVGBackend<'_>, plotters::coord::Shif
         .caption(format!("tuning grid: frames/s with p99 <= {} ms", run.p99_budget_ms), ("sans-serif", 18))
         .margin(12)
         .x_label_area_size(40)
-        .y_label_area_size(90)
-        .build_cartesian_2d(0..cols.len(), 0..rows.len())?;
+        .y_label_area_size(110)
+        // A segmented 0..n has segments for 0..=n: one fewer keeps the last cell at the edge.
+        .build_cartesian_2d((0..cols.len() - 1).into_segmented(), (0..rows.len() - 1).into_segmented())?;
     c.configure_mesh()
         .disable_mesh()
-        .x_labels(cols.len() + 1)
-        .y_labels(rows.len() + 1)
-        .x_label_formatter(&|i| cols.get(*i).map_or_else(String::new, |(b, g)| format!("cap {b}, {g} us")))
-        .y_label_formatter(&|i| rows.get(*i).map_or_else(String::new, |(l, t)| format!("{l} lane x {t} thr")))
+        .x_labels(cols.len())
+        .y_labels(rows.len())
+        .x_label_formatter(&|v| match v {
+            SegmentValue::CenterOf(i) => cols.get(*i).map_or_else(String::new, |(b, g)| format!("cap {b}, {g} us")),
+            _ => String::new(),
+        })
+        .y_label_formatter(&|v| match v {
+            SegmentValue::CenterOf(i) => {
+                rows.get(*i).map_or_else(String::new, |(l, t)| format!("{l} lane(s) x {t} thr"))
+            }
+            _ => String::new(),
+        })
         .x_desc("batch_cap, gather_us")
         .y_desc("lanes x lane_threads")
         .draw()?;
@@ -416,8 +438,11 @@ fn draw_grid(run: &Run, area: &DrawingArea<SVGBackend<'_>, plotters::coord::Shif
             Some(f) => (shade(f / best).to_rgba(), format!("{f:.0}/s")),
             None => (RGBColor(200, 200, 200).to_rgba(), "over budget".into()),
         };
-        c.draw_series([Rectangle::new([(x, y), (x + 1, y + 1)], fill.filled())])?;
-        c.draw_series([EmptyElement::at((x, y)) + Text::new(label, (10, -24), ("sans-serif", 14))])?;
+        let corner = |x: usize, y: usize| (SegmentValue::Exact(x), SegmentValue::Exact(y));
+        c.draw_series([Rectangle::new([corner(x, y), corner(x + 1, y + 1)], fill.filled())])?;
+        let centre = (SegmentValue::CenterOf(x), SegmentValue::CenterOf(y));
+        let style = ("sans-serif", 16).into_font().color(&BLACK).pos(Pos::new(HPos::Center, VPos::Center));
+        c.draw_series([Text::new(label, centre, style)])?;
     }
     Ok(())
 }
@@ -489,6 +514,50 @@ mod tests {
             client_cpu_cores: None,
             samples_us: vec![],
         }
+    }
+
+    #[test]
+    fn charts_are_drawn_for_a_sweep_and_a_one_row_grid() {
+        let mut steps = vec![step(1, 100.0, 5.0, 0), step(4, 300.0, 20.0, 0)];
+        steps[1].samples_us = (1..=500).map(|v| v * 40).collect();
+        let settings = |batch_cap| Settings { batch_cap, gather_us: 0, lanes: 1, lane_threads: 1 };
+        let grid = vec![
+            GridPoint {
+                settings: settings(1),
+                throughput_at_budget: Some(90.0),
+                p99_ms: Some(9.0),
+                concurrency: Some(1),
+            },
+            GridPoint { settings: settings(8), throughput_at_budget: None, p99_ms: None, concurrency: None },
+        ];
+        let run = Run {
+            lineside_version: "0".into(),
+            unix_time: 0,
+            machine: Machine::this(),
+            url: String::new(),
+            model: "m".into(),
+            model_info: serde_json::Value::Null,
+            config: None,
+            frames: vec![],
+            warmup_s: 0.0,
+            duration_s: 1.0,
+            p99_budget_ms: 40.0,
+            line_rate: None,
+            recommendation: recommend(&steps, &grid, None, 40.0, None),
+            steps,
+            engine: None,
+            serving_ratio: None,
+            grid,
+            caution: CAUTION.into(),
+        };
+        let svg = svg(&run).unwrap();
+        assert!(svg.starts_with("<svg") && svg.trim_end().ends_with("</svg>"));
+        for text in ["c=4", "90/s", "over budget", "99.9%", "cap 8, 0 us"] {
+            assert!(svg.contains(text), "the chart lacks {text:?}");
+        }
+        assert_eq!(run.recommendation.frames_per_s, Some(300.0), "the sweep's best beats the grid's");
+        let page = html(&run).unwrap();
+        assert!(page.contains("<svg") && !page.contains("<script"));
     }
 
     #[test]
