@@ -10,8 +10,9 @@
 //!   keep-alive clients posting a small PNG of the model's input size (closed loop), from this
 //!   process on one thread; the CPU time of each process is read from /proc.
 //!
-//! Raw and served steps alternate for three rounds and the median ratio is reported (the
-//! machine drifts between steps). Also: 16 clients with `batch_cap = 8` against
+//! Raw and served steps alternate for five rounds (`LINESIDE_BENCH_ROUNDS`) and the median
+//! ratio is reported (the machine drifts between steps). The served steps are loaded by
+//! `lineside bench`'s own generator; the idle step uses reqwest to read `timing_ms`. Also: 16 clients with `batch_cap = 8` against
 //! `batch_cap = 1` (the gathering ratio), and
 //! the idle overhead at concurrency 1: the median of total − infer − decode − preprocess as the
 //! server reports them in `timing_ms`. `LINESIDE_BENCH_SECS` sets the step length (default 5).
@@ -22,7 +23,9 @@ use std::process::{Child, Command, Stdio};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
-use lineside::bench::engine;
+use axum::body::Bytes;
+use lineside::bench::load::{self, Mode, Target};
+use lineside::bench::{engine, summarize};
 use lineside::config::{Config, Overrides};
 use lineside::model::load;
 use lineside::preprocess::Pipeline;
@@ -167,6 +170,57 @@ struct Load {
     client_cores: f64,
 }
 
+/// Closed-loop load with `lineside bench`'s generator (hyper keep-alive clients, no JSON
+/// parsing: about a third of reqwest's CPU per request): `conc` clients posting `body` for
+/// `secs` seconds after 0.5 s of warm-up, on this thread. No per-request timings.
+fn saturate(s: &Server, model: &str, body: &[u8], conc: usize, secs: f64) -> Load {
+    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
+    let port = s.url.rsplit_once(':').unwrap().1.parse::<u16>().unwrap();
+    let target = Target {
+        addr: ([127, 0, 0, 1], port).into(),
+        host: format!("127.0.0.1:{port}"),
+        path: format!("/classify/{model}"),
+    };
+    let pid = s.child.id().to_string();
+    let warm = Duration::from_millis(500);
+    let (srv0, cli0, t0, roles0) = (cpu_seconds(&pid), cpu_seconds("self"), Instant::now(), cpu_by_role(&pid));
+    let bodies = [Bytes::from(body.to_vec())];
+    let m = rt.block_on(load::run_step(
+        &target,
+        &bodies,
+        Mode::Closed(conc),
+        warm,
+        Duration::from_secs_f64(secs),
+        Duration::from_secs(30),
+        &|_| {},
+    ));
+    let wall = t0.elapsed().as_secs_f64();
+    let (srv, cli) = (cpu_seconds(&pid) - srv0, cpu_seconds("self") - cli0);
+    let roles: Vec<(String, f64)> = cpu_by_role(&pid)
+        .into_iter()
+        .map(|(k, v)| {
+            (
+                k.clone(),
+                (v - roles0.get(&k).copied().unwrap_or(0.0)) / (m.ok as f64 * wall / m.wall_s.max(1e-9)).max(1.0) * 1e3,
+            )
+        })
+        .filter(|(_, v)| *v > 0.0)
+        .collect();
+    let l = summarize(&m.samples_us);
+    Load {
+        rate: m.throughput(),
+        errors: m.errors.values().sum(),
+        overhead_p50_ms: f64::NAN,
+        infer_mean_ms: f64::NAN,
+        prepare_mean_ms: f64::NAN,
+        latency_p50_ms: l.p50_ms,
+        latency_p99_ms: l.p99_ms,
+        server_cores: srv / wall,
+        cpu_ms_per_request: roles,
+        client_cores: cli / wall,
+    }
+}
+
 /// Closed-loop load: `conc` clients posting `body` for `secs` seconds, on one thread.
 fn load(s: &Server, model: &str, body: &[u8], conc: usize, secs: f64) -> Load {
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
@@ -280,14 +334,14 @@ fn main() {
     }
     // The machine drifts by 10-20% between steps: alternate raw and served steps and report
     // the median of the per-round ratios, with their range.
-    let rounds_n: usize = std::env::var("LINESIDE_BENCH_ROUNDS").ok().and_then(|s| s.parse().ok()).unwrap_or(3);
+    let rounds_n: usize = std::env::var("LINESIDE_BENCH_ROUNDS").ok().and_then(|s| s.parse().ok()).unwrap_or(5);
     for b in &bundles {
         port += 1;
         let s = start(&b.config, port);
         let mut rounds = Vec::new();
         for _ in 0..rounds_n {
             let raw = raw_engine(b, 2, 1, secs);
-            let l = load(&s, b.name, &b.png, 16, secs);
+            let l = saturate(&s, b.name, &b.png, 16, secs);
             rounds.push((l.rate / raw, raw, l));
         }
         drop(s);
@@ -296,8 +350,8 @@ fn main() {
         println!(
             "  {}: median of {rounds_n} rounds: server {:.3}x the raw engine (range {:.3} - {:.3}); in that round \
              raw engine, 2 lanes x 1 thread: {raw:.1} img/s, server, 16 clients: {:.1} req/s ({} errors), \
-             p50 {:.2} ms, p99 {:.2} ms; per image in the server: engine {:.3} ms (raw engine: {:.3} ms), decode + \
-             preprocess {:.3} ms; CPU: server {:.2} cores ({}), load client {:.2} cores",
+             p50 {:.2} ms, p99 {:.2} ms; raw engine {:.3} ms per image per lane; CPU: server {:.2} cores ({}), \
+             load client {:.2} cores",
             b.name,
             ratio,
             rounds[0].0,
@@ -306,9 +360,7 @@ fn main() {
             l.errors,
             l.latency_p50_ms,
             l.latency_p99_ms,
-            l.infer_mean_ms,
             2e3 / raw,
-            l.prepare_mean_ms,
             l.server_cores,
             l.cpu_ms_per_request.iter().map(|(k, v)| format!("{k} {v:.3} ms/request")).collect::<Vec<_>>().join(", "),
             l.client_cores
@@ -328,12 +380,12 @@ fn main() {
     let cap1 = write_config(&dir, "washers", &onnx, &labels, 96, 2, 1, 1);
     port += 1;
     let s8 = start(&b.config, port);
-    let l8 = load(&s8, "washers", &b.png, 16, secs);
+    let l8 = saturate(&s8, "washers", &b.png, 16, secs);
     let idle = load(&s8, "washers", &b.png, 1, secs);
     drop(s8);
     port += 1;
     let s1 = start(&cap1, port);
-    let l1 = load(&s1, "washers", &b.png, 16, secs);
+    let l1 = saturate(&s1, "washers", &b.png, 16, secs);
     drop(s1);
     println!(
         "  gathering, washers, 16 clients: batch_cap 8 {:.1} req/s, batch_cap 1 {:.1} req/s: ratio {:.3}",
