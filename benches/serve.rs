@@ -24,7 +24,7 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use axum::body::Bytes;
-use lineside::bench::load::{self, Mode, Target};
+use lineside::bench::load::{self as loadgen, Mode, Target};
 use lineside::bench::{engine, summarize};
 use lineside::config::{Config, Overrides};
 use lineside::model::load;
@@ -185,7 +185,7 @@ fn saturate(s: &Server, model: &str, body: &[u8], conc: usize, secs: f64) -> Loa
     let warm = Duration::from_millis(500);
     let (srv0, cli0, t0, roles0) = (cpu_seconds(&pid), cpu_seconds("self"), Instant::now(), cpu_by_role(&pid));
     let bodies = [Bytes::from(body.to_vec())];
-    let m = rt.block_on(load::run_step(
+    let m = rt.block_on(loadgen::run_step(
         &target,
         &bodies,
         Mode::Closed(conc),
