@@ -160,8 +160,6 @@ struct Load {
     overhead_p50_ms: f64,
     /// Mean engine time per image as the server measured it.
     infer_mean_ms: f64,
-    /// Mean decode + preprocess time per image as the server measured it.
-    prepare_mean_ms: f64,
     latency_p50_ms: f64,
     latency_p99_ms: f64,
     server_cores: f64,
@@ -212,7 +210,6 @@ fn saturate(s: &Server, model: &str, body: &[u8], conc: usize, secs: f64) -> Loa
         errors: m.errors.values().sum(),
         overhead_p50_ms: f64::NAN,
         infer_mean_ms: f64::NAN,
-        prepare_mean_ms: f64::NAN,
         latency_p50_ms: l.p50_ms,
         latency_p99_ms: l.p99_ms,
         server_cores: srv / wall,
@@ -288,7 +285,6 @@ fn load(s: &Server, model: &str, body: &[u8], conc: usize, secs: f64) -> Load {
             errors,
             overhead_p50_ms: q(&over, 0.5),
             infer_mean_ms: inf.iter().sum::<f64>() / inf.len().max(1) as f64,
-            prepare_mean_ms: prep.iter().sum::<f64>() / prep.len().max(1) as f64,
             latency_p50_ms: q(&lat, 0.5),
             latency_p99_ms: q(&lat, 0.99),
             server_cores: srv / wall,
