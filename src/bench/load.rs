@@ -45,6 +45,7 @@ pub enum Mode {
 impl std::fmt::Display for Mode {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         match self {
+            Mode::Closed(1) => write!(f, "closed loop, 1 client"),
             Mode::Closed(c) => write!(f, "closed loop, {c} clients"),
             Mode::Open(r) => write!(f, "open loop, {r}/s"),
         }
@@ -142,7 +143,14 @@ impl Conn {
 /// # Errors
 /// When the server cannot be reached, answers other than 200, or not with JSON.
 pub async fn get_json(target: &Target, path: &str) -> anyhow::Result<serde_json::Value> {
-    let mut conn = Conn::open(target).await.map_err(|e| anyhow::anyhow!("{}: {e}", target.addr))?;
+    let stream = tokio::net::TcpStream::connect(target.addr)
+        .await
+        .map_err(|e| anyhow::anyhow!("cannot connect to {}: {e}", target.addr))?;
+    let (sender, conn) = hyper::client::conn::http1::handshake(TokioIo::new(stream)).await?;
+    tokio::spawn(async move {
+        let _ = conn.await;
+    });
+    let mut conn = Conn { sender };
     conn.sender.ready().await?;
     let req =
         hyper::Request::get(path).header(hyper::header::HOST, target.host.as_str()).body(Full::new(Bytes::new()))?;

@@ -206,10 +206,14 @@ pub fn recommend(
         (Some(f), Some(p)) => {
             let mut t = format!(
                 "Run with {}: about {f:.1} frames/s with p99 {p:.1} ms, within the {budget_ms} ms budget \
-                 ({:.1} ms to spare) at {} frames in flight.",
+                 ({:.1} ms to spare), with {}.",
                 settings.as_ref().map_or_else(|| "the server's settings".into(), |s| s.to_string()),
                 budget_ms - p,
-                conc.map_or_else(|| "?".into(), |c| c.to_string())
+                match conc {
+                    Some(1) => "one frame in flight at a time".to_string(),
+                    Some(c) => format!("{c} frames in flight"),
+                    None => "the open-loop rate".to_string(),
+                }
             );
             if let (Some(r), Some(h)) = (line_rate, rate_headroom) {
                 let verdict = if h >= 1.5 {

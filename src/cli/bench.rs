@@ -209,6 +209,9 @@ fn settings_of(info: &serde_json::Value) -> Option<Settings> {
 /// Bad arguments, a config or model that does not load, a server that does not start or
 /// cannot be reached, files that cannot be written.
 pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
+    if let Some(p) = &args.report {
+        report_kind(p)?;
+    }
     anyhow::ensure!(args.p99_ms > 0.0, "--p99-ms {}: expected a positive budget", args.p99_ms);
     anyhow::ensure!(
         args.concurrency.iter().all(|&c| (1..=4096).contains(&c)),
@@ -449,18 +452,22 @@ fn engine_step(m: &ModelConfig, frames: &[(String, Vec<u8>)], args: &BenchArgs) 
     Ok(EngineStep { lanes, lane_threads, throughput: r.throughput(), latency: summarize(&r.samples_us) })
 }
 
+/// Whether `--report FILE` asks for HTML (true) or SVG (false); checked before any step runs.
+fn report_kind(p: &Path) -> anyhow::Result<bool> {
+    match p.extension().map(|e| e.to_string_lossy().to_ascii_lowercase()).as_deref() {
+        Some("html" | "htm") => Ok(true),
+        Some("svg") => Ok(false),
+        _ => anyhow::bail!("--report {}: expected a file ending in .html or .svg", p.display()),
+    }
+}
+
 fn write_outputs(args: &BenchArgs, run: &Run) -> anyhow::Result<()> {
     if let Some(p) = &args.json {
         let text = serde_json::to_string_pretty(run)?;
         std::fs::write(p, text).with_context(|| format!("{}: cannot write the JSON report", p.display()))?;
     }
     if let Some(p) = &args.report {
-        let ext = p.extension().map(|e| e.to_string_lossy().to_ascii_lowercase()).unwrap_or_default();
-        let text = match ext.as_str() {
-            "html" | "htm" => report::html(run)?,
-            "svg" => report::svg(run)?,
-            _ => anyhow::bail!("--report {}: expected a file ending in .html or .svg", p.display()),
-        };
+        let text = if report_kind(p)? { report::html(run)? } else { report::svg(run)? };
         std::fs::write(p, text).with_context(|| format!("{}: cannot write the report", p.display()))?;
     }
     if let Some(p) = &args.samples {
