@@ -19,12 +19,12 @@
 
 use std::io::Cursor;
 use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Stdio};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use axum::body::Bytes;
-use lineside::bench::load::{self as loadgen, Mode, Target};
+use lineside::bench::child::ChildServer;
+use lineside::bench::load::{self as loadgen, Mode};
 use lineside::bench::{engine, summarize};
 use lineside::config::{Config, Overrides};
 use lineside::model::load;
@@ -117,41 +117,9 @@ fn raw_engine(b: &Bundle, lanes: usize, threads: usize, secs: f64) -> f64 {
         .throughput()
 }
 
-struct Server {
-    child: Child,
-    url: String,
-}
-
-impl Drop for Server {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
-
-fn start(config: &Path, port: u16) -> Server {
-    let child = Command::new(env!("CARGO_BIN_EXE_lineside"))
-        .args(["--log-level", "warn", "serve", "--config"])
-        .arg(config)
-        .args(["--listen", &format!("127.0.0.1:{port}")])
-        .stdout(Stdio::null())
-        .spawn()
-        .expect("start lineside serve");
-    let url = format!("http://127.0.0.1:{port}");
-    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
-    rt.block_on(async {
-        let c = reqwest::Client::new();
-        for _ in 0..600 {
-            if let Ok(r) = c.get(format!("{url}/readyz")).send().await {
-                if r.status() == 200 {
-                    return;
-                }
-            }
-            tokio::time::sleep(Duration::from_millis(100)).await;
-        }
-        panic!("lineside serve did not become ready");
-    });
-    Server { child, url }
+/// `lineside serve` with `config`, quiet, on a free loopback port (the binary cargo built).
+fn start(config: &Path) -> ChildServer {
+    ChildServer::start_exe(Path::new(env!("CARGO_BIN_EXE_lineside")), Some(config), &[]).expect("start lineside serve")
 }
 
 struct Load {
@@ -171,15 +139,10 @@ struct Load {
 /// Closed-loop load with `lineside bench`'s generator (hyper keep-alive clients, no JSON
 /// parsing: about a third of reqwest's CPU per request): `conc` clients posting `body` for
 /// `secs` seconds after 0.5 s of warm-up, on this thread. No per-request timings.
-fn saturate(s: &Server, model: &str, body: &[u8], conc: usize, secs: f64) -> Load {
+fn saturate(s: &ChildServer, model: &str, body: &[u8], conc: usize, secs: f64) -> Load {
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
-    let port = s.url.rsplit_once(':').unwrap().1.parse::<u16>().unwrap();
-    let target = Target {
-        addr: ([127, 0, 0, 1], port).into(),
-        host: format!("127.0.0.1:{port}"),
-        path: format!("/classify/{model}"),
-    };
-    let pid = s.child.id().to_string();
+    let target = s.target(model);
+    let pid = s.pid();
     let warm = Duration::from_millis(500);
     let (srv0, cli0, t0, roles0) = (cpu_seconds(&pid), cpu_seconds("self"), Instant::now(), cpu_by_role(&pid));
     let bodies = [Bytes::from(body.to_vec())];
@@ -219,10 +182,10 @@ fn saturate(s: &Server, model: &str, body: &[u8], conc: usize, secs: f64) -> Loa
 }
 
 /// Closed-loop load: `conc` clients posting `body` for `secs` seconds, on one thread.
-fn load(s: &Server, model: &str, body: &[u8], conc: usize, secs: f64) -> Load {
+fn load(s: &ChildServer, model: &str, body: &[u8], conc: usize, secs: f64) -> Load {
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
-    let url = format!("{}/classify/{model}", s.url);
-    let pid = s.child.id().to_string();
+    let url = format!("{}/classify/{model}", s.url());
+    let pid = s.pid();
     rt.block_on(async {
         let client = reqwest::Client::builder().pool_max_idle_per_host(conc).build().unwrap();
         let run = |until: Instant| {
@@ -320,10 +283,9 @@ fn main() {
         println!("(ResNet-18 skipped: run the tests once to build target/tmp/paper-models/resnet18.onnx)");
     }
     println!("lineside serving benchmark ({secs} s per step; loopback; this machine only)");
-    let mut port = 18500u16;
     if only == "lanes" {
         for b in &bundles {
-            lane_arrangements(&dir, b, secs, &mut port);
+            lane_arrangements(&dir, b, secs);
         }
         let _ = std::fs::remove_dir_all(&dir);
         return;
@@ -332,8 +294,7 @@ fn main() {
     // the median of the per-round ratios, with their range.
     let rounds_n: usize = std::env::var("LINESIDE_BENCH_ROUNDS").ok().and_then(|s| s.parse().ok()).unwrap_or(5);
     for b in &bundles {
-        port += 1;
-        let s = start(&b.config, port);
+        let s = start(&b.config);
         let mut rounds = Vec::new();
         for _ in 0..rounds_n {
             let raw = raw_engine(b, 2, 1, secs);
@@ -363,7 +324,7 @@ fn main() {
         );
     }
     if only == "lanes-washers" {
-        lane_arrangements(&dir, &bundles[0], secs, &mut port);
+        lane_arrangements(&dir, &bundles[0], secs);
     }
     if !only.is_empty() {
         println!("(LINESIDE_BENCH_ONLY={only}: gathering, idle and lane steps skipped)");
@@ -374,13 +335,11 @@ fn main() {
     let onnx = root().join("models/washers/classifier.onnx");
     let labels = root().join("models/washers/classes.txt");
     let cap1 = write_config(&dir, "washers", &onnx, &labels, 96, 2, 1, 1);
-    port += 1;
-    let s8 = start(&b.config, port);
+    let s8 = start(&b.config);
     let l8 = saturate(&s8, "washers", &b.png, 16, secs);
     let idle = load(&s8, "washers", &b.png, 1, secs);
     drop(s8);
-    port += 1;
-    let s1 = start(&cap1, port);
+    let s1 = start(&cap1);
     let l1 = saturate(&s1, "washers", &b.png, 16, secs);
     drop(s1);
     println!(
@@ -395,19 +354,18 @@ fn main() {
         idle.overhead_p50_ms, idle.latency_p50_ms, idle.rate
     );
     for b in &bundles {
-        lane_arrangements(&dir, b, secs, &mut port);
+        lane_arrangements(&dir, b, secs);
     }
     let _ = std::fs::remove_dir_all(&dir);
 }
 
 /// Two lanes of one thread against one lane of two threads (tract's multithread-mm executor):
 /// raw throughput, and the served latency of one client (the line at low load).
-fn lane_arrangements(dir: &Path, b: &Bundle, secs: f64, port: &mut u16) {
+fn lane_arrangements(dir: &Path, b: &Bundle, secs: f64) {
     for (lanes, threads) in [(2, 1), (1, 2)] {
         let raw = raw_engine(b, lanes, threads, secs);
         let config = write_config(dir, b.name, &b.onnx, &b.labels, b.size, lanes, threads, 8);
-        *port += 1;
-        let s = start(&config, *port);
+        let s = start(&config);
         let one = load(&s, b.name, &b.png, 1, secs);
         drop(s);
         println!(

@@ -203,6 +203,20 @@ pub async fn run_step(
     Measured { samples_us: t.samples_us, ok: t.ok, errors: t.errors, wall_s }
 }
 
+/// Post `body` on `conn`, or on a new connection when there is none; the connection comes
+/// back if it is still usable.
+async fn post_on(conn: Option<Conn>, target: &Target, body: Bytes) -> (Option<Conn>, Result<u16, String>) {
+    let mut c = match conn {
+        Some(c) => c,
+        None => match Conn::open(target).await {
+            Ok(c) => c,
+            Err(e) => return (None, Err(e)),
+        },
+    };
+    let outcome = c.post(target, body).await;
+    (outcome.is_ok().then_some(c), outcome)
+}
+
 async fn closed(
     target: &Target,
     frames: &Arc<Vec<Bytes>>,
@@ -220,20 +234,8 @@ async fn closed(
                 let mut n = i;
                 while Instant::now() < end {
                     let sent = Instant::now();
-                    let c = match conn.take() {
-                        Some(c) => Ok(c),
-                        None => Conn::open(&target).await,
-                    };
-                    let outcome = match c {
-                        Ok(mut c) => {
-                            let o = c.post(&target, frames[n % frames.len()].clone()).await;
-                            if o.is_ok() {
-                                conn = Some(c);
-                            }
-                            o
-                        }
-                        Err(e) => Err(e),
-                    };
+                    let (kept, outcome) = post_on(conn.take(), &target, frames[n % frames.len()].clone()).await;
+                    conn = kept;
                     n += clients;
                     if sent >= window {
                         tally.lock().unwrap_or_else(|e| e.into_inner()).record(sent, outcome, Instant::now());
@@ -274,20 +276,10 @@ async fn open(
         handles.push(tokio::spawn(async move {
             let Ok(_slot) = slots.acquire().await else { return };
             let reuse = idle.lock().unwrap_or_else(|e| e.into_inner()).pop();
-            let conn = match reuse {
-                Some(c) => Ok(c),
-                None => Conn::open(&target).await,
-            };
-            let outcome = match conn {
-                Ok(mut c) => {
-                    let o = c.post(&target, frames[i as usize % frames.len()].clone()).await;
-                    if o.is_ok() {
-                        idle.lock().unwrap_or_else(|e| e.into_inner()).push(c);
-                    }
-                    o
-                }
-                Err(e) => Err(e),
-            };
+            let (kept, outcome) = post_on(reuse, &target, frames[i as usize % frames.len()].clone()).await;
+            if let Some(c) = kept {
+                idle.lock().unwrap_or_else(|e| e.into_inner()).push(c);
+            }
             if due >= window {
                 // Latency from when the frame was due, not from when a connection was free.
                 tally.lock().unwrap_or_else(|e| e.into_inner()).record(due, outcome, Instant::now());

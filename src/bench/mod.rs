@@ -4,11 +4,13 @@
 //! | file | part |
 //! |---|---|
 //! | [`load`] | the HTTP load generator: closed and open loop, every latency kept |
+//! | [`child`] | a `lineside serve` child process on a free loopback port |
 //! | [`engine`] | the engine alone, for the serving-overhead ratio |
 //! | [`report`] | percentiles, the table, the JSON and the SVG/HTML charts, the recommendation |
 //!
 //! The command itself (child server, sweep, grid) is in `cli/bench.rs`.
 
+pub mod child;
 pub mod engine;
 pub mod load;
 pub mod report;

@@ -6,7 +6,6 @@
 //! running server. The load generator runs on this process's main thread.
 
 use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Stdio};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
@@ -15,6 +14,7 @@ use axum::body::Bytes;
 
 use super::{ConfigArg, Outcome};
 use crate::batch::auto_lanes;
+use crate::bench::child::ChildServer;
 use crate::bench::load::{self, Mode, Target};
 use crate::bench::report::{self, EngineStep, GridPoint, Run, Settings, Step};
 use crate::bench::{Machine, cpu_seconds, engine, summarize};
@@ -99,61 +99,6 @@ fn parse_duration(s: &str) -> Result<Duration, String> {
         return Err(format!("{s:?}: expected 0 .. 24 h"));
     }
     Ok(Duration::from_secs_f64(secs))
-}
-
-/// A `lineside serve` child process; killed when dropped.
-struct ChildServer {
-    child: Child,
-    port: u16,
-}
-
-impl Drop for ChildServer {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-    }
-}
-
-impl ChildServer {
-    fn start(config: Option<&Path>, batching: &[String]) -> anyhow::Result<ChildServer> {
-        // A free port: bind, read, release (the child binds it a moment later).
-        let port = std::net::TcpListener::bind("127.0.0.1:0")?.local_addr()?.port();
-        let exe = std::env::current_exe().context("cannot find the lineside executable to start the server")?;
-        let mut cmd = Command::new(exe);
-        cmd.args(["--log-level", "warn", "serve", "--listen", &format!("127.0.0.1:{port}")]);
-        if let Some(c) = config {
-            cmd.arg("--config").arg(c);
-        }
-        cmd.args(batching).stdout(Stdio::null());
-        let child = cmd.spawn().context("cannot start `lineside serve`")?;
-        let mut server = ChildServer { child, port };
-        server.wait_ready()?;
-        Ok(server)
-    }
-
-    fn wait_ready(&mut self) -> anyhow::Result<()> {
-        let started = Instant::now();
-        while started.elapsed() < Duration::from_secs(180) {
-            if let Some(status) = self.child.try_wait()? {
-                anyhow::bail!("`lineside serve` exited with {status} before it was ready (its log is above)");
-            }
-            if let Ok(mut s) = std::net::TcpStream::connect(("127.0.0.1", self.port)) {
-                use std::io::{Read, Write};
-                let _ = s.set_read_timeout(Some(Duration::from_secs(2)));
-                let _ = s.write_all(b"GET /readyz HTTP/1.1\r\nHost: localhost\r\nConnection: close\r\n\r\n");
-                let mut head = [0u8; 12];
-                if s.read_exact(&mut head).is_ok() && &head[9..12] == b"200" {
-                    return Ok(());
-                }
-            }
-            std::thread::sleep(Duration::from_millis(100));
-        }
-        anyhow::bail!("`lineside serve` was not ready after 180 s (see /readyz)")
-    }
-
-    fn pid(&self) -> String {
-        self.child.id().to_string()
-    }
 }
 
 /// Frames to post: the given files and image files in the given folders, else the model's
@@ -262,11 +207,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
             Some(url) => (None, target_of(url, &model_name)?),
             None => {
                 let s = ChildServer::start(config_path, &[])?;
-                let t = Target {
-                    addr: ([127, 0, 0, 1], s.port).into(),
-                    host: format!("127.0.0.1:{}", s.port),
-                    path: format!("/classify/{model_name}"),
-                };
+                let t = s.target(&model_name);
                 (Some(s), t)
             }
         };
@@ -407,11 +348,7 @@ fn tune(
                     format!("--lane-threads={lane_threads}"),
                 ];
                 let server = ChildServer::start(config_path, &flags)?;
-                let target = Target {
-                    addr: ([127, 0, 0, 1], server.port).into(),
-                    host: format!("127.0.0.1:{}", server.port),
-                    path: format!("/classify/{model}"),
-                };
+                let target = server.target(model);
                 let mut steps = Vec::new();
                 for &c in &args.concurrency {
                     let s = measure(rt, &target, bodies, Mode::Closed(c), args, Some(&server), Some(settings.clone()));
