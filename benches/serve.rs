@@ -194,7 +194,7 @@ fn load(s: &ChildServer, model: &str, body: &[u8], conc: usize, secs: f64) -> Lo
                     let (client, url, body) = (client.clone(), url.clone(), body.to_vec());
                     tokio::spawn(async move {
                         let (mut lat, mut over, mut errors) = (Vec::new(), Vec::new(), 0u64);
-                        let (mut inf, mut prep) = (Vec::new(), Vec::new());
+                        let mut inf = Vec::new();
                         while Instant::now() < until {
                             let t = Instant::now();
                             match client.post(&url).body(body.clone()).send().await {
@@ -205,24 +205,22 @@ fn load(s: &ChildServer, model: &str, body: &[u8], conc: usize, secs: f64) -> Lo
                                     let f = |k: &str| tm[k].as_f64().unwrap_or(0.0);
                                     over.push(f("total") - f("infer") - f("decode") - f("preprocess"));
                                     inf.push(f("infer"));
-                                    prep.push(f("decode") + f("preprocess"));
                                 }
                                 _ => errors += 1,
                             }
                         }
-                        (lat, over, errors, inf, prep)
+                        (lat, over, errors, inf)
                     })
                 })
                 .collect();
             async move {
-                let mut all = (Vec::new(), Vec::new(), 0u64, Vec::new(), Vec::new());
+                let mut all = (Vec::new(), Vec::new(), 0u64, Vec::new());
                 for t in tasks {
-                    let (l, o, e, i, p) = t.await.unwrap();
+                    let (l, o, e, i) = t.await.unwrap();
                     all.0.extend(l);
                     all.1.extend(o);
                     all.2 += e;
                     all.3.extend(i);
-                    all.4.extend(p);
                 }
                 all
             }
@@ -230,7 +228,7 @@ fn load(s: &ChildServer, model: &str, body: &[u8], conc: usize, secs: f64) -> Lo
         run(Instant::now() + Duration::from_millis(500)).await; // warm connections and lanes
         let (srv0, cli0, t0) = (cpu_seconds(&pid), cpu_seconds("self"), Instant::now());
         let roles0 = cpu_by_role(&pid);
-        let (mut lat, mut over, errors, mut inf, mut prep) = run(Instant::now() + Duration::from_secs_f64(secs)).await;
+        let (mut lat, mut over, errors, mut inf) = run(Instant::now() + Duration::from_secs_f64(secs)).await;
         let wall = t0.elapsed().as_secs_f64();
         let (srv, cli) = (cpu_seconds(&pid) - srv0, cpu_seconds("self") - cli0);
         let roles: Vec<(String, f64)> = cpu_by_role(&pid)
@@ -241,7 +239,6 @@ fn load(s: &ChildServer, model: &str, body: &[u8], conc: usize, secs: f64) -> Lo
         lat.sort_by(f64::total_cmp);
         over.sort_by(f64::total_cmp);
         inf.sort_by(f64::total_cmp);
-        prep.sort_by(f64::total_cmp);
         let q = |v: &[f64], p: f64| if v.is_empty() { f64::NAN } else { v[((v.len() - 1) as f64 * p) as usize] };
         Load {
             rate: lat.len() as f64 / wall,

@@ -78,12 +78,14 @@ impl Samples {
     /// # Errors
     /// An unreadable folder.
     pub fn images_only(cfg: &SelftestConfig) -> anyhow::Result<Vec<(String, Vec<u8>)>> {
-        const IMAGE_EXTENSIONS: &[&str] = &["png", "jpg", "jpeg", "bmp", "tif", "tiff", "webp"];
-        let is_image = |n: &str| {
-            n.rsplit_once('.').is_some_and(|(_, ext)| IMAGE_EXTENSIONS.contains(&ext.to_ascii_lowercase().as_str()))
-        };
-        Ok(cfg.samples.read_dir()?.into_iter().filter(|(n, _)| is_image(n)).collect())
+        Ok(cfg.samples.read_dir()?.into_iter().filter(|(n, _)| is_image_name(n)).collect())
     }
+}
+
+/// Whether a file name has an image extension lineside decodes (case-insensitive).
+pub fn is_image_name(name: &str) -> bool {
+    const IMAGE_EXTENSIONS: &[&str] = &["png", "jpg", "jpeg", "bmp", "tif", "tiff", "webp"];
+    name.rsplit_once('.').is_some_and(|(_, ext)| IMAGE_EXTENSIONS.contains(&ext.to_ascii_lowercase().as_str()))
 }
 
 /// Classify one sample through the serving path: decode, preprocess, engine.

@@ -22,6 +22,16 @@ use serde::Serialize;
 /// within 1 part in 10^3 (the precision the `hdrhistogram` crate documents for this setting).
 pub const SIGNIFICANT_DIGITS: u8 = 3;
 
+/// An HDR histogram of latencies in microseconds (1 us .. 1 h; 0 is recorded as 1).
+fn histogram(samples_us: &[u64]) -> Histogram<u64> {
+    let mut h =
+        Histogram::<u64>::new_with_bounds(1, 3_600_000_000, SIGNIFICANT_DIGITS).expect("static bounds are valid");
+    for &v in samples_us {
+        h.saturating_record(v.max(1));
+    }
+    h
+}
+
 /// Latency percentiles of one step, in milliseconds.
 #[derive(Debug, Clone, Copy, Serialize, PartialEq)]
 pub struct Latency {
@@ -45,11 +55,7 @@ pub struct Latency {
 /// smallest recorded value with at least q of the samples at or below it (the inverted-CDF
 /// definition), reported as the upper edge of its histogram bucket.
 pub fn summarize(samples_us: &[u64]) -> Latency {
-    let mut h =
-        Histogram::<u64>::new_with_bounds(1, 3_600_000_000, SIGNIFICANT_DIGITS).expect("static bounds are valid");
-    for &v in samples_us {
-        h.saturating_record(v.max(1));
-    }
+    let h = histogram(samples_us);
     let ms = |v: u64| v as f64 / 1e3;
     if h.is_empty() {
         return Latency { count: 0, mean_ms: 0.0, p50_ms: 0.0, p90_ms: 0.0, p99_ms: 0.0, p999_ms: 0.0, max_ms: 0.0 };
@@ -67,11 +73,7 @@ pub fn summarize(samples_us: &[u64]) -> Latency {
 
 /// The latency at each of `quantiles`, in milliseconds (for the distribution chart).
 pub fn quantile_curve(samples_us: &[u64], quantiles: &[f64]) -> Vec<f64> {
-    let mut h =
-        Histogram::<u64>::new_with_bounds(1, 3_600_000_000, SIGNIFICANT_DIGITS).expect("static bounds are valid");
-    for &v in samples_us {
-        h.saturating_record(v.max(1));
-    }
+    let h = histogram(samples_us);
     quantiles.iter().map(|&q| h.value_at_quantile(q) as f64 / 1e3).collect()
 }
 

@@ -21,7 +21,7 @@ use crate::bench::{Machine, cpu_seconds, engine, summarize};
 use crate::config::{Config, Lanes, ModelConfig, Overrides};
 use crate::model::load as model_load;
 use crate::preprocess::Pipeline;
-use crate::selftest::Samples;
+use crate::selftest::{self, Samples};
 
 /// Arguments of `lineside bench`.
 #[derive(Debug, clap::Args)]
@@ -104,10 +104,7 @@ fn parse_duration(s: &str) -> Result<Duration, String> {
 /// Frames to post: the given files and image files in the given folders, else the model's
 /// self-test samples.
 fn frames(args: &BenchArgs, model: Option<&ModelConfig>) -> anyhow::Result<Vec<(String, Vec<u8>)>> {
-    const IMAGE_EXTENSIONS: &[&str] = &["png", "jpg", "jpeg", "bmp", "tif", "tiff", "webp"];
-    let is_image = |p: &Path| {
-        p.extension().is_some_and(|e| IMAGE_EXTENSIONS.contains(&e.to_string_lossy().to_ascii_lowercase().as_str()))
-    };
+    let is_image = |p: &Path| p.file_name().is_some_and(|n| selftest::is_image_name(&n.to_string_lossy()));
     let mut out = Vec::new();
     for p in &args.images {
         if p.is_dir() {
