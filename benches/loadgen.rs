@@ -106,8 +106,16 @@ fn main() {
         Lanes::Auto => lineside::batch::auto_lanes(m.batching.lane_threads),
         Lanes::Fixed(n) => n,
     };
-    let e =
-        engine::run(&model, &tensors, lanes, m.batching.lane_threads, Duration::from_millis(500), duration).unwrap();
+    let e = engine::run(
+        &model,
+        &tensors,
+        lanes,
+        m.batching.lane_threads,
+        m.batching.batch_cap,
+        Duration::from_millis(500),
+        duration,
+    )
+    .unwrap();
 
     println!("lineside load generator benchmark ({secs} s per step; loopback; this machine only)");
     println!(

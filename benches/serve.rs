@@ -112,7 +112,7 @@ fn raw_engine(b: &Bundle, lanes: usize, threads: usize, secs: f64) -> f64 {
     let cfg = Config::from_file(&b.config, &Overrides::default()).unwrap();
     let model = Arc::new(load::load(&cfg.models[0]).unwrap());
     let warm = Duration::from_millis(500);
-    engine::run(&model, std::slice::from_ref(&b.tensor), lanes, threads, warm, Duration::from_secs_f64(secs))
+    engine::run(&model, std::slice::from_ref(&b.tensor), lanes, threads, 8, warm, Duration::from_secs_f64(secs))
         .unwrap()
         .throughput()
 }

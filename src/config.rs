@@ -13,6 +13,8 @@ use std::time::Duration;
 
 use serde::Deserialize;
 
+use crate::model::EngineKind;
+
 /// The documented example config, which is also the built-in default.
 const BUILTIN_TOML: &str = include_str!("../config/lineside.toml");
 
@@ -179,6 +181,11 @@ pub struct ModelConfig {
     pub scores: ScoresMode,
     /// Answers whose top score is below this are marked `"confident": false` and counted.
     pub min_score: Option<f32>,
+    /// The engine that runs the model (`engine`, default tract).
+    pub engine: EngineKind,
+    /// The onnxruntime shared library (`[onnxruntime] library`); `None`: the environment
+    /// variable `ORT_DYLIB_PATH`, else the system's `libonnxruntime.so`.
+    pub onnxruntime_library: Option<PathBuf>,
 }
 
 /// How a model's outputs become scores (`[[models]] scores`).
@@ -362,6 +369,13 @@ struct RawConfig {
     server: RawServer,
     #[serde(default)]
     models: Vec<RawModel>,
+    onnxruntime: Option<RawOnnxruntime>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawOnnxruntime {
+    library: Option<PathBuf>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -393,6 +407,7 @@ struct RawModel {
     #[serde(default = "default_scores")]
     scores: ScoresMode,
     min_score: Option<f32>,
+    engine: Option<EngineKind>,
 }
 
 fn default_scores() -> ScoresMode {
@@ -513,6 +528,8 @@ pub struct Overrides {
     /// `--batch-cap`, `--gather-us`, `--lanes`, `--lane-threads`: every model's
     /// `[models.batching]` key of that name (for trials and `lineside bench --tune`).
     pub batching: BatchingOverrides,
+    /// `--engine`: every model's `engine`.
+    pub engine: Option<EngineKind>,
 }
 
 /// Batching keys set from the command line for every model; checked like the file's.
@@ -673,6 +690,10 @@ fn validate(
     if raw.models.is_empty() {
         return Err("no [[models]] table: add at least one model (see config/lineside.toml)".into());
     }
+    let onnxruntime_library = raw.onnxruntime.and_then(|o| o.library).map(|p| match resolve(&p) {
+        Source::File(resolved) => resolved,
+        _ => p,
+    });
     let mut models: Vec<ModelConfig> = Vec::new();
     for (i, m) in raw.models.into_iter().enumerate() {
         let ctx = format!("[[models]] #{} ({:?})", i + 1, m.name);
@@ -687,6 +708,15 @@ fn validate(
             return Err(format!("{ctx}: min_score = {v}: expected a score 0 ..= 1"));
         }
         let min_score = m.min_score;
+        let engine = overrides.engine.or(m.engine).unwrap_or_default();
+        if !engine.built() {
+            return Err(format!(
+                "{ctx}: engine = {:?}: this lineside was built without it; rebuild with \
+                 `cargo build --release --features {}`, or set engine = \"tract\"",
+                engine.name(),
+                engine.name()
+            ));
+        }
         let mut raw_batching = m.batching;
         overrides.batching.apply(&mut raw_batching);
         let batching = validate_batching(raw_batching).map_err(|e| format!("{ctx}: {e}"))?;
@@ -709,6 +739,8 @@ fn validate(
             selftest,
             scores: m.scores,
             min_score,
+            engine,
+            onnxruntime_library: onnxruntime_library.clone(),
         });
     }
     Ok(Config { origin: origin.to_string(), server, models })
@@ -745,6 +777,8 @@ impl ModelConfig {
             selftest: None,
             scores: ScoresMode::Auto,
             min_score: None,
+            engine: EngineKind::Tract,
+            onnxruntime_library: None,
         }
     }
 }

@@ -230,7 +230,7 @@ fn load_all(config: &Config, metrics: &Metrics, fault: &FaultPlan) -> anyhow::Re
             load_ms = model.load_time.as_millis() as u64,
             "model loaded"
         );
-        let mm = metrics.for_model(&mc.name, &model.version, "tract", &model.labels);
+        let mm = metrics.for_model(&mc.name, &model.version, model.engine().name(), &model.labels);
         let (batcher, guard) = Batcher::start(Arc::clone(&model), &mc.batching, mm.clone(), fault.clone())?;
         let pipeline = Pipeline::new(mc.preprocess.clone(), &model.contract, config.server.max_pixels);
         let mut selftest = None;

@@ -227,7 +227,7 @@ impl Batcher {
             Lanes::Auto => auto_lanes(cfg.lane_threads),
             Lanes::Fixed(n) => n,
         };
-        let gather = Gather { cap: cfg.batch_cap, window: cfg.gather, stacks: false };
+        let gather = Gather { cap: cfg.batch_cap, window: cfg.gather, stacks: model.stacks() };
         let busy = Arc::new(BusyClock::new(lanes));
         let closed = Arc::new(AtomicBool::new(false));
         for i in 0..lanes {

@@ -1,6 +1,7 @@
 //! One inference lane: an OS thread that forms passes from the model's backlog and runs them.
 //!
-//! A lane owns one engine state ([`Runner`]) over the model's shared plan. It blocks on the
+//! A lane owns one engine state ([`Runner`]) over the model's shared plan, with the lane's
+//! thread count. It blocks on the
 //! backlog and the stop channel; a job arriving starts a pass, which takes what is already
 //! queued (and, for stacking engines, waits up to the gathering window) before running. Jobs
 //! past their deadline or whose client has gone are answered or dropped without running. An
@@ -13,7 +14,6 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::Instant;
 
 use crossbeam_channel::{Receiver, RecvTimeoutError, TryRecvError, select};
-use tract_linalg::multithread::{Executor, multithread_tract_scope};
 
 use super::{BatchError, BusyClock, FaultPlan, Gather, Job, Scored};
 use crate::metrics::ModelMetrics;
@@ -39,9 +39,8 @@ pub struct Lane {
     runner: Runner,
     ends: LaneEnds,
     gather: Gather,
-    /// The lane's own thread pool for `lane_threads > 1`; `SingleThread` otherwise. (Never
-    /// `Executor::multithread(1)`: that uses rayon's global pool, i.e. every core.)
-    executor: Executor,
+    /// Threads of the lane's engine state (`lane_threads`), kept for a restart.
+    threads: usize,
     metrics: ModelMetrics,
     fault: FaultPlan,
 }
@@ -59,18 +58,12 @@ impl Lane {
         metrics: ModelMetrics,
         fault: FaultPlan,
     ) -> anyhow::Result<Lane> {
-        let runner = model.runner()?;
-        let executor = lane_executor(&model.name, ends.index, threads)?;
-        Ok(Lane { model, runner, ends, gather, executor, metrics, fault })
+        let runner = model.runner_with_threads(threads)?;
+        Ok(Lane { model, runner, ends, gather, threads, metrics, fault })
     }
 
     /// Serve until the stop channel closes, then answer what is left and return.
-    pub fn run(self) {
-        // The plan has no executor of its own, so tract uses this thread's.
-        multithread_tract_scope(self.executor.clone(), || self.serve());
-    }
-
-    fn serve(mut self) {
+    pub fn run(mut self) {
         loop {
             // Stop before taking more work once closed (select! picks among ready arms at random).
             if self.ends.closed.load(Ordering::SeqCst) {
@@ -143,6 +136,10 @@ impl Lane {
             return;
         }
         self.metrics.pass_size.observe(size as f64);
+        if self.runner.stacks() {
+            self.run_stacked(pass, started);
+            return;
+        }
         let mut last = None;
         for (i, job) in pass.into_iter().enumerate() {
             // Runs are consecutive: a later job may expire, or its client go, meanwhile.
@@ -165,19 +162,44 @@ impl Lane {
         }
     }
 
-    fn run_one(&mut self, job: &Job, started: Instant, size: usize) -> Result<Scored, BatchError> {
-        let t = Instant::now();
+    /// Run the admitted pass as one stacked tensor (engines that stack): every job gets the
+    /// pass's time as its inference time, and one failure fails the pass.
+    fn run_stacked(&mut self, pass: Vec<Job>, started: Instant) {
+        let size = pass.len();
+        let now = Instant::now();
+        for job in &pass {
+            self.metrics.backlog_wait.observe((now - job.enqueued).as_secs_f64());
+        }
         let fault = &self.fault;
         std::thread::sleep(fault.stall());
+        let runner = &mut self.runner;
         let result = catch_unwind(AssertUnwindSafe(|| {
             if fault.fire() {
                 panic!("injected fault (FaultPlan)");
             }
-            self.runner.run(&job.tensor)
+            let inputs: Vec<&[f32]> = pass.iter().map(|j| j.tensor.as_slice()).collect();
+            runner.run_pass(&inputs)
         }));
-        let infer = t.elapsed();
+        let infer = now.elapsed();
+        self.metrics.inference_duration.observe(started.elapsed().as_secs_f64());
+        match self.outcome(result) {
+            Ok(all) => {
+                for (job, scores) in pass.into_iter().zip(all) {
+                    let _ = job.reply.send(Ok(Scored { scores, wait: started - job.enqueued, infer, pass_size: size }));
+                }
+            }
+            Err(e) => {
+                for job in pass {
+                    let _ = job.reply.send(Err(e.clone()));
+                }
+            }
+        }
+    }
+
+    /// Count and log a failed run, replacing the engine state after a panic.
+    fn outcome<T>(&mut self, result: std::thread::Result<Result<T, crate::model::RunError>>) -> Result<T, BatchError> {
         match result {
-            Ok(Ok(scores)) => Ok(Scored { scores, wait: started - job.enqueued, infer, pass_size: size }),
+            Ok(Ok(v)) => Ok(v),
             Ok(Err(e)) => {
                 self.metrics.lane_failures.inc();
                 tracing::error!(model = %self.model.name, cause = %e, "inference failed");
@@ -192,8 +214,22 @@ impl Lane {
         }
     }
 
+    fn run_one(&mut self, job: &Job, started: Instant, size: usize) -> Result<Scored, BatchError> {
+        let t = Instant::now();
+        let fault = &self.fault;
+        std::thread::sleep(fault.stall());
+        let result = catch_unwind(AssertUnwindSafe(|| {
+            if fault.fire() {
+                panic!("injected fault (FaultPlan)");
+            }
+            self.runner.run(&job.tensor)
+        }));
+        let infer = t.elapsed();
+        self.outcome(result).map(|scores| Scored { scores, wait: started - job.enqueued, infer, pass_size: size })
+    }
+
     fn replace_runner(&mut self) {
-        match self.model.runner() {
+        match self.model.runner_with_threads(self.threads) {
             Ok(r) => {
                 self.runner = r;
                 self.metrics.lane_restarts.inc();
@@ -204,19 +240,4 @@ impl Lane {
             }
         }
     }
-}
-
-/// The executor for a lane of `threads` threads: tract's default single-threaded one for 1,
-/// else a private rayon pool of `threads` threads named after the lane.
-///
-/// # Errors
-/// When the pool's threads cannot be started.
-pub fn lane_executor(model: &str, lane: usize, threads: usize) -> anyhow::Result<Executor> {
-    if threads <= 1 {
-        return Ok(Executor::SingleThread);
-    }
-    // tract panics when the pool cannot be built; at start-up that is an error, not a crash.
-    let name = format!("lane-{model}-{lane}");
-    catch_unwind(|| Executor::multithread_with_name(threads, &name))
-        .map_err(|_| anyhow::anyhow!("cannot start {threads} inference threads for lane {name}"))
 }

@@ -5,9 +5,6 @@ use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
-use tract_linalg::multithread::multithread_tract_scope;
-
-use crate::batch::worker::lane_executor;
 use crate::model::Model;
 
 /// What the engine did in the measured window.
@@ -27,7 +24,8 @@ impl EngineRun {
 }
 
 /// Run `lanes` lanes of `threads` threads, each cycling through `tensors`, for `warmup`
-/// (not recorded) and then `duration`.
+/// (not recorded) and then `duration`. An engine that stacks runs passes of `pass` images
+/// (every image of a pass is recorded with the pass's time); others run image by image.
 ///
 /// # Errors
 /// When an engine state or a lane's thread pool cannot be made, or a run fails.
@@ -36,6 +34,7 @@ pub fn run(
     tensors: &[Vec<f32>],
     lanes: usize,
     threads: usize,
+    pass: usize,
     warmup: Duration,
     duration: Duration,
 ) -> anyhow::Result<EngineRun> {
@@ -47,23 +46,22 @@ pub fn run(
     let handles: Vec<_> = (0..lanes)
         .map(|i| {
             let (model, stop, tensors) = (Arc::clone(model), Arc::clone(&stop), tensors.to_vec());
-            let executor = lane_executor(&model.name, i, threads);
             std::thread::Builder::new().name(format!("bench-engine-{i}")).spawn(move || -> anyhow::Result<Vec<u64>> {
-                let mut runner = model.runner()?;
+                let mut runner = model.runner_with_threads(threads)?;
                 let mut samples = Vec::new();
-                multithread_tract_scope(executor?, || {
-                    let mut n = i;
-                    while !stop.load(Ordering::Relaxed) {
-                        let t = Instant::now();
-                        std::hint::black_box(runner.run(&tensors[n % tensors.len()])?);
-                        let done = Instant::now();
-                        if t >= window && done <= window_end {
-                            samples.push((done - t).as_micros() as u64);
-                        }
-                        n += 1;
+                let size = if runner.stacks() { pass.max(1) } else { 1 };
+                let mut n = i;
+                while !stop.load(Ordering::Relaxed) {
+                    let inputs: Vec<&[f32]> = (n..n + size).map(|k| tensors[k % tensors.len()].as_slice()).collect();
+                    let t = Instant::now();
+                    std::hint::black_box(runner.run_pass(&inputs)?);
+                    let done = Instant::now();
+                    if t >= window && done <= window_end {
+                        samples.extend(std::iter::repeat_n((done - t).as_micros() as u64, size));
                     }
-                    Ok(samples)
-                })
+                    n += size;
+                }
+                Ok(samples)
             })
         })
         .collect::<Result<_, _>>()?;

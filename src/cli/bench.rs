@@ -19,7 +19,7 @@ use crate::bench::load::{self, Mode, Target};
 use crate::bench::report::{self, EngineStep, GridPoint, Run, Settings, Step};
 use crate::bench::{Machine, cpu_seconds, engine, summarize};
 use crate::config::{Config, Lanes, ModelConfig, Overrides};
-use crate::model::load as model_load;
+use crate::model::{EngineKind, load as model_load};
 use crate::preprocess::Pipeline;
 use crate::selftest::{self, Samples};
 
@@ -58,6 +58,10 @@ pub struct BenchArgs {
     /// Run the model through its engine only (no HTTP, no decoding): images per second.
     #[arg(long, conflicts_with_all = ["url", "rate"])]
     pub engine_only: bool,
+    /// Engine for the model, overriding its `engine` key (tract, or onnxruntime in a build
+    /// with that feature); passed on to the server lineside bench starts.
+    #[arg(long, value_name = "NAME", conflicts_with = "url")]
+    pub engine: Option<EngineKind>,
     /// Measured time per step (e.g. 10s, 500ms).
     #[arg(long, value_name = "TIME", value_parser = parse_duration, default_value = "10s")]
     pub duration: Duration,
@@ -160,7 +164,9 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
         "--concurrency {:?}: expected numbers 1 ..= 4096",
         args.concurrency
     );
-    let config = Config::load(args.config.config.as_deref(), &Overrides::default())?;
+    let overrides = Overrides { engine: args.engine, ..Overrides::default() };
+    let config = Config::load(args.config.config.as_deref(), &overrides)?;
+    let engine_flags: Vec<String> = args.engine.iter().map(|e| format!("--engine={}", e.name())).collect();
     let model_cfg = match &args.model {
         Some(name) => config.models.iter().find(|m| &m.name == name),
         None => config.models.first(),
@@ -203,7 +209,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
         let (server, target) = match &args.url {
             Some(url) => (None, target_of(url, &model_name)?),
             None => {
-                let s = ChildServer::start(config_path, &[])?;
+                let s = ChildServer::start(config_path, &engine_flags)?;
                 let t = s.target(&model_name);
                 (Some(s), t)
             }
@@ -338,12 +344,13 @@ fn tune(
             for gather_us in [0u64, 2000] {
                 let settings = Settings { batch_cap, gather_us, lanes, lane_threads };
                 eprintln!("tuning: {settings}");
-                let flags = [
+                let mut flags = vec![
                     format!("--batch-cap={batch_cap}"),
                     format!("--gather-us={gather_us}"),
                     format!("--lanes={lanes}"),
                     format!("--lane-threads={lane_threads}"),
                 ];
+                flags.extend(args.engine.map(|e| format!("--engine={}", e.name())));
                 let server = ChildServer::start(config_path, &flags)?;
                 let target = server.target(model);
                 let mut steps = Vec::new();
@@ -382,7 +389,7 @@ fn engine_step(m: &ModelConfig, frames: &[(String, Vec<u8>)], args: &BenchArgs) 
         Lanes::Fixed(n) => n,
     };
     eprintln!("engine alone: {lanes} lane(s) x {lane_threads} thread(s) for {:?}", args.duration);
-    let r = engine::run(&model, &tensors, lanes, lane_threads, args.warmup, args.duration)?;
+    let r = engine::run(&model, &tensors, lanes, lane_threads, m.batching.batch_cap, args.warmup, args.duration)?;
     Ok(EngineStep { lanes, lane_threads, throughput: r.throughput(), latency: summarize(&r.samples_us) })
 }
 

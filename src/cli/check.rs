@@ -16,7 +16,7 @@ use anyhow::Context as _;
 
 use crate::config::{Channels, Config, ModelConfig, Overrides, Source};
 use crate::model::report::Report;
-use crate::model::{BatchAxis, Contract, InputType, Model, ScoreTransform, load};
+use crate::model::{BatchAxis, Contract, EngineKind, InputType, Model, ScoreTransform, load};
 use crate::preprocess::Pipeline;
 use crate::selftest;
 
@@ -48,6 +48,10 @@ pub struct CheckArgs {
     /// scores), to refresh a retrained model's bundle deliberately.
     #[arg(long, conflicts_with = "onnx")]
     pub write_expected: bool,
+    /// Engine for every model checked, overriding its `engine` key: tract, or onnxruntime in
+    /// a build with that feature.
+    #[arg(long, value_name = "NAME")]
+    pub engine: Option<EngineKind>,
 }
 
 /// One model's findings.
@@ -72,6 +76,10 @@ pub struct Details {
     pub file: String,
     /// SHA-256 prefix of the file.
     pub version: String,
+    /// The engine that runs it.
+    pub engine: EngineKind,
+    /// Whether the engine stacks a formed pass into one tensor (else runs it image by image).
+    pub stacked_passes: bool,
     /// Class names in output order.
     pub labels: Vec<String>,
     /// Input/output contract.
@@ -104,10 +112,21 @@ pub fn run(args: CheckArgs) -> anyhow::Result<Outcome> {
                 "bgr" => Channels::Bgr,
                 _ => Channels::Rgb,
             };
-            (path.display().to_string(), vec![ModelConfig::bare(path.clone(), args.width, args.height, channels)])
+            let mut mc = ModelConfig::bare(path.clone(), args.width, args.height, channels);
+            if let Some(engine) = args.engine {
+                anyhow::ensure!(
+                    engine.built(),
+                    "--engine {}: this lineside was built without it (cargo build --release --features {})",
+                    engine.name(),
+                    engine.name()
+                );
+                mc.engine = engine;
+            }
+            (path.display().to_string(), vec![mc])
         }
         None => {
-            let config = Config::load(args.config.config.as_deref(), &Overrides::default())?;
+            let overrides = Overrides { engine: args.engine, ..Overrides::default() };
+            let config = Config::load(args.config.config.as_deref(), &overrides)?;
             let models = match &args.model {
                 Some(name) => vec![config.named(name)?.clone()],
                 None => config.models.clone(),
@@ -179,6 +198,8 @@ fn check_one(mc: &ModelConfig) -> ModelCheck {
                 details: Some(Details {
                     file: model.file.clone(),
                     version: model.version.clone(),
+                    engine: model.engine(),
+                    stacked_passes: model.stacks(),
                     labels: model.labels.clone(),
                     contract: model.contract.clone(),
                     report,
@@ -201,17 +222,16 @@ fn ms(d: Duration) -> f64 {
     d.as_secs_f64() * 1e3
 }
 
-/// Median over `repeats` of running `images` consecutive single-image inferences (how a lane
-/// runs a pass), after the warm-up `load` already did.
+/// Median over `repeats` of running a pass of `images` images as a lane runs it (stacked or
+/// image by image, as the engine says), after the warm-up `load` already did.
 fn time_runs(model: &Model, images: usize, repeats: usize) -> Option<Duration> {
     let mut runner = model.runner().ok()?;
     let input = vec![0.5f32; model.input_len()];
+    let pass = vec![input.as_slice(); images];
     let mut times = Vec::with_capacity(repeats);
     for _ in 0..repeats {
         let t = Instant::now();
-        for _ in 0..images {
-            runner.run(&input).ok()?;
-        }
+        runner.run_pass(&pass).ok()?;
         times.push(t.elapsed());
     }
     times.sort();
@@ -315,6 +335,12 @@ pub fn render(c: &ModelCheck) -> String {
         100.0 * r.fc_share(),
         r.model_bytes as f64 / 1e6
     );
+    let _ = writeln!(
+        s,
+        "  engine      {} ({})",
+        d.engine.name(),
+        if d.stacked_passes { "passes stacked into one tensor" } else { "passes run image by image" }
+    );
     let _ = writeln!(s, "  load        {:.0} ms (parse, check, plan, warm)", d.load_ms);
     match &d.selftest {
         None => {
@@ -334,8 +360,9 @@ pub fn render(c: &ModelCheck) -> String {
         (Some(one), Some(pass)) => {
             let _ = writeln!(
                 s,
-                "  inference   {one:.3} ms for one image; {pass:.3} ms per image in a pass of {} (one thread, this machine)",
-                d.pass_size
+                "  inference   {one:.3} ms for one image; {pass:.3} ms per image in a pass of {} {} (one thread, this machine)",
+                d.pass_size,
+                if d.stacked_passes { "stacked" } else { "run image by image" }
             );
         }
         _ => {

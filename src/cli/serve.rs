@@ -4,6 +4,7 @@ use anyhow::Context as _;
 
 use super::{ConfigArg, Outcome};
 use crate::config::{BatchingOverrides, Config, Overrides};
+use crate::model::EngineKind;
 
 /// Arguments of `lineside serve`.
 #[derive(Debug, clap::Args)]
@@ -18,6 +19,10 @@ pub struct ServeArgs {
     /// bench --tune` uses them).
     #[command(flatten)]
     pub batching: BatchingArgs,
+    /// Engine for every model, overriding each model's `engine`: tract, or onnxruntime in a
+    /// build with that feature.
+    #[arg(long, value_name = "NAME")]
+    pub engine: Option<EngineKind>,
 }
 
 /// `[models.batching]` keys as flags.
@@ -56,7 +61,7 @@ impl BatchingArgs {
 pub fn run(args: ServeArgs) -> anyhow::Result<Outcome> {
     let config = Config::load(
         args.config.config.as_deref(),
-        &Overrides { listen: args.listen, batching: args.batching.overrides() },
+        &Overrides { listen: args.listen, batching: args.batching.overrides(), engine: args.engine },
     )?;
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()

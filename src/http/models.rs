@@ -15,7 +15,8 @@ fn describe(m: &ServedModel) -> Value {
     json!({
         "name": m.model.name,
         "version": m.model.version,
-        "engine": "tract",
+        "engine": m.model.engine().name(),
+        "stacked_passes": m.model.stacks(),
         "file": m.model.file,
         "load_ms": (m.model.load_time.as_secs_f64() * 1e3 * 1e3).round() / 1e3,
         "input": {

@@ -1,8 +1,9 @@
-//! Loading: read the ONNX file, check its contract, build the concrete plan, warm it.
+//! Loading: read the ONNX file, check its contract, have the configured engine plan it, warm it.
 //!
-//! Follows tract's pipeline: load, type and declutter (to read the contract), fix the input
-//! fact to a concrete batch-1 shape, optimise, make runnable. A symbolic-batch plan ran
-//! MobileNetV2 5x slower than a concrete one here (FACTS.md), so lineside never runs one.
+//! The contract is read with tract's pipeline (load, type and declutter) whatever the engine,
+//! so both engines serve exactly the same contract; then tract plans a concrete batch-1 shape
+//! (a symbolic-batch plan ran MobileNetV2 5x slower here, FACTS.md), or onnxruntime builds a
+//! session per lane from the same bytes.
 
 use std::sync::Arc;
 use std::time::Instant;
@@ -11,8 +12,10 @@ use anyhow::Context as _;
 use sha2::{Digest, Sha256};
 use tract_onnx::prelude::*;
 
+use super::engine::{EngineKind, Planned};
 use super::report::{self, Report};
-use super::{InputType, Model, check, labels};
+use super::tract::{TractPlan, input_fact};
+use super::{Model, check, labels};
 use crate::config::ModelConfig;
 
 /// Load, check, plan and warm one model.
@@ -40,6 +43,7 @@ struct Opened {
     version: String,
     bytes_len: u64,
     labels: Option<Vec<String>>,
+    bytes: Vec<u8>,
     proto: tract_onnx::pb::ModelProto,
     inference: InferenceModel,
     contract: super::Contract,
@@ -65,7 +69,7 @@ fn open(cfg: &ModelConfig) -> anyhow::Result<Opened> {
         .with_context(|| format!("{file}: tract cannot type this graph (an unsupported operator or shape)"))?;
     let contract = check::contract(&typed, &file, &cfg.preprocess, labels.as_ref().map(Vec::len), cfg.scores)
         .map_err(anyhow::Error::msg)?;
-    Ok(Opened { file, version, bytes_len: bytes.len() as u64, labels, proto, inference, contract })
+    Ok(Opened { file, version, bytes_len: bytes.len() as u64, bytes, labels, proto, inference, contract })
 }
 
 /// Read and check a model's contract without planning it (what `lineside preprocess` needs).
@@ -78,7 +82,7 @@ pub fn contract(cfg: &ModelConfig) -> anyhow::Result<super::Contract> {
 
 fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Option<Report>)> {
     let start = Instant::now();
-    let Opened { file, version, bytes_len, labels, proto, inference, contract } = open(cfg)?;
+    let Opened { file, version, bytes_len, bytes, labels, proto, inference, contract } = open(cfg)?;
     // Without a labels file (`lineside check model.onnx`), classes are named by index.
     let labels = labels.unwrap_or_else(|| (0..contract.classes).map(|i| i.to_string()).collect());
 
@@ -93,21 +97,12 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
     } else {
         None
     };
-    let plan = inference
-        .with_input_fact(0, input_fact(contract.input_type, shape))
-        .and_then(|m| m.into_optimized())
-        .and_then(|m| m.into_runnable())
-        .with_context(|| format!("{file}: tract cannot plan the graph for input shape {shape:?}"))?;
-
-    let mut model = Model {
-        name: cfg.name.clone(),
-        version,
-        labels,
-        contract,
-        file,
-        load_time: start.elapsed(),
-        plan: Arc::clone(&plan),
+    let plan: Arc<dyn Planned> = match cfg.engine {
+        EngineKind::Tract => Arc::new(TractPlan::build(inference, contract.input_type, shape, &file)?),
+        EngineKind::Onnxruntime => onnxruntime_plan(cfg, &bytes, &contract, &file)?,
     };
+
+    let mut model = Model { name: cfg.name.clone(), version, labels, contract, file, load_time: start.elapsed(), plan };
     // Warm the plan once (first runs allocate scratch space) and prove it runs.
     let zeros = vec![0.0f32; model.input_len()];
     model
@@ -126,47 +121,46 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
     Ok((model, report))
 }
 
-/// Time a stacked pass: `batch` images in one tensor on a concrete plan for that size, which
-/// lineside does not serve with (tract is slower per image stacked) but `check` reports so
-/// the choice can be re-measured on each box. Median of 5 runs after one warm-up, per image.
-/// `None` when the model fixes its batch at 1.
+/// Time a stacked pass on tract: `batch` images in one tensor on a concrete plan for that
+/// size, which lineside does not serve with on tract but `check` reports so the choice can be
+/// re-measured on each box; per image. `None` when the model fixes its batch at 1 or the
+/// model's engine stacks anyway (its served passes are already stacked).
 ///
 /// # Errors
 /// When tract cannot plan or run the stacked shape.
 pub fn time_stacked(cfg: &ModelConfig, model: &Model, batch: usize) -> anyhow::Result<Option<std::time::Duration>> {
-    if model.contract.batch == super::BatchAxis::Fixed(1) || batch < 2 {
+    if model.contract.batch == super::BatchAxis::Fixed(1) || batch < 2 || model.stacks() {
         return Ok(None);
     }
     let c = &model.contract;
-    let shape = c.input_shape(batch);
     let bytes = cfg.onnx.read()?;
-    let plan = tract_onnx::onnx()
-        .model_for_read(&mut &bytes[..])
-        .and_then(|m| m.with_input_fact(0, input_fact(c.input_type, shape)))
-        .and_then(|m| m.into_optimized())
-        .and_then(|m| m.into_runnable())
-        .with_context(|| format!("{}: tract cannot plan a stacked batch of {batch}", model.file))?;
-    let mut state = plan.spawn()?;
-    let input: Tensor = match c.input_type {
-        InputType::Float32 => Tensor::from_shape(&shape, &vec![0.5f32; shape.iter().product()])?,
-        InputType::Uint8 => Tensor::from_shape(&shape, &vec![128u8; shape.iter().product()])?,
-    };
-    state.run(tvec![input.clone().into()])?;
-    let mut times = Vec::new();
-    for _ in 0..5 {
-        let t = Instant::now();
-        state.run(tvec![input.clone().into()])?;
-        times.push(t.elapsed());
-    }
-    times.sort();
-    Ok(Some(times[2] / batch as u32))
+    super::tract::time_stacked(&bytes, c.input_type, c.input_shape(batch), &model.file)
+        .with_context(|| format!("{}: tract cannot run a stacked batch of {batch}", model.file))
+        .map(Some)
 }
 
-fn input_fact(t: InputType, shape: [usize; 4]) -> InferenceFact {
-    match t {
-        InputType::Float32 => f32::fact(shape).into(),
-        InputType::Uint8 => u8::fact(shape).into(),
-    }
+#[cfg(feature = "onnxruntime")]
+fn onnxruntime_plan(
+    cfg: &ModelConfig,
+    bytes: &[u8],
+    contract: &super::Contract,
+    file: &str,
+) -> anyhow::Result<Arc<dyn Planned>> {
+    Ok(Arc::new(super::onnxruntime::OrtPlan::build(bytes, contract, cfg.onnxruntime_library.as_deref(), file)?))
+}
+
+#[cfg(not(feature = "onnxruntime"))]
+fn onnxruntime_plan(
+    cfg: &ModelConfig,
+    _bytes: &[u8],
+    _contract: &super::Contract,
+    file: &str,
+) -> anyhow::Result<Arc<dyn Planned>> {
+    anyhow::bail!(
+        "{file}: model {:?} asks for engine = \"onnxruntime\", but this lineside was built without it; \
+         rebuild with `cargo build --release --features onnxruntime`, or set engine = \"tract\"",
+        cfg.name
+    )
 }
 
 /// First 12 hex digits of the SHA-256 of `bytes`.

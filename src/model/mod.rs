@@ -1,23 +1,27 @@
-//! The model: an ONNX classifier loaded once, checked against its config, planned for
-//! concrete shapes, and run by one [`Runner`] per inference lane.
+//! The model: an ONNX classifier loaded once, checked against its config, planned by its
+//! engine, and run by one [`Runner`] per inference lane.
 //!
-//! tract types stay inside this folder (tract calls its internal crates "not stable
+//! Engine types stay inside this folder (tract calls its internal crates "not stable
 //! surface"). [`load::load`] reads the file, [`check`] derives the input/output
-//! [`Contract`] and refuses what lineside cannot serve, and the result is one [`Model`]
-//! shared through an `Arc`. Each lane calls [`Model::runner`] once for its own engine state
-//! over the shared plan.
+//! [`Contract`] (with tract's ONNX front end, whatever the engine) and refuses what lineside
+//! cannot serve, the configured engine ([`engine`]: [`tract`], or `onnxruntime` when built)
+//! plans it, and the result is one [`Model`] shared through an `Arc`. Each lane calls
+//! [`Model::runner_with_threads`] once for its own engine state over the shared plan.
 
 pub mod check;
+pub mod engine;
 pub mod labels;
 pub mod load;
+#[cfg(feature = "onnxruntime")]
+pub mod onnxruntime;
 pub mod report;
+pub mod tract;
 
 use std::sync::Arc;
 use std::time::Duration;
 
-use tract_onnx::prelude::*;
-
 pub use check::{BatchAxis, Contract, InputType, ScoreTransform};
+pub use engine::{EngineKind, EngineState, Input, Planned};
 
 /// A loaded, checked and planned model, shared by every lane that serves it.
 pub struct Model {
@@ -33,24 +37,28 @@ pub struct Model {
     pub file: String,
     /// Time to load, check, plan and warm the model.
     pub load_time: Duration,
-    /// Concrete batch-1 plan. Formed passes run as consecutive batch-1 runs on it: tract is
-    /// slower per image on stacked batches (FACTS.md: a 96x96 CNN 346 img/s at b1 vs 252 at b8).
-    plan: Arc<TypedRunnableModel>,
+    /// The engine's plan (one per model; each lane spawns its own state from it).
+    plan: Arc<dyn Planned>,
 }
 
 impl std::fmt::Debug for Model {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.debug_struct("Model").field("name", &self.name).field("version", &self.version).finish_non_exhaustive()
+        f.debug_struct("Model")
+            .field("name", &self.name)
+            .field("version", &self.version)
+            .field("engine", &self.engine().name())
+            .finish_non_exhaustive()
     }
 }
 
-/// An engine state for one lane: runs one image at a time on the shared plan.
+/// An engine state for one lane: runs images on the shared plan, one at a time or stacked.
 pub struct Runner {
-    state: TypedSimpleState,
-    shape: [usize; 4],
+    state: Box<dyn EngineState>,
+    image_len: usize,
     transform: ScoreTransform,
     classes: usize,
     input_type: InputType,
+    stacks: bool,
 }
 
 /// Why a run failed.
@@ -64,7 +72,7 @@ pub enum RunError {
         /// Values given.
         found: usize,
     },
-    /// tract failed.
+    /// The engine failed.
     #[error("engine: {0}")]
     Engine(String),
 }
@@ -75,15 +83,40 @@ impl Model {
         self.contract.input_shape(1).iter().product()
     }
 
-    /// A fresh engine state over the shared plan.
+    /// The engine that runs this model.
+    pub fn engine(&self) -> EngineKind {
+        self.plan.kind()
+    }
+
+    /// Whether lanes run a formed pass as one stacked tensor (the engine's call, and only
+    /// when the model's batch axis is not fixed at 1).
+    pub fn stacks(&self) -> bool {
+        self.plan.stacks() && self.contract.batch != BatchAxis::Fixed(1)
+    }
+
+    /// A fresh single-threaded engine state over the shared plan.
     ///
     /// # Errors
-    /// When tract cannot allocate the state.
+    /// When the engine cannot allocate the state.
     pub fn runner(&self) -> Result<Runner, RunError> {
-        let state = self.plan.spawn().map_err(|e| RunError::Engine(format!("{e:#}")))?;
+        self.runner_with_threads(1)
+    }
+
+    /// A fresh engine state running on `threads` threads (a lane's `lane_threads`).
+    ///
+    /// # Errors
+    /// When the engine cannot allocate the state or start its threads.
+    pub fn runner_with_threads(&self, threads: usize) -> Result<Runner, RunError> {
+        let state = self.plan.state(threads)?;
         let c = &self.contract;
-        let shape = c.input_shape(1);
-        Ok(Runner { state, shape, transform: c.scores, classes: c.classes, input_type: c.input_type })
+        Ok(Runner {
+            state,
+            image_len: self.input_len(),
+            transform: c.scores,
+            classes: c.classes,
+            input_type: c.input_type,
+            stacks: self.stacks(),
+        })
     }
 }
 
@@ -101,26 +134,55 @@ impl Runner {
     /// # Errors
     /// A wrong input length, or an engine failure.
     pub fn run_raw(&mut self, input: &[f32]) -> Result<Vec<f32>, RunError> {
-        let expected: usize = self.shape.iter().product();
-        if input.len() != expected {
-            return Err(RunError::InputSize { expected, found: input.len() });
+        self.run_stacked_raw(&[input]).map(|mut v| v.swap_remove(0))
+    }
+
+    /// Run several images as one stacked tensor when the engine stacks, else one after the
+    /// other, and return each image's class probabilities in order.
+    ///
+    /// # Errors
+    /// A wrong input length, or an engine failure (for the whole pass).
+    pub fn run_pass(&mut self, inputs: &[&[f32]]) -> Result<Vec<Vec<f32>>, RunError> {
+        let raw = if self.stacks {
+            self.run_stacked_raw(inputs)?
+        } else {
+            let mut out = Vec::with_capacity(inputs.len());
+            for x in inputs {
+                out.push(self.run_stacked_raw(&[x])?.swap_remove(0));
+            }
+            out
+        };
+        Ok(raw.iter().map(|r| self.transform.apply(r)).collect())
+    }
+
+    /// Whether [`Runner::run_pass`] stacks.
+    pub fn stacks(&self) -> bool {
+        self.stacks
+    }
+
+    fn run_stacked_raw(&mut self, inputs: &[&[f32]]) -> Result<Vec<Vec<f32>>, RunError> {
+        let n = inputs.len();
+        if let Some(bad) = inputs.iter().find(|x| x.len() != self.image_len) {
+            return Err(RunError::InputSize { expected: self.image_len, found: bad.len() });
         }
-        let tensor = match self.input_type {
-            InputType::Float32 => Tensor::from_shape(&self.shape, input),
+        let raw = match self.input_type {
+            InputType::Float32 if n == 1 => self.state.run(Input::F32(inputs[0]), 1)?,
+            InputType::Float32 => self.state.run(Input::F32(&inputs.concat()), n)?,
             // The pipeline gives raw pixel values (exact integers 0..=255) for uint8 models.
             InputType::Uint8 => {
-                let bytes: Vec<u8> = input.iter().map(|&v| v.round().clamp(0.0, 255.0) as u8).collect();
-                Tensor::from_shape(&self.shape, &bytes)
+                let bytes: Vec<u8> =
+                    inputs.iter().flat_map(|x| x.iter()).map(|&v| v.round().clamp(0.0, 255.0) as u8).collect();
+                self.state.run(Input::U8(&bytes), n)?
             }
+        };
+        if raw.len() != n * self.classes {
+            return Err(RunError::Engine(format!(
+                "output has {} values for {n} image(s), expected {}",
+                raw.len(),
+                n * self.classes
+            )));
         }
-        .map_err(|e| RunError::Engine(format!("{e:#}")))?;
-        let out = self.state.run(tvec![tensor.into()]).map_err(|e| RunError::Engine(format!("{e:#}")))?;
-        let view = out[0].to_plain_array_view::<f32>().map_err(|e| RunError::Engine(format!("{e:#}")))?;
-        let raw: Vec<f32> = view.iter().copied().collect();
-        if raw.len() != self.classes {
-            return Err(RunError::Engine(format!("output has {} values, expected {}", raw.len(), self.classes)));
-        }
-        Ok(raw)
+        Ok(raw.chunks(self.classes).map(<[f32]>::to_vec).collect())
     }
 }
 

@@ -332,10 +332,7 @@ fn paper_architectures_match_their_published_totals_and_onnxruntime() {
         // Single-threaded, and as a lane with `lane_threads = 2` runs it (tract's rayon
         // executor splits the matrix products between two threads).
         for threads in [1, 2] {
-            let executor = lineside::batch::worker::lane_executor("test", 0, threads).unwrap();
-            let ours = tract_linalg::multithread::multithread_tract_scope(executor, || {
-                model.runner().unwrap().run_raw(&x).unwrap()
-            });
+            let ours = model.runner_with_threads(threads).unwrap().run_raw(&x).unwrap();
             let worst = ours.iter().zip(&theirs).map(|(a, b)| (f64::from(*a) - b).abs()).fold(0.0, f64::max);
             assert!(
                 worst <= 1e-4,

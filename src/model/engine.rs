@@ -1,0 +1,94 @@
+//! The engine abstraction: what the rest of lineside needs from an inference engine.
+//!
+//! An engine turns a checked ONNX file into a [`Planned`] model (built once, shared by the
+//! lanes), and each lane asks it for its own [`EngineState`] with the lane's thread count.
+//! The engine also says whether a formed pass should be stacked into one tensor: tract runs
+//! faster image by image (FACTS.md, README's engine table), onnxruntime faster stacked.
+//!
+//! Engines: `tract` (pure Rust, always built, the default) and `onnxruntime` (cargo feature
+//! `onnxruntime`; the shared library is loaded at run time).
+
+use serde::{Deserialize, Serialize};
+
+use super::RunError;
+
+/// Which engine runs a model (`engine = "tract" | "onnxruntime"` in a model's config).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum EngineKind {
+    /// tract (pure Rust, part of every build).
+    #[default]
+    Tract,
+    /// onnxruntime through the `ort` crate, with the library loaded at run time.
+    Onnxruntime,
+}
+
+impl EngineKind {
+    /// The name used in the config, the metrics and the reports.
+    pub fn name(self) -> &'static str {
+        match self {
+            EngineKind::Tract => "tract",
+            EngineKind::Onnxruntime => "onnxruntime",
+        }
+    }
+
+    /// Whether this build of lineside includes the engine.
+    pub fn built(self) -> bool {
+        match self {
+            EngineKind::Tract => true,
+            EngineKind::Onnxruntime => cfg!(feature = "onnxruntime"),
+        }
+    }
+
+    /// Every engine this build includes.
+    pub fn all_built() -> Vec<EngineKind> {
+        [EngineKind::Tract, EngineKind::Onnxruntime].into_iter().filter(|k| k.built()).collect()
+    }
+}
+
+impl std::str::FromStr for EngineKind {
+    type Err = String;
+    fn from_str(s: &str) -> Result<Self, String> {
+        match s {
+            "tract" => Ok(EngineKind::Tract),
+            "onnxruntime" => Ok(EngineKind::Onnxruntime),
+            other => Err(format!("unknown engine {other:?}: expected \"tract\" or \"onnxruntime\"")),
+        }
+    }
+}
+
+/// One image input, in the element type the model takes.
+#[derive(Debug, Clone, Copy)]
+pub enum Input<'a> {
+    /// Normalised floats.
+    F32(&'a [f32]),
+    /// Raw 8-bit pixels.
+    U8(&'a [u8]),
+}
+
+/// A model planned by an engine, shared by every lane that serves it.
+pub trait Planned: Send + Sync {
+    /// Which engine this is.
+    fn kind(&self) -> EngineKind;
+
+    /// Whether the lanes should run a formed pass as one stacked tensor (`true`) or as
+    /// consecutive single-image runs (`false`).
+    fn stacks(&self) -> bool;
+
+    /// A fresh engine state for one lane, running on `threads` threads.
+    ///
+    /// # Errors
+    /// When the engine cannot allocate the state or start its threads.
+    fn state(&self, threads: usize) -> Result<Box<dyn EngineState>, RunError>;
+}
+
+/// One lane's engine state.
+pub trait EngineState: Send {
+    /// Run `images` images stacked along the batch axis (`input` holds them back to back, in
+    /// the model's layout) and return the raw outputs, `images x classes` values. Engines
+    /// that do not stack are only ever called with `images = 1`.
+    ///
+    /// # Errors
+    /// An engine failure.
+    fn run(&mut self, input: Input<'_>, images: usize) -> Result<Vec<f32>, RunError>;
+}
