@@ -708,7 +708,10 @@ fn validate(
             return Err(format!("{ctx}: min_score = {v}: expected a score 0 ..= 1"));
         }
         let min_score = m.min_score;
-        let engine = overrides.engine.or(m.engine).unwrap_or_default();
+        let engine = match (overrides.engine, m.engine) {
+            (Some(e), _) | (None, Some(e)) => e,
+            (None, None) => default_engine()?,
+        };
         if !engine.built() {
             return Err(format!(
                 "{ctx}: engine = {:?}: this lineside was built without it; rebuild with \
@@ -782,6 +785,17 @@ impl ModelConfig {
         }
     }
 }
+
+/// The engine for models without an `engine` key: `LINESIDE_ENGINE` if set, else tract.
+fn default_engine() -> Result<EngineKind, String> {
+    match std::env::var(ENGINE_ENV) {
+        Ok(v) if !v.is_empty() => v.parse().map_err(|e| format!("{ENGINE_ENV}={v}: {e}")),
+        _ => Ok(EngineKind::Tract),
+    }
+}
+
+/// Environment variable naming the engine for models without an `engine` key.
+pub const ENGINE_ENV: &str = "LINESIDE_ENGINE";
 
 fn positive(key: &str, v: Option<u64>, default: u64) -> Result<u64, String> {
     match v.unwrap_or(default) {

@@ -9,8 +9,8 @@ use sha2::{Digest, Sha256};
 use tokio::io::AsyncWriteExt;
 
 use crate::util::{
-    TestServer, expect_error, metric, parse_metrics, root, samples, washer_config, washer_config_with,
-    washer_config_without_selftest, washer_requests,
+    TestServer, engine_under_test, expect_error, metric, parse_metrics, root, samples, washer_config,
+    washer_config_with, washer_config_without_selftest, washer_requests,
 };
 
 fn client() -> reqwest::Client {
@@ -524,7 +524,9 @@ async fn models_request_ids_and_low_confidence() {
     assert_eq!(m["input"]["layout"], "nchw");
     assert_eq!(m["preprocess"]["resize"], "stretch");
     assert_eq!(m["labels"].as_array().unwrap().len(), 5);
-    assert_eq!(m["engine"], "tract");
+    let engine = engine_under_test();
+    assert_eq!(m["engine"], engine.name());
+    assert_eq!(m["stacked_passes"], engine == lineside::model::EngineKind::Onnxruntime);
     assert_eq!(m["selftest"]["samples"], 15);
     assert!(m["batching"]["lanes"].as_u64().unwrap() >= 1);
     let one: Value = c.get(server.url("/models/washers")).send().await.unwrap().json().await.unwrap();
