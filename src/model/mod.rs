@@ -102,6 +102,15 @@ impl Model {
         self.runner_with_threads(1)
     }
 
+    /// The engine's own state on `threads` threads, without a runner's checks and score
+    /// transform (for the engine benchmark).
+    ///
+    /// # Errors
+    /// As [`Model::runner_with_threads`].
+    pub fn engine_state(&self, threads: usize) -> Result<Box<dyn EngineState>, RunError> {
+        self.plan.state(threads)
+    }
+
     /// A fresh engine state running on `threads` threads (a lane's `lane_threads`).
     ///
     /// # Errors
