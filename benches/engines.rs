@@ -7,7 +7,8 @@
 //! `target/tmp/paper-models`, as the tests do). Each cell is images per second: lanes (OS
 //! threads, one engine state each) run passes of constant data back to back after a 0.5 s
 //! warm-up, and the rate is the median of three equal windows of `LINESIDE_BENCH_SECS`
-//! (default 3 s) in all. The reference runtime is timed by `tools/bench_onnxruntime.py` the
+//! (default 6 s) in all; a window's rate is the images each lane finished over the time those
+//! runs took, summed over lanes. The reference runtime is timed by `tools/bench_onnxruntime.py` the
 //! same way (onnxruntime from the venv's PyPI wheel; its library is also what lineside's
 //! onnxruntime engine loads). `LINESIDE_BENCH_ONLY=washers|resnet18|mobilenetv2|squeezenet11`
 //! runs one model. Figures hold for this machine only; read the ratios, not the absolutes.
@@ -31,7 +32,9 @@ fn python() -> PathBuf {
 }
 
 /// Images per second of `lanes` threads each running `pass` images per call of the state
-/// `make` gives it: median of three equal windows after a warm-up.
+/// `make` gives it, after a warm-up: the median of three equal windows, each the sum over
+/// lanes of the images a lane finished in it over the time those runs took (so that a few
+/// long runs per window do not round the rate to whole runs).
 fn rate(
     lanes: usize,
     pass: usize,
@@ -44,7 +47,7 @@ fn rate(
     let start = Instant::now();
     let window = start + warm;
     let end = window + Duration::from_secs_f64(secs);
-    let done: Vec<Vec<Instant>> = std::thread::scope(|s| {
+    let done: Vec<Vec<(Instant, Duration)>> = std::thread::scope(|s| {
         let handles: Vec<_> = (0..lanes)
             .map(|_| {
                 let stop = &stop;
@@ -52,10 +55,11 @@ fn rate(
                     let mut state = make();
                     let mut done = Vec::new();
                     while !stop.load(Ordering::Relaxed) {
+                        let t0 = Instant::now();
                         std::hint::black_box(state.run(input, pass).expect("engine run"));
                         let t = Instant::now();
-                        if t >= window && t <= end {
-                            done.push(t);
+                        if t0 >= window && t <= end {
+                            done.push((t, t - t0));
                         }
                     }
                     done
@@ -71,8 +75,13 @@ fn rate(
         .map(|w| {
             let lo = window + Duration::from_secs_f64(w as f64 * third);
             let hi = window + Duration::from_secs_f64((w + 1) as f64 * third);
-            let n = done.iter().flatten().filter(|&&t| t >= lo && t < hi).count();
-            (n * pass) as f64 / third
+            done.iter()
+                .map(|lane| {
+                    let runs: Vec<Duration> = lane.iter().filter(|(t, _)| *t >= lo && *t < hi).map(|r| r.1).collect();
+                    let busy: f64 = runs.iter().map(Duration::as_secs_f64).sum();
+                    if busy > 0.0 { (runs.len() * pass) as f64 / busy } else { 0.0 }
+                })
+                .sum::<f64>()
         })
         .collect();
     rates.sort_by(f64::total_cmp);
@@ -148,7 +157,7 @@ fn tract_onnx_model(bytes: &[u8]) -> tract_onnx::prelude::InferenceModel {
 }
 
 fn main() {
-    let secs: f64 = std::env::var("LINESIDE_BENCH_SECS").ok().and_then(|s| s.parse().ok()).unwrap_or(3.0);
+    let secs: f64 = std::env::var("LINESIDE_BENCH_SECS").ok().and_then(|s| s.parse().ok()).unwrap_or(6.0);
     let only = std::env::var("LINESIDE_BENCH_ONLY").unwrap_or_default();
     let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
     if std::env::var_os("ORT_DYLIB_PATH").is_none() {
