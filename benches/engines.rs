@@ -11,11 +11,12 @@
 //! runs took, summed over lanes. The reference runtime is timed by `tools/bench_onnxruntime.py` the
 //! same way (onnxruntime from the venv's PyPI wheel; its library is also what lineside's
 //! onnxruntime engine loads). `LINESIDE_BENCH_ONLY=washers|resnet18|mobilenetv2|squeezenet11`
-//! runs one model. Figures hold for this machine only; read the ratios, not the absolutes.
+//! runs one model; every cell is measured in `LINESIDE_BENCH_ROUNDS` rounds (default 2, all
+//! cells in turn) and its best round reported; `LINESIDE_BENCH_CELL=<part of a column name>` only the matching cells (to
+//! profile one). Figures hold for this machine only; read the ratios, not the absolutes.
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
-use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
@@ -108,7 +109,7 @@ struct Bench {
 }
 
 /// One row of the table: (column, images/s).
-fn measure(b: &Bench, secs: f64, cores: usize) -> Vec<(String, f64)> {
+fn measure(b: &Bench, secs: f64, cores: usize, rounds: usize) -> Vec<(String, f64)> {
     let mut mc = ModelConfig::bare(b.onnx.clone(), None, None, Channels::Rgb);
     let model = load::load(&mc).unwrap_or_else(|e| panic!("{}: {e:#}", b.onnx.display()));
     let c = model.contract.clone();
@@ -118,36 +119,46 @@ fn measure(b: &Bench, secs: f64, cores: usize) -> Vec<(String, f64)> {
     let (x1, x8) = (data(1), data(8));
     let file = b.onnx.display().to_string();
     let inference = || tract_onnx_model(&bytes);
-    let mut row = Vec::new();
-
-    // tract: the concrete batch-1 plan lineside serves with.
-    let b1 = Arc::new(TractPlan::build(inference(), c.input_type, c.input_shape(1), &file).unwrap());
-    let plan = Arc::clone(&b1);
-    row.push(("tract b1 1 thr".into(), rate(1, 1, secs, &|| plan.state(1).unwrap(), Input::F32(&x1))));
-    // A symbolic batch axis, run at batch 1.
+    // tract: the concrete batch-1 plan lineside serves with; a symbolic batch axis run at
+    // batch 1; a concrete batch-8 plan (stacked).
+    let plan = TractPlan::build(inference(), c.input_type, c.input_shape(1), &file).unwrap();
     let sym = TractPlan::build_symbolic(inference(), c.input_type, c.input_shape(1), &file).unwrap();
-    row.push(("tract symbolic b1".into(), rate(1, 1, secs, &|| sym.state(1).unwrap(), Input::F32(&x1))));
-    // Stacked: a concrete batch-8 plan.
     let b8 = TractPlan::build(inference(), c.input_type, c.input_shape(8), &file).unwrap();
-    row.push(("tract b8 stacked".into(), rate(1, 8, secs, &|| b8.state(1).unwrap(), Input::F32(&x8))));
-    // Lanes x threads on the batch-1 plan.
-    row.push((format!("tract b1 {cores} lanes"), rate(cores, 1, secs, &|| plan.state(1).unwrap(), Input::F32(&x1))));
-    row.push((
-        format!("tract b1 1 lane x {cores} thr"),
-        rate(1, 1, secs, &|| plan.state(cores).unwrap(), Input::F32(&x1)),
-    ));
-
-    // lineside's onnxruntime engine, then the same runtime from Python.
+    // lineside's onnxruntime engine (and the same runtime from Python).
     mc.engine = EngineKind::Onnxruntime;
     let ort = load::load(&mc).unwrap_or_else(|e| panic!("{}: {e:#}", b.onnx.display()));
     let ort = &ort;
     let ort_state = |threads: usize| move || ort.engine_state(threads).unwrap();
-    row.push(("ort b1 1 thr".into(), rate(1, 1, secs, &ort_state(1), Input::F32(&x1))));
-    row.push(("py b1 1 thr".into(), reference(&b.onnx, 1, 1, 1, secs)));
-    row.push((format!("ort b8 {cores} thr"), rate(1, 8, secs, &ort_state(cores), Input::F32(&x8))));
-    row.push((format!("py b8 {cores} thr"), reference(&b.onnx, 1, cores, 8, secs)));
-    row.push((format!("ort b8 {cores} lanes"), rate(cores, 8, secs, &ort_state(1), Input::F32(&x8))));
-    row.push((format!("py b8 {cores} lanes"), reference(&b.onnx, cores, 1, 8, secs)));
+    let (i1, i8) = (Input::F32(&x1), Input::F32(&x8));
+
+    type Cell<'a> = (String, Box<dyn Fn() -> f64 + 'a>);
+    let cells: Vec<Cell<'_>> = vec![
+        ("tract b1 1 thr".into(), Box::new(|| rate(1, 1, secs, &|| plan.state(1).unwrap(), i1))),
+        ("tract symbolic b1".into(), Box::new(|| rate(1, 1, secs, &|| sym.state(1).unwrap(), i1))),
+        ("tract b8 stacked".into(), Box::new(|| rate(1, 8, secs, &|| b8.state(1).unwrap(), i8))),
+        (format!("tract b1 {cores} lanes"), Box::new(|| rate(cores, 1, secs, &|| plan.state(1).unwrap(), i1))),
+        (format!("tract b1 1 lane x {cores} thr"), Box::new(|| rate(1, 1, secs, &|| plan.state(cores).unwrap(), i1))),
+        ("ort b1 1 thr".into(), Box::new(|| rate(1, 1, secs, &ort_state(1), i1))),
+        ("py b1 1 thr".into(), Box::new(|| reference(&b.onnx, 1, 1, 1, secs))),
+        (format!("ort b8 {cores} thr"), Box::new(|| rate(1, 8, secs, &ort_state(cores), i8))),
+        (format!("py b8 {cores} thr"), Box::new(|| reference(&b.onnx, 1, cores, 8, secs))),
+        (format!("ort b8 {cores} lanes"), Box::new(|| rate(cores, 8, secs, &ort_state(1), i8))),
+        (format!("py b8 {cores} lanes"), Box::new(|| reference(&b.onnx, cores, 1, 8, secs))),
+    ];
+
+    // Rounds of every cell in turn; a cell's figure is its best round (the machine's noise only
+    // ever slows a run down).
+    let only = std::env::var("LINESIDE_BENCH_CELL").unwrap_or_default();
+    let mut row: Vec<(String, f64)> = Vec::new();
+    for _ in 0..rounds {
+        for (name, f) in cells.iter().filter(|(n, _)| only.is_empty() || n.contains(&only)) {
+            let v = f();
+            match row.iter_mut().find(|(n, _)| n == name) {
+                Some((_, best)) => *best = best.max(v),
+                None => row.push((name.clone(), v)),
+            }
+        }
+    }
     row
 }
 
@@ -159,6 +170,7 @@ fn tract_onnx_model(bytes: &[u8]) -> tract_onnx::prelude::InferenceModel {
 fn main() {
     let secs: f64 = std::env::var("LINESIDE_BENCH_SECS").ok().and_then(|s| s.parse().ok()).unwrap_or(6.0);
     let only = std::env::var("LINESIDE_BENCH_ONLY").unwrap_or_default();
+    let rounds: usize = std::env::var("LINESIDE_BENCH_ROUNDS").ok().and_then(|s| s.parse().ok()).unwrap_or(2);
     let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
     if std::env::var_os("ORT_DYLIB_PATH").is_none() {
         // The venv's wheel, as tools/test uses it.
@@ -177,15 +189,17 @@ fn main() {
         Bench { name: "mobilenetv2", onnx: papers.join("mobilenetv2.onnx") },
         Bench { name: "squeezenet11", onnx: papers.join("squeezenet11.onnx") },
     ];
-    println!("lineside engine benchmark: images/s, {secs} s per cell, {cores} cores, this machine only");
+    println!(
+        "lineside engine benchmark: images/s, best of {rounds} rounds of {secs} s per cell, {cores} cores, this machine only"
+    );
     let mut header_done = false;
     for b in all.iter().filter(|b| only.is_empty() || only == b.name) {
-        let row = measure(b, secs, cores);
+        let row = measure(b, secs, cores, rounds);
         if !header_done {
-            println!("{:<14}{}", "model", row.iter().map(|(k, _)| format!("{k:>20}")).collect::<String>());
+            println!("{:<14}{}", "model", row.iter().map(|(k, _)| format!("{k:>24}")).collect::<String>());
             header_done = true;
         }
-        println!("{:<14}{}", b.name, row.iter().map(|(_, v)| format!("{v:>20.1}")).collect::<String>());
+        println!("{:<14}{}", b.name, row.iter().map(|(_, v)| format!("{v:>24.1}")).collect::<String>());
         let get = |k: &str| row.iter().find(|(n, _)| n == k).map_or(f64::NAN, |(_, v)| *v);
         let tract_best = row.iter().filter(|(k, _)| k.starts_with("tract")).map(|(_, v)| *v).fold(0.0, f64::max);
         let py_best = row.iter().filter(|(k, _)| k.starts_with("py")).map(|(_, v)| *v).fold(0.0, f64::max);
