@@ -93,11 +93,17 @@ pub struct Gather {
 }
 
 impl Gather {
-    /// With `taken` jobs in the pass so far, the first of which arrived at `first`, may the
-    /// lane wait for another job, and until when? `None` closes the pass (after the lane has
-    /// taken whatever is already queued).
+    /// With `taken` jobs in the pass so far (the lane has already taken everything queued),
+    /// the first of which arrived at `first`, may the lane wait for another job, and until
+    /// when? `None` closes the pass.
+    ///
+    /// The policy: never wait when the engine does not stack (nothing to gain), and never
+    /// when the lane found a single job (an idle line: no gathering delay for one frame).
+    /// When it found two or more, a burst is under way (several stations triggered
+    /// together): wait for the rest until the window closes, `window` after the first one's
+    /// arrival, or the pass is full.
     pub fn wait_until(&self, first: Instant, taken: usize, now: Instant) -> Option<Instant> {
-        if taken >= self.cap || !self.stacks {
+        if taken >= self.cap || !self.stacks || taken < 2 {
             return None;
         }
         let close = first + self.window;
@@ -306,11 +312,20 @@ mod tests {
     fn stacking_engine_waits_until_window_closes_after_first_arrival() {
         let g = Gather { cap: 4, window: Duration::from_micros(2000), stacks: true };
         let t0 = Instant::now();
-        assert_eq!(g.wait_until(t0, 1, at(t0, 100)), Some(at(t0, 2000)));
+        assert_eq!(g.wait_until(t0, 2, at(t0, 100)), Some(at(t0, 2000)));
         assert_eq!(g.wait_until(t0, 3, at(t0, 1999)), Some(at(t0, 2000)));
         // window measured from the first job's arrival, not from when the lane saw it
-        assert_eq!(g.wait_until(t0, 1, at(t0, 2000)), None);
-        assert_eq!(g.wait_until(t0, 1, at(t0, 5000)), None);
+        assert_eq!(g.wait_until(t0, 2, at(t0, 2000)), None);
+        assert_eq!(g.wait_until(t0, 3, at(t0, 5000)), None);
+    }
+
+    #[test]
+    fn a_single_waiting_job_runs_at_once_even_when_the_engine_stacks() {
+        let g = Gather { cap: 8, window: Duration::from_micros(2000), stacks: true };
+        let t0 = Instant::now();
+        assert_eq!(g.wait_until(t0, 1, t0), None, "an idle lane with one job must not wait");
+        assert_eq!(g.wait_until(t0, 1, at(t0, 100)), None);
+        assert_eq!(g.wait_until(t0, 2, at(t0, 100)), Some(at(t0, 2000)), "a burst waits for the rest");
     }
 
     #[test]
