@@ -140,6 +140,8 @@ fn measure(b: &Bench, secs: f64, cores: usize, rounds: usize) -> Vec<(String, f6
         (format!("tract b1 1 lane x {cores} thr"), Box::new(|| rate(1, 1, secs, &|| plan.state(cores).unwrap(), i1))),
         ("ort b1 1 thr".into(), Box::new(|| rate(1, 1, secs, &ort_state(1), i1))),
         ("py b1 1 thr".into(), Box::new(|| reference(&b.onnx, 1, 1, 1, secs))),
+        ("ort b8 1 thr".into(), Box::new(|| rate(1, 8, secs, &ort_state(1), i8))),
+        ("py b8 1 thr".into(), Box::new(|| reference(&b.onnx, 1, 1, 8, secs))),
         (format!("ort b8 {cores} thr"), Box::new(|| rate(1, 8, secs, &ort_state(cores), i8))),
         (format!("py b8 {cores} thr"), Box::new(|| reference(&b.onnx, 1, cores, 8, secs))),
         (format!("ort b8 {cores} lanes"), Box::new(|| rate(cores, 8, secs, &ort_state(1), i8))),
@@ -204,7 +206,7 @@ fn main() {
         let tract_best = row.iter().filter(|(k, _)| k.starts_with("tract")).map(|(_, v)| *v).fold(0.0, f64::max);
         let py_best = row.iter().filter(|(k, _)| k.starts_with("py")).map(|(_, v)| *v).fold(0.0, f64::max);
         println!(
-            "  {}: tract best / reference best = {:.2}; lineside's onnxruntime / Python's: b1 1 thr {:.2}, b8 {cores} thr {:.2}, b8 {cores} lanes {:.2}; tract symbolic / concrete b1 = {:.2}; tract b8 stacked / b1 = {:.2}",
+            "  {}: tract best / reference best = {:.2}; lineside's onnxruntime / Python's: b1 1 thr {:.2}, b8 {cores} thr {:.2}, b8 {cores} lanes {:.2}; tract symbolic / concrete b1 = {:.2}; tract b8 stacked / b1 = {:.2}; onnxruntime b8 / b1 on 1 thread = {:.2}",
             b.name,
             tract_best / py_best,
             get("ort b1 1 thr") / get("py b1 1 thr"),
@@ -212,6 +214,7 @@ fn main() {
             get(&format!("ort b8 {cores} lanes")) / get(&format!("py b8 {cores} lanes")),
             get("tract symbolic b1") / get("tract b1 1 thr"),
             get("tract b8 stacked") / get("tract b1 1 thr"),
+            get("ort b8 1 thr") / get("ort b1 1 thr"),
         );
     }
 }

@@ -358,6 +358,20 @@ pub struct BatchingConfig {
     pub lanes: Lanes,
     /// Threads inside one lane's inference.
     pub lane_threads: usize,
+    /// Whether passes are stacked into one tensor (`stack`).
+    pub stack: StackMode,
+}
+
+/// `[models.batching] stack`: whether a formed pass runs as one stacked tensor.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum StackMode {
+    /// Decided at load: never on an engine or model that cannot stack, else by calibration.
+    Auto,
+    /// Always stack (`stack = true`); refused where the engine or model cannot.
+    Always,
+    /// Never stack (`stack = false`).
+    Never,
 }
 
 // ----------------------------------------------------------------------------- raw TOML
@@ -471,6 +485,14 @@ struct RawBatching {
     backlog: Option<usize>,
     lanes: Option<RawLanes>,
     lane_threads: Option<usize>,
+    stack: Option<RawStack>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(untagged)]
+enum RawStack {
+    Flag(bool),
+    Word(String),
 }
 
 #[derive(Debug, Deserialize)]
@@ -780,7 +802,7 @@ impl ModelConfig {
             selftest: None,
             scores: ScoresMode::Auto,
             min_score: None,
-            engine: EngineKind::Tract,
+            engine: default_engine().unwrap_or_default(),
             onnxruntime_library: None,
         }
     }
@@ -941,7 +963,14 @@ fn validate_batching(b: RawBatching) -> Result<BatchingConfig, String> {
     if !(1..=64).contains(&lane_threads) {
         return Err(format!("batching.lane_threads = {lane_threads}: expected 1 ..= 64"));
     }
-    Ok(BatchingConfig { batch_cap, gather: Duration::from_micros(gather_us), backlog, lanes, lane_threads })
+    let stack = match b.stack {
+        None => StackMode::Auto,
+        Some(RawStack::Word(w)) if w == "auto" => StackMode::Auto,
+        Some(RawStack::Flag(true)) => StackMode::Always,
+        Some(RawStack::Flag(false)) => StackMode::Never,
+        Some(RawStack::Word(w)) => return Err(format!("batching.stack = {w:?}: expected \"auto\", true or false")),
+    };
+    Ok(BatchingConfig { batch_cap, gather: Duration::from_micros(gather_us), backlog, lanes, lane_threads, stack })
 }
 
 #[cfg(test)]

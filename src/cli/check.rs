@@ -16,7 +16,7 @@ use anyhow::Context as _;
 
 use crate::config::{Channels, Config, ModelConfig, Overrides, Source};
 use crate::model::report::Report;
-use crate::model::{BatchAxis, Contract, EngineKind, InputType, Model, ScoreTransform, load};
+use crate::model::{BatchAxis, Contract, EngineKind, InputType, Model, ScoreTransform, Stacking, load};
 use crate::preprocess::Pipeline;
 use crate::selftest;
 
@@ -78,8 +78,10 @@ pub struct Details {
     pub version: String,
     /// The engine that runs it.
     pub engine: EngineKind,
-    /// Whether the engine stacks a formed pass into one tensor (else runs it image by image).
+    /// Whether lanes stack a formed pass into one tensor (else run it image by image).
     pub stacked_passes: bool,
+    /// How that was decided.
+    pub stacking: Stacking,
     /// Class names in output order.
     pub labels: Vec<String>,
     /// Input/output contract.
@@ -200,6 +202,7 @@ fn check_one(mc: &ModelConfig) -> ModelCheck {
                     version: model.version.clone(),
                     engine: model.engine(),
                     stacked_passes: model.stacks(),
+                    stacking: model.stacking.clone(),
                     labels: model.labels.clone(),
                     contract: model.contract.clone(),
                     report,
@@ -335,12 +338,16 @@ pub fn render(c: &ModelCheck) -> String {
         100.0 * r.fc_share(),
         r.model_bytes as f64 / 1e6
     );
-    let _ = writeln!(
-        s,
-        "  engine      {} ({})",
-        d.engine.name(),
-        if d.stacked_passes { "passes stacked into one tensor" } else { "passes run image by image" }
-    );
+    let how = if d.stacked_passes { "passes stacked into one tensor" } else { "passes run image by image" };
+    let why = match (d.stacking.decided_by, d.stacking.single_ms_per_image, d.stacking.stacked_ms_per_image) {
+        ("calibrated", Some(one), Some(stacked)) => {
+            format!("calibrated at load: {stacked:.3} ms per image stacked, {one:.3} one by one")
+        }
+        ("engine", ..) => "the engine's rule".to_string(),
+        ("model", ..) => "the model fixes its batch at 1".to_string(),
+        _ => "[models.batching] stack".to_string(),
+    };
+    let _ = writeln!(s, "  engine      {} ({how}; {why})", d.engine.name());
     let _ = writeln!(s, "  load        {:.0} ms (parse, check, plan, warm)", d.load_ms);
     match &d.selftest {
         None => {

@@ -17,6 +17,7 @@ fn describe(m: &ServedModel) -> Value {
         "version": m.model.version,
         "engine": m.model.engine().name(),
         "stacked_passes": m.model.stacks(),
+        "stacking": m.model.stacking,
         "file": m.model.file,
         "load_ms": (m.model.load_time.as_secs_f64() * 1e3 * 1e3).round() / 1e3,
         "input": {

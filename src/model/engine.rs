@@ -71,9 +71,10 @@ pub trait Planned: Send + Sync {
     /// Which engine this is.
     fn kind(&self) -> EngineKind;
 
-    /// Whether the lanes should run a formed pass as one stacked tensor (`true`) or as
-    /// consecutive single-image runs (`false`).
-    fn stacks(&self) -> bool;
+    /// Whether the engine can run a formed pass as one stacked tensor at all. Whether it
+    /// does is decided at load ([`super::load`]): never when it cannot, else by the config or
+    /// a short calibration.
+    fn can_stack(&self) -> bool;
 
     /// A fresh engine state for one lane, running on `threads` threads.
     ///

@@ -15,8 +15,9 @@ use tract_onnx::prelude::*;
 use super::engine::{EngineKind, Planned};
 use super::report::{self, Report};
 use super::tract::{TractPlan, input_fact};
-use super::{Model, check, labels};
+use super::{Model, Stacking, check, labels};
 use crate::config::ModelConfig;
+use crate::config::StackMode;
 
 /// Load, check, plan and warm one model.
 ///
@@ -102,13 +103,23 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
         EngineKind::Onnxruntime => onnxruntime_plan(cfg, &bytes, &contract, &file)?,
     };
 
-    let mut model = Model { name: cfg.name.clone(), version, labels, contract, file, load_time: start.elapsed(), plan };
+    let mut model = Model {
+        name: cfg.name.clone(),
+        version,
+        labels,
+        contract,
+        file,
+        load_time: start.elapsed(),
+        stacking: Stacking::single("engine"),
+        plan,
+    };
     // Warm the plan once (first runs allocate scratch space) and prove it runs.
     let zeros = vec![0.0f32; model.input_len()];
     model
         .runner()
         .and_then(|mut r| r.run(&zeros))
         .with_context(|| format!("{}: warm-up inference failed", model.file))?;
+    model.stacking = decide_stacking(&model, cfg.batching.stack, cfg.batching.batch_cap)?;
     model.load_time = start.elapsed();
     if model.contract.batch == super::BatchAxis::Fixed(1) && cfg.batching.batch_cap > 1 {
         // Passes run as consecutive batch-1 runs, so gathering still works; only stacking
@@ -123,13 +134,13 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
 
 /// Time a stacked pass on tract: `batch` images in one tensor on a concrete plan for that
 /// size, which lineside does not serve with on tract but `check` reports so the choice can be
-/// re-measured on each box; per image. `None` when the model fixes its batch at 1 or the
-/// model's engine stacks anyway (its served passes are already stacked).
+/// re-measured on each box; per image. `None` when the model fixes its batch at 1 or runs on
+/// another engine (whose stacking is calibrated at load and reported with it).
 ///
 /// # Errors
 /// When tract cannot plan or run the stacked shape.
 pub fn time_stacked(cfg: &ModelConfig, model: &Model, batch: usize) -> anyhow::Result<Option<std::time::Duration>> {
-    if model.contract.batch == super::BatchAxis::Fixed(1) || batch < 2 || model.stacks() {
+    if model.contract.batch == super::BatchAxis::Fixed(1) || batch < 2 || model.engine() != EngineKind::Tract {
         return Ok(None);
     }
     let c = &model.contract;
@@ -137,6 +148,59 @@ pub fn time_stacked(cfg: &ModelConfig, model: &Model, batch: usize) -> anyhow::R
     super::tract::time_stacked(&bytes, c.input_type, c.input_shape(batch), &model.file)
         .with_context(|| format!("{}: tract cannot run a stacked batch of {batch}", model.file))
         .map(Some)
+}
+
+/// Whether the lanes stack passes: never when the engine or the model cannot; as the config
+/// says when it says; else by a short calibration: stacked when a stacked pass of `cap`
+/// images takes at most 0.9x the time per image of `cap` single runs (a stacked pass delays
+/// its first answer, so it must pay for itself). Best of three timed rounds of each, after
+/// one warm-up of each; one thread.
+fn decide_stacking(model: &Model, mode: StackMode, cap: usize) -> anyhow::Result<Stacking> {
+    if !model.plan.can_stack() {
+        anyhow::ensure!(
+            mode != StackMode::Always,
+            "{}: stack = true, but the {} engine runs passes image by image (it is slower per image \
+             stacked); remove the key or use engine = \"onnxruntime\"",
+            model.file,
+            model.engine().name()
+        );
+        return Ok(Stacking::single("engine"));
+    }
+    if !model.can_stack() {
+        anyhow::ensure!(
+            mode != StackMode::Always,
+            "{}: stack = true, but the model fixes its batch axis at 1; re-export it with a dynamic batch axis",
+            model.file
+        );
+        return Ok(Stacking::single("model"));
+    }
+    match mode {
+        StackMode::Always => return Ok(Stacking { stacked: true, ..Stacking::single("config") }),
+        StackMode::Never => return Ok(Stacking::single("config")),
+        StackMode::Auto if cap < 2 => return Ok(Stacking::single("config")),
+        StackMode::Auto => {}
+    }
+    let mut runner = model.runner()?;
+    let input = vec![0.5f32; model.input_len()];
+    let pass = vec![input.as_slice(); cap];
+    let mut time = |stacked: bool| -> anyhow::Result<f64> {
+        runner.run_pass_as(&pass, stacked)?;
+        let mut best = f64::INFINITY;
+        for _ in 0..3 {
+            let t = Instant::now();
+            runner.run_pass_as(&pass, stacked)?;
+            best = best.min(t.elapsed().as_secs_f64() * 1e3 / cap as f64);
+        }
+        Ok(best)
+    };
+    let single = time(false).with_context(|| format!("{}: calibration (single runs) failed", model.file))?;
+    let stacked = time(true).with_context(|| format!("{}: calibration (stacked pass of {cap}) failed", model.file))?;
+    Ok(Stacking {
+        stacked: stacked <= 0.9 * single,
+        decided_by: "calibrated",
+        single_ms_per_image: Some(single),
+        stacked_ms_per_image: Some(stacked),
+    })
 }
 
 #[cfg(feature = "onnxruntime")]

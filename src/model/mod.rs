@@ -37,8 +37,33 @@ pub struct Model {
     pub file: String,
     /// Time to load, check, plan and warm the model.
     pub load_time: Duration,
+    /// How passes run, decided at load.
+    pub stacking: Stacking,
     /// The engine's plan (one per model; each lane spawns its own state from it).
     plan: Arc<dyn Planned>,
+}
+
+/// Whether lanes stack a formed pass into one tensor, and why (decided at load).
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Stacking {
+    /// Stacked (`true`) or image by image.
+    pub stacked: bool,
+    /// Why: `"engine"` (it cannot stack), `"model"` (the batch axis is fixed at 1),
+    /// `"config"` (`stack = true | false`), `"calibrated"` (timed at load).
+    pub decided_by: &'static str,
+    /// The calibration's time per image run one at a time, in ms.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub single_ms_per_image: Option<f64>,
+    /// The calibration's time per image in a stacked pass of `batch_cap`, in ms.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub stacked_ms_per_image: Option<f64>,
+}
+
+impl Stacking {
+    /// Image by image, for `reason`.
+    pub fn single(decided_by: &'static str) -> Stacking {
+        Stacking { stacked: false, decided_by, single_ms_per_image: None, stacked_ms_per_image: None }
+    }
 }
 
 impl std::fmt::Debug for Model {
@@ -88,10 +113,14 @@ impl Model {
         self.plan.kind()
     }
 
-    /// Whether lanes run a formed pass as one stacked tensor (the engine's call, and only
-    /// when the model's batch axis is not fixed at 1).
+    /// Whether lanes run a formed pass as one stacked tensor ([`Model::stacking`]).
     pub fn stacks(&self) -> bool {
-        self.plan.stacks() && self.contract.batch != BatchAxis::Fixed(1)
+        self.stacking.stacked
+    }
+
+    /// Whether the engine and the model's batch axis allow stacking at all.
+    pub fn can_stack(&self) -> bool {
+        self.plan.can_stack() && self.contract.batch != BatchAxis::Fixed(1)
     }
 
     /// A fresh single-threaded engine state over the shared plan.
@@ -146,13 +175,22 @@ impl Runner {
         self.run_stacked_raw(&[input]).map(|mut v| v.swap_remove(0))
     }
 
-    /// Run several images as one stacked tensor when the engine stacks, else one after the
-    /// other, and return each image's class probabilities in order.
+    /// Run several images as one stacked tensor when the model's passes are stacked, else
+    /// one after the other, and return each image's class probabilities in order.
     ///
     /// # Errors
     /// A wrong input length, or an engine failure (for the whole pass).
     pub fn run_pass(&mut self, inputs: &[&[f32]]) -> Result<Vec<Vec<f32>>, RunError> {
-        let raw = if self.stacks {
+        self.run_pass_as(inputs, self.stacks)
+    }
+
+    /// As [`Runner::run_pass`], stacked or not as `stacked` says (the calibration's two ways;
+    /// `stacked` needs an engine and a model that can stack).
+    ///
+    /// # Errors
+    /// As [`Runner::run_pass`].
+    pub fn run_pass_as(&mut self, inputs: &[&[f32]], stacked: bool) -> Result<Vec<Vec<f32>>, RunError> {
+        let raw = if stacked {
             self.run_stacked_raw(inputs)?
         } else {
             let mut out = Vec::with_capacity(inputs.len());

@@ -59,7 +59,7 @@ impl Planned for OrtPlan {
         EngineKind::Onnxruntime
     }
 
-    fn stacks(&self) -> bool {
+    fn can_stack(&self) -> bool {
         true
     }
 

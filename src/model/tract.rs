@@ -69,7 +69,7 @@ impl Planned for TractPlan {
         EngineKind::Tract
     }
 
-    fn stacks(&self) -> bool {
+    fn can_stack(&self) -> bool {
         false
     }
 

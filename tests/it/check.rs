@@ -106,6 +106,46 @@ fn fixtures_match_onnxruntime_on_the_same_input() {
     }
 }
 
+/// How passes run is decided at load: tract never stacks (its rule, from the engine table),
+/// a model with a batch axis fixed at 1 cannot, `stack = true | false` decides where the
+/// engine can, and otherwise a calibration times both ways.
+#[test]
+fn stacking_is_decided_at_load_by_engine_model_config_or_calibration() {
+    use lineside::config::StackMode;
+    use lineside::model::EngineKind;
+    let engine = crate::util::engine_under_test();
+    let with = |case: &str, side: u32, stack: StackMode| {
+        let mut mc = bare(case, side, Channels::Rgb);
+        mc.batching.stack = stack;
+        load::load(&mc)
+    };
+    let auto = with("arith", 32, StackMode::Auto).unwrap();
+    let forced = with("arith", 32, StackMode::Always);
+    let fixed = with("batch1", 32, StackMode::Always).unwrap_err();
+    assert!(format!("{fixed:#}").contains("stack = true"), "{fixed:#}");
+    let never = with("arith", 32, StackMode::Never).unwrap();
+    assert!(!never.stacks());
+    match engine {
+        EngineKind::Tract => {
+            assert_eq!((auto.stacks(), auto.stacking.decided_by), (false, "engine"));
+            assert_eq!(never.stacking.decided_by, "engine");
+            let e = forced.unwrap_err();
+            assert!(format!("{e:#}").contains("tract engine runs passes image by image"), "{e:#}");
+        }
+        EngineKind::Onnxruntime => {
+            assert_eq!(auto.stacking.decided_by, "calibrated");
+            assert_eq!(never.stacking.decided_by, "config");
+            let (one, stacked) =
+                (auto.stacking.single_ms_per_image.unwrap(), auto.stacking.stacked_ms_per_image.unwrap());
+            assert!(one > 0.0 && stacked > 0.0);
+            assert_eq!(auto.stacks(), stacked <= 0.9 * one, "the 0.9 rule");
+            let forced = forced.unwrap();
+            assert_eq!((forced.stacks(), forced.stacking.decided_by), (true, "config"));
+            assert!(format!("{fixed:#}").contains("fixes its batch axis at 1"), "{fixed:#}");
+        }
+    }
+}
+
 #[test]
 fn layouts_batch_axes_and_softmax_are_detected() {
     use lineside::config::Layout;

@@ -127,12 +127,18 @@ async fn served_scores_match_onnxruntime_with(config: lineside::config::Config) 
     server.stop().await.unwrap();
 }
 
-/// Requests gathered into one pass each get their own image's scores back, whether the engine
-/// stacks the pass into one tensor (onnxruntime) or runs it image by image (tract): the 15
-/// samples posted at once to one lane that waits up to 300 ms for company.
+/// Requests gathered into one pass each get their own image's scores back, whether the pass
+/// is stacked into one tensor (onnxruntime with `stack = true`) or run image by image (tract):
+/// the 15 samples posted at once to one lane that waits up to 300 ms for company.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn gathered_passes_answer_each_image_with_its_own_scores() {
-    let config = washer_config_with(&[("lanes = \"auto\"", "lanes = 1"), ("gather_us = 2000 ", "gather_us = 300000 ")]);
+    let stacking = engine_under_test() == lineside::model::EngineKind::Onnxruntime;
+    let stack = if stacking { "stack = true\nlane_threads = 1 " } else { "lane_threads = 1 " };
+    let config = washer_config_with(&[
+        ("lanes = \"auto\"", "lanes = 1"),
+        ("gather_us = 2000 ", "gather_us = 300000 "),
+        ("lane_threads = 1 ", stack),
+    ]);
     let server = TestServer::start(config).await;
     let c = reqwest::Client::new();
     let r = reference();
@@ -163,8 +169,9 @@ async fn gathered_passes_answer_each_image_with_its_own_scores() {
         metric(&m, r#"lineside_pass_size_requests_count{model="washers"}"#),
     );
     assert_eq!(sum, 15.0, "every image ran exactly once");
-    if engine_under_test() == lineside::model::EngineKind::Onnxruntime {
-        // A stacking engine waits for company: 15 requests in well under 300 ms share passes.
+    if stacking {
+        // A stacking lane waits for company once it sees a burst: 15 requests posted together
+        // share passes.
         assert!(count < 15.0, "{count} passes for 15 images: the stacking engine formed no multi-image pass");
     }
     server.stop().await.unwrap();

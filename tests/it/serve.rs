@@ -526,7 +526,9 @@ async fn models_request_ids_and_low_confidence() {
     assert_eq!(m["labels"].as_array().unwrap().len(), 5);
     let engine = engine_under_test();
     assert_eq!(m["engine"], engine.name());
-    assert_eq!(m["stacked_passes"], engine == lineside::model::EngineKind::Onnxruntime);
+    assert_eq!(m["stacked_passes"], m["stacking"]["stacked"]);
+    let decided_by = if engine == lineside::model::EngineKind::Tract { "engine" } else { "calibrated" };
+    assert_eq!(m["stacking"]["decided_by"], decided_by);
     assert_eq!(m["selftest"]["samples"], 15);
     assert!(m["batching"]["lanes"].as_u64().unwrap() >= 1);
     let one: Value = c.get(server.url("/models/washers")).send().await.unwrap().json().await.unwrap();
