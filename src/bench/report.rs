@@ -84,6 +84,10 @@ impl Step {
 /// The engine alone.
 #[derive(Debug, Clone, Serialize)]
 pub struct EngineStep {
+    /// Which engine (`tract`, `onnxruntime`).
+    pub engine: String,
+    /// Whether its passes were stacked.
+    pub stacked_passes: bool,
     /// Lanes and threads it ran with.
     pub lanes: usize,
     /// Threads per lane.
@@ -253,6 +257,11 @@ pub fn table(run: &Run) -> String {
         "step", "frames/s", "p50 ms", "p90 ms", "p99 ms", "p99.9", "max ms", "ok", "errors", "server cpu", "client cpu"
     );
     let cores = |c: Option<f64>| c.map_or_else(|| "-".into(), |c| format!("{c:.2}"));
+    let how = |stacked: bool| if stacked { "passes stacked" } else { "passes run image by image" };
+    let served = (run.model_info["engine"].as_str(), run.model_info["stacked_passes"].as_bool());
+    if let (Some(engine), Some(stacked)) = served {
+        let _ = writeln!(t, "served by: {engine} ({})", how(stacked));
+    }
     for s in &run.steps {
         let _ = writeln!(
             t,
@@ -276,8 +285,13 @@ pub fn table(run: &Run) -> String {
     if let Some(e) = &run.engine {
         let _ = writeln!(
             t,
-            "engine alone ({} lane(s) x {} thread(s), no HTTP, no decoding): {:.1} images/s, p50 {:.2} ms per image",
-            e.lanes, e.lane_threads, e.throughput, e.latency.p50_ms
+            "engine alone ({}, {}, {} lane(s) x {} thread(s), no HTTP, no decoding): {:.1} images/s, p50 {:.2} ms per image",
+            e.engine,
+            how(e.stacked_passes),
+            e.lanes,
+            e.lane_threads,
+            e.throughput,
+            e.latency.p50_ms
         );
     }
     if let Some(r) = run.serving_ratio {

@@ -390,7 +390,14 @@ fn engine_step(m: &ModelConfig, frames: &[(String, Vec<u8>)], args: &BenchArgs) 
     };
     eprintln!("engine alone: {lanes} lane(s) x {lane_threads} thread(s) for {:?}", args.duration);
     let r = engine::run(&model, &tensors, lanes, lane_threads, m.batching.batch_cap, args.warmup, args.duration)?;
-    Ok(EngineStep { lanes, lane_threads, throughput: r.throughput(), latency: summarize(&r.samples_us) })
+    Ok(EngineStep {
+        engine: model.engine().name().into(),
+        stacked_passes: model.stacks(),
+        lanes,
+        lane_threads,
+        throughput: r.throughput(),
+        latency: summarize(&r.samples_us),
+    })
 }
 
 /// Whether `--report FILE` asks for HTML (true) or SVG (false); checked before any step runs.

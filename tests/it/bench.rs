@@ -83,6 +83,11 @@ fn a_short_bench_on_the_demo_model_reports_consistent_figures_and_valid_charts()
         assert!((fps - expect).abs() <= 1e-6 * expect, "{name}: throughput {fps} vs ok / duration {expect}");
     }
     assert!(run["engine"]["throughput"].as_f64().unwrap() > 0.0);
+    // The engine the bench measured is the one the server used (both from the config and
+    // LINESIDE_ENGINE), and both are named.
+    let engine = crate::util::engine_under_test().name();
+    assert_eq!(run["engine"]["engine"], engine);
+    assert_eq!(run["model_info"]["engine"], engine);
     assert!(run["serving_ratio"].as_f64().unwrap() > 0.0);
     let rec = run["recommendation"]["text"].as_str().unwrap();
     assert!(rec.contains("this machine") && rec.contains("safety systems"), "{rec}");

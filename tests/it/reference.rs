@@ -133,11 +133,11 @@ async fn served_scores_match_onnxruntime_with(config: lineside::config::Config) 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn gathered_passes_answer_each_image_with_its_own_scores() {
     let stacking = engine_under_test() == lineside::model::EngineKind::Onnxruntime;
-    let stack = if stacking { "stack = true\nlane_threads = 1 " } else { "lane_threads = 1 " };
+    let stack = if stacking { "stack = true  " } else { "stack = \"auto\"" };
     let config = washer_config_with(&[
         ("lanes = \"auto\"", "lanes = 1"),
         ("gather_us = 2000 ", "gather_us = 300000 "),
-        ("lane_threads = 1 ", stack),
+        ("stack = \"auto\"", stack),
     ]);
     let server = TestServer::start(config).await;
     let c = reqwest::Client::new();
