@@ -12,7 +12,7 @@
 //! | module | stage |
 //! |---|---|
 //! | [`config`] | TOML + flags, validated once into typed settings |
-//! | [`model`] | load the ONNX file, check its contract, plan and run it (tract stays here) |
+//! | [`model`] | load the ONNX file, check its contract, plan and run it on its engine (engine types stay here) |
 //! | [`preprocess`] | decode, ROI, convert, resize (Pillow's arithmetic), normalise; the bounded decode pool |
 //! | [`batch`] | per-model backlog, inference lanes, pass formation, deadlines at the lane |
 //! | [`selftest`] | sample images through the serving path at load, against expectations |
@@ -36,3 +36,34 @@ pub mod preprocess;
 pub mod selftest;
 pub mod server;
 pub mod shutdown;
+
+/// Whether this CPU has the instruction-set extensions the binary was compiled for (a build
+/// with `-C target-cpu=x86-64-v3` or higher would otherwise die of an illegal instruction on
+/// an older box). `Err` names the first one missing.
+///
+/// # Errors
+/// The name of an extension the build assumes and this CPU lacks.
+pub fn build_cpu_fits() -> Result<(), &'static str> {
+    #[cfg(target_arch = "x86_64")]
+    {
+        macro_rules! need {
+            ($($feature:tt),*) => {$(
+                if cfg!(target_feature = $feature) && !std::arch::is_x86_feature_detected!($feature) {
+                    return Err($feature);
+                }
+            )*};
+        }
+        need!("avx2", "fma", "bmi2", "avx512f", "avx512bw", "avx512vl");
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn the_build_fits_the_cpu_that_runs_the_tests() {
+        // A build made with a target-cpu this CPU cannot run would fail here (or earlier, with
+        // an illegal instruction); the default build assumes nothing beyond x86-64.
+        assert_eq!(super::build_cpu_fits(), Ok(()));
+    }
+}

@@ -7,6 +7,13 @@ use clap::Parser as _;
 use lineside::cli::{Cli, Command, Outcome};
 
 fn main() -> ExitCode {
+    if let Err(missing) = lineside::build_cpu_fits() {
+        eprintln!(
+            "lineside: this binary was built for CPUs with {missing} (RUSTFLAGS -C target-cpu), and this CPU lacks it; \
+             use a build without a target-cpu flag (the default) on this box"
+        );
+        return ExitCode::from(2);
+    }
     let cli = Cli::parse();
     let filter = match &cli.log_level {
         Some(level) => match tracing_subscriber::EnvFilter::try_new(level) {

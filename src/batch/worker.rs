@@ -1,9 +1,9 @@
 //! One inference lane: an OS thread that forms passes from the model's backlog and runs them.
 //!
 //! A lane owns one engine state ([`Runner`]) over the model's shared plan, with the lane's
-//! thread count. It blocks on the
-//! backlog and the stop channel; a job arriving starts a pass, which takes what is already
-//! queued (and, for stacking engines, waits up to the gathering window) before running. Jobs
+//! thread count. It blocks on the backlog and the stop channel; a job arriving starts a
+//! pass, which takes what is already queued (and, when passes are stacked and a burst is
+//! under way, waits up to the gathering window) before running. Jobs
 //! past their deadline or whose client has gone are answered or dropped without running. An
 //! engine error or panic answers the affected job with [`BatchError::Inference`], is counted,
 //! and after a panic the lane replaces its engine state (a restart) and goes on serving.
@@ -17,7 +17,7 @@ use crossbeam_channel::{Receiver, RecvTimeoutError, TryRecvError, select};
 
 use super::{BatchError, BusyClock, FaultPlan, Gather, Job, Scored};
 use crate::metrics::ModelMetrics;
-use crate::model::{Model, Runner};
+use crate::model::{Model, RunError, Runner};
 
 /// What connects a lane to its batcher.
 pub struct LaneEnds {
@@ -170,19 +170,11 @@ impl Lane {
         for job in &pass {
             self.metrics.backlog_wait.observe((now - job.enqueued).as_secs_f64());
         }
-        let fault = &self.fault;
-        std::thread::sleep(fault.stall());
-        let runner = &mut self.runner;
-        let result = catch_unwind(AssertUnwindSafe(|| {
-            if fault.fire() {
-                panic!("injected fault (FaultPlan)");
-            }
-            let inputs: Vec<&[f32]> = pass.iter().map(|j| j.tensor.as_slice()).collect();
-            runner.run_pass(&inputs)
-        }));
+        let inputs: Vec<&[f32]> = pass.iter().map(|j| j.tensor.as_slice()).collect();
+        let result = self.guarded(|runner| runner.run_pass(&inputs));
         let infer = now.elapsed();
         self.metrics.inference_duration.observe(started.elapsed().as_secs_f64());
-        match self.outcome(result) {
+        match result {
             Ok(all) => {
                 for (job, scores) in pass.into_iter().zip(all) {
                     let _ = job.reply.send(Ok(Scored { scores, wait: started - job.enqueued, infer, pass_size: size }));
@@ -196,8 +188,18 @@ impl Lane {
         }
     }
 
-    /// Count and log a failed run, replacing the engine state after a panic.
-    fn outcome<T>(&mut self, result: std::thread::Result<Result<T, crate::model::RunError>>) -> Result<T, BatchError> {
+    /// Run `f` on the engine state under the fault plan; a failure is counted and logged, and
+    /// after a panic the engine state is replaced.
+    fn guarded<T>(&mut self, f: impl FnOnce(&mut Runner) -> Result<T, RunError>) -> Result<T, BatchError> {
+        let fault = &self.fault;
+        std::thread::sleep(fault.stall());
+        let runner = &mut self.runner;
+        let result = catch_unwind(AssertUnwindSafe(|| {
+            if fault.fire() {
+                panic!("injected fault (FaultPlan)");
+            }
+            f(runner)
+        }));
         match result {
             Ok(Ok(v)) => Ok(v),
             Ok(Err(e)) => {
@@ -216,16 +218,9 @@ impl Lane {
 
     fn run_one(&mut self, job: &Job, started: Instant, size: usize) -> Result<Scored, BatchError> {
         let t = Instant::now();
-        let fault = &self.fault;
-        std::thread::sleep(fault.stall());
-        let result = catch_unwind(AssertUnwindSafe(|| {
-            if fault.fire() {
-                panic!("injected fault (FaultPlan)");
-            }
-            self.runner.run(&job.tensor)
-        }));
+        let result = self.guarded(|runner| runner.run(&job.tensor));
         let infer = t.elapsed();
-        self.outcome(result).map(|scores| Scored { scores, wait: started - job.enqueued, infer, pass_size: size })
+        result.map(|scores| Scored { scores, wait: started - job.enqueued, infer, pass_size: size })
     }
 
     fn replace_runner(&mut self) {
