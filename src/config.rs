@@ -734,14 +734,7 @@ fn validate(
             (Some(e), _) | (None, Some(e)) => e,
             (None, None) => default_engine()?,
         };
-        if !engine.built() {
-            return Err(format!(
-                "{ctx}: engine = {:?}: this lineside was built without it; rebuild with \
-                 `cargo build --release --features {}`, or set engine = \"tract\"",
-                engine.name(),
-                engine.name()
-            ));
-        }
+        let engine = engine.require_built().map_err(|e| format!("{ctx}: {e}"))?;
         let mut raw_batching = m.batching;
         overrides.batching.apply(&mut raw_batching);
         let batching = validate_batching(raw_batching).map_err(|e| format!("{ctx}: {e}"))?;
@@ -809,7 +802,10 @@ impl ModelConfig {
 }
 
 /// The engine for models without an `engine` key: `LINESIDE_ENGINE` if set, else tract.
-fn default_engine() -> Result<EngineKind, String> {
+///
+/// # Errors
+/// `LINESIDE_ENGINE` names no engine.
+pub fn default_engine() -> Result<EngineKind, String> {
     match std::env::var(ENGINE_ENV) {
         Ok(v) if !v.is_empty() => v.parse().map_err(|e| format!("{ENGINE_ENV}={v}: {e}")),
         _ => Ok(EngineKind::Tract),

@@ -80,6 +80,13 @@ pub struct BenchArgs {
 }
 
 /// "200/s", "200" or "12.5/s" → frames per second.
+impl BenchArgs {
+    /// `--engine` as a flag for the `lineside serve` the bench starts (none without it).
+    fn serve_flags(&self) -> Vec<String> {
+        self.engine.iter().map(|e| format!("--engine={}", e.name())).collect()
+    }
+}
+
 fn parse_rate(s: &str) -> Result<f64, String> {
     let n = s.trim().trim_end_matches("/s");
     match n.parse::<f64>() {
@@ -166,7 +173,6 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
     );
     let overrides = Overrides { engine: args.engine, ..Overrides::default() };
     let config = Config::load(args.config.config.as_deref(), &overrides)?;
-    let engine_flags: Vec<String> = args.engine.iter().map(|e| format!("--engine={}", e.name())).collect();
     let model_cfg = match &args.model {
         Some(name) => config.models.iter().find(|m| &m.name == name),
         None => config.models.first(),
@@ -209,7 +215,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
         let (server, target) = match &args.url {
             Some(url) => (None, target_of(url, &model_name)?),
             None => {
-                let s = ChildServer::start(config_path, &engine_flags)?;
+                let s = ChildServer::start(config_path, &args.serve_flags())?;
                 let t = s.target(&model_name);
                 (Some(s), t)
             }
@@ -350,7 +356,7 @@ fn tune(
                     format!("--lanes={lanes}"),
                     format!("--lane-threads={lane_threads}"),
                 ];
-                flags.extend(args.engine.map(|e| format!("--engine={}", e.name())));
+                flags.extend(args.serve_flags());
                 let server = ChildServer::start(config_path, &flags)?;
                 let target = server.target(model);
                 let mut steps = Vec::new();

@@ -116,13 +116,7 @@ pub fn run(args: CheckArgs) -> anyhow::Result<Outcome> {
             };
             let mut mc = ModelConfig::bare(path.clone(), args.width, args.height, channels);
             if let Some(engine) = args.engine {
-                anyhow::ensure!(
-                    engine.built(),
-                    "--engine {}: this lineside was built without it (cargo build --release --features {})",
-                    engine.name(),
-                    engine.name()
-                );
-                mc.engine = engine;
+                mc.engine = engine.require_built().map_err(|e| anyhow::anyhow!("--engine: {e}"))?;
             }
             (path.display().to_string(), vec![mc])
         }

@@ -2,8 +2,10 @@
 //!
 //! An engine turns a checked ONNX file into a [`Planned`] model (built once, shared by the
 //! lanes), and each lane asks it for its own [`EngineState`] with the lane's thread count.
-//! The engine also says whether a formed pass should be stacked into one tensor: tract runs
-//! faster image by image (FACTS.md, README's engine table), onnxruntime faster stacked.
+//! The engine also says whether it can stack a formed pass into one tensor at all; whether
+//! a model's passes are stacked is decided at load (`load::decide_stacking`): never on
+//! tract (slower per image stacked, README's engine table), by config or calibration on
+//! onnxruntime.
 //!
 //! Engines: `tract` (pure Rust, always built, the default) and `onnxruntime` (cargo feature
 //! `onnxruntime`; the shared library is loaded at run time).
@@ -40,9 +42,20 @@ impl EngineKind {
         }
     }
 
-    /// Every engine this build includes.
-    pub fn all_built() -> Vec<EngineKind> {
-        [EngineKind::Tract, EngineKind::Onnxruntime].into_iter().filter(|k| k.built()).collect()
+    /// This engine, if this build includes it; else the message that says how to rebuild.
+    ///
+    /// # Errors
+    /// The engine is not in this build.
+    pub fn require_built(self) -> Result<EngineKind, String> {
+        if self.built() {
+            return Ok(self);
+        }
+        Err(format!(
+            "engine {:?}: this lineside was built without it; rebuild with \
+             `cargo build --release --features {}`, or use engine \"tract\"",
+            self.name(),
+            self.name()
+        ))
     }
 }
 

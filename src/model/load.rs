@@ -42,7 +42,6 @@ pub fn load_with_report(cfg: &ModelConfig) -> anyhow::Result<(Model, Report)> {
 struct Opened {
     file: String,
     version: String,
-    bytes_len: u64,
     labels: Option<Vec<String>>,
     bytes: Vec<u8>,
     proto: tract_onnx::pb::ModelProto,
@@ -70,7 +69,7 @@ fn open(cfg: &ModelConfig) -> anyhow::Result<Opened> {
         .with_context(|| format!("{file}: tract cannot type this graph (an unsupported operator or shape)"))?;
     let contract = check::contract(&typed, &file, &cfg.preprocess, labels.as_ref().map(Vec::len), cfg.scores)
         .map_err(anyhow::Error::msg)?;
-    Ok(Opened { file, version, bytes_len: bytes.len() as u64, bytes, labels, proto, inference, contract })
+    Ok(Opened { file, version, bytes, labels, proto, inference, contract })
 }
 
 /// Read and check a model's contract without planning it (what `lineside preprocess` needs).
@@ -83,7 +82,7 @@ pub fn contract(cfg: &ModelConfig) -> anyhow::Result<super::Contract> {
 
 fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Option<Report>)> {
     let start = Instant::now();
-    let Opened { file, version, bytes_len, bytes, labels, proto, inference, contract } = open(cfg)?;
+    let Opened { file, version, bytes, labels, proto, inference, contract } = open(cfg)?;
     // Without a labels file (`lineside check model.onnx`), classes are named by index.
     let labels = labels.unwrap_or_else(|| (0..contract.classes).map(|i| i.to_string()).collect());
 
@@ -94,7 +93,7 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
             .with_input_fact(0, input_fact(contract.input_type, shape))
             .and_then(|m| m.into_typed())
             .with_context(|| format!("{file}: tract cannot type the graph for input shape {shape:?}"))?;
-        Some(report::build(&proto, &at_b1, bytes_len))
+        Some(report::build(&proto, &at_b1, bytes.len() as u64))
     } else {
         None
     };
@@ -204,19 +203,20 @@ fn decide_stacking(model: &Model, mode: StackMode, cap: usize) -> anyhow::Result
         single = single.min(time(false)?);
         stacked = stacked.min(time(true)?);
     }
-    tracing::info!(
-        model = %model.name,
-        stacked_ms_per_image = stacked,
-        single_ms_per_image = single,
-        stacked = stacked <= 0.9 * single,
-        "calibrated how passes run"
-    );
-    Ok(Stacking {
+    let decision = Stacking {
         stacked: stacked <= 0.9 * single,
         decided_by: "calibrated",
         single_ms_per_image: Some(single),
         stacked_ms_per_image: Some(stacked),
-    })
+    };
+    tracing::info!(
+        model = %model.name,
+        stacked_ms_per_image = stacked,
+        single_ms_per_image = single,
+        stacked = decision.stacked,
+        "calibrated how passes run"
+    );
+    Ok(decision)
 }
 
 #[cfg(feature = "onnxruntime")]

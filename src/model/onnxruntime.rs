@@ -5,9 +5,9 @@
 //! variable `ORT_DYLIB_PATH`, the system's `libonnxruntime.so`. It is loaded once per process
 //! (the runtime allows one environment); every model using this engine shares it. Each lane
 //! builds its own session from the model's bytes with `intra_op_num_threads = lane_threads`
-//! (the runtime's default graph optimisations, as a Python `InferenceSession` gets), and
-//! passes are stacked along the batch axis: the runtime is faster per image on stacked
-//! batches (README, engine table).
+//! (the runtime's default graph optimisations, as a Python `InferenceSession` gets). It can
+//! stack a pass along the batch axis; whether it does is calibrated at load (on the machine
+//! of the README's engine table it gained nothing per core, so passes ran image by image).
 
 use std::path::{Path, PathBuf};
 use std::sync::Arc;

@@ -16,10 +16,7 @@ use tokio::task::JoinHandle;
 /// The engine the suite runs against: `LINESIDE_ENGINE` (models without an `engine` key use
 /// it), else tract. tools/test runs the whole suite once per engine the build includes.
 pub(crate) fn engine_under_test() -> lineside::model::EngineKind {
-    match std::env::var(lineside::config::ENGINE_ENV) {
-        Ok(v) if !v.is_empty() => v.parse().expect("LINESIDE_ENGINE names an engine"),
-        _ => lineside::model::EngineKind::Tract,
-    }
+    lineside::config::default_engine().expect("LINESIDE_ENGINE names an engine")
 }
 
 pub(crate) fn root() -> PathBuf {
