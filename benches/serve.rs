@@ -10,8 +10,9 @@
 //!   keep-alive clients posting a small PNG of the model's input size (closed loop), from this
 //!   process on one thread; the CPU time of each process is read from /proc.
 //!
-//! Raw and served steps alternate for five rounds (`LINESIDE_BENCH_ROUNDS`) and the median
-//! ratio is reported (the machine drifts between steps). The served steps are loaded by
+//! Raw and served steps alternate for five rounds (`LINESIDE_BENCH_ROUNDS`), in ABBA order
+//! (raw first in even rounds, served first in odd ones), and the median ratio is reported (the
+//! machine drifts between steps); `LINESIDE_BENCH_VERBOSE=1` prints every round. The served steps are loaded by
 //! `lineside bench`'s own generator; the idle step uses reqwest to read `timing_ms`. Also: 16 clients with `batch_cap = 8` against
 //! `batch_cap = 1` (the gathering ratio), and
 //! the idle overhead at concurrency 1: the median of total − infer − decode − preprocess as the
@@ -293,9 +294,24 @@ fn main() {
     for b in &bundles {
         let s = start(&b.config);
         let mut rounds = Vec::new();
-        for _ in 0..rounds_n {
-            let raw = raw_engine(b, 2, 1, secs);
-            let l = saturate(&s, b.name, &b.png, 16, secs);
+        for round in 0..rounds_n {
+            // ABBA order: a drift that favours whichever step comes first in a round (the
+            // raw step's model load leaves the cores a moment's rest) cancels out.
+            let (raw, l) = if round % 2 == 0 {
+                let raw = raw_engine(b, 2, 1, secs);
+                (raw, saturate(&s, b.name, &b.png, 16, secs))
+            } else {
+                let l = saturate(&s, b.name, &b.png, 16, secs);
+                (raw_engine(b, 2, 1, secs), l)
+            };
+            if std::env::var_os("LINESIDE_BENCH_VERBOSE").is_some() {
+                let order = if round % 2 == 0 { "raw first" } else { "served first" };
+                println!(
+                    "    round {round} ({order}): ratio {:.3}, raw {raw:.1} img/s, served {:.1} req/s",
+                    l.rate / raw,
+                    l.rate
+                );
+            }
             rounds.push((l.rate / raw, raw, l));
         }
         drop(s);
