@@ -77,6 +77,11 @@ pub struct ServerConfig {
     pub decode_threads: usize,
     /// Images waiting for a decode thread before new ones get 503 `overloaded`.
     pub decode_backlog: usize,
+    /// Frames of at most this many pixels (from their header) are decoded and preprocessed
+    /// on the HTTP thread that received them instead of the decode pool; 0: never.
+    pub decode_inline_pixels: u64,
+    /// Threads of the async runtime that runs HTTP (and the inline decodes).
+    pub http_threads: usize,
     /// Longest a client may take to send its request headers.
     pub header_timeout: Duration,
     /// Longest shutdown waits for requests in flight.
@@ -400,6 +405,8 @@ struct RawServer {
     max_pixels: Option<u64>,
     decode_threads: Option<usize>,
     decode_backlog: Option<usize>,
+    decode_inline_pixels: Option<u64>,
+    http_threads: Option<usize>,
     header_timeout_ms: Option<u64>,
     drain_ms: Option<u64>,
     deadline_ms: Option<u64>,
@@ -524,6 +531,11 @@ pub mod defaults {
     pub const DRAIN_MS: u64 = 10_000;
     /// `[server] decode_backlog`.
     pub const DECODE_BACKLOG: usize = 256;
+    /// `[server] decode_inline_pixels`: 128 x 128. A 96x96 PNG decodes and preprocesses in
+    /// about 0.08 ms here, well inside the time an async thread may run between awaits.
+    pub const DECODE_INLINE_PIXELS: u64 = 128 * 128;
+    /// `[server] http_threads`.
+    pub const HTTP_THREADS: usize = 1;
     /// `[models.batching] batch_cap`.
     pub const BATCH_CAP: usize = 8;
     /// `[models.batching] gather_us`.
@@ -684,12 +696,25 @@ fn validate(
     if decode_backlog == 0 {
         return Err("server.decode_backlog = 0: expected at least 1".into());
     }
+    let http_threads = s.http_threads.unwrap_or(defaults::HTTP_THREADS);
+    if http_threads == 0 || http_threads > 256 {
+        return Err(format!("server.http_threads = {http_threads}: expected 1 ..= 256"));
+    }
+    let decode_inline_pixels = s.decode_inline_pixels.unwrap_or(defaults::DECODE_INLINE_PIXELS);
+    if decode_inline_pixels > 1 << 20 {
+        return Err(format!(
+            "server.decode_inline_pixels = {decode_inline_pixels}: expected 0 ..= 1048576 (frames decoded on an HTTP \
+             thread hold it for the whole decode; 0 sends every frame to the decode pool)"
+        ));
+    }
     let server = ServerConfig {
         listen,
         body_limit_bytes: body_limit as usize,
         max_pixels,
         decode_threads,
         decode_backlog,
+        decode_inline_pixels,
+        http_threads,
         header_timeout: Duration::from_millis(positive(
             "server.header_timeout_ms",
             s.header_timeout_ms,
@@ -1020,6 +1045,8 @@ height = 32
         assert_eq!(m.preprocess.mean, vec![0.0; 3]);
         assert_eq!(m.preprocess.std, vec![1.0; 3]);
         assert_eq!(cfg.server.body_limit_bytes, 16 * 1024 * 1024);
+        assert_eq!(cfg.server.http_threads, 1);
+        assert_eq!(cfg.server.decode_inline_pixels, 16384);
         assert!(matches!(&m.onnx, Source::File(p) if p == Path::new("/base/m.onnx")));
     }
 
@@ -1068,8 +1095,17 @@ height = 32
             let err = parse(&format!("{MINIMAL}[models.batching]\n{batching}\n")).unwrap_err();
             assert!(err.contains(needle), "{batching}: {err}");
         }
-        let err = parse(&format!("[server]\nlisten = \"localhost\"\n{MINIMAL}")).unwrap_err();
-        assert!(err.contains("server.listen"), "{err}");
+        for (server, needle) in [
+            ("listen = \"localhost\"", "server.listen"),
+            ("http_threads = 0", "server.http_threads = 0"),
+            ("decode_inline_pixels = 5000000", "server.decode_inline_pixels = 5000000"),
+            ("decode_threads = 0", "server.decode_threads = 0"),
+        ] {
+            let err = parse(&format!("[server]\n{server}\n{MINIMAL}")).unwrap_err();
+            assert!(err.contains(needle), "{server}: {err}");
+        }
+        let zero = parse(&format!("[server]\ndecode_inline_pixels = 0\nhttp_threads = 2\n{MINIMAL}")).unwrap();
+        assert_eq!((zero.server.decode_inline_pixels, zero.server.http_threads), (0, 2));
     }
 
     #[test]

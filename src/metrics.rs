@@ -56,6 +56,7 @@ pub struct Metrics {
     low_confidence: IntCounterVec,
     model_info: IntGaugeVec,
     http_requests: IntCounterVec,
+    frames_decoded: IntCounterVec,
 }
 
 /// One model's handles, cloned into its lanes and handlers.
@@ -82,6 +83,10 @@ pub struct ModelMetrics {
     pub abandoned: IntCounter,
     /// Decode + preprocess time per image.
     pub preprocess_duration: Histogram,
+    /// Frames decoded on the HTTP thread that received them (`server.decode_inline_pixels`).
+    pub decoded_inline: IntCounter,
+    /// Frames decoded on the decode pool.
+    pub decoded_pool: IntCounter,
     request_duration: HistogramVec,
     model: String,
 }
@@ -160,6 +165,12 @@ impl Metrics {
         let predictions = counter("predictions_total", "Answers by model and top-1 label.", &["model", "label"]);
         let low_confidence =
             counter("low_confidence_total", "Answers whose top score is below the model's min_score.", &["model"]);
+        let frames_decoded = counter(
+            "frames_decoded_total",
+            "Frames decoded and preprocessed, by thread: \"http\" (small frames, on the thread that received \
+             them) or \"pool\" (the decode pool).",
+            &["model", "thread"],
+        );
         let backlog_wait = hist(
             "backlog_wait_seconds",
             "Time a request waited in the backlog for an inference lane.",
@@ -190,6 +201,7 @@ impl Metrics {
             low_confidence,
             model_info,
             http_requests,
+            frames_decoded,
         }
     }
 
@@ -215,6 +227,8 @@ impl Metrics {
             predictions: self.predictions.clone(),
             abandoned: self.abandoned.with_label_values(&[model]),
             preprocess_duration: self.preprocess_duration.with_label_values(&[model]),
+            decoded_inline: self.frames_decoded.with_label_values(&[model, "http"]),
+            decoded_pool: self.frames_decoded.with_label_values(&[model, "pool"]),
             request_duration: self.request_duration.clone(),
             model: model.to_string(),
         }
@@ -265,6 +279,8 @@ mod tests {
         );
         assert!(text.contains("lineside_pass_size_requests_bucket{model=\"washers\",le=\"4\"} 1"), "{text}");
         assert!(text.contains("lineside_backlog_depth{model=\"washers\"} 0"), "{text}");
+        assert!(text.contains("lineside_frames_decoded_total{model=\"washers\",thread=\"http\"} 0"), "{text}");
+        assert!(text.contains("lineside_frames_decoded_total{model=\"washers\",thread=\"pool\"} 0"), "{text}");
         assert!(text.contains("lineside_predictions_total{label=\"burr\",model=\"washers\"} 1"), "{text}");
         assert!(text.contains("lineside_predictions_total{label=\"good\",model=\"washers\"} 0"), "{text}");
         assert!(

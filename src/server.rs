@@ -67,6 +67,7 @@ pub async fn run(
         deadline: s.deadline,
         stall: s.stall,
         ready_backlog: s.ready_backlog,
+        decode_inline_pixels: s.decode_inline_pixels,
     };
     let in_flight = Arc::new(InFlight::default());
     let state = AppState {

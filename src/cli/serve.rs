@@ -63,7 +63,10 @@ pub fn run(args: ServeArgs) -> anyhow::Result<Outcome> {
         args.config.config.as_deref(),
         &Overrides { listen: args.listen, batching: args.batching.overrides(), engine: args.engine },
     )?;
+    // One HTTP thread by default: on a small box the lanes own the cores, and every extra
+    // async worker is one more thread to wake per request (README, Performance).
     let runtime = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(config.server.http_threads)
         .enable_all()
         .thread_name("lineside-http")
         .build()

@@ -2,8 +2,9 @@
 //! per part; the answer is the top classes of each.
 //!
 //! The handler only strings stages together: check readiness and the model, fix the
-//! request's deadline, read the body (bounded in size and time), decode and preprocess on the
-//! decode pool, queue on the model's batcher, shape the answer. Each failure maps to an
+//! request's deadline, read the body (bounded in size and time), decode and preprocess (here
+//! for a frame of at most `server.decode_inline_pixels`, else on the decode pool), queue on
+//! the model's batcher, shape the answer. Each failure maps to an
 //! [`ApiError`] through `From`, so every request gets a precise status. The whole request
 //! runs under its deadline: past it the answer is 504 `deadline`, and a job still queued is
 //! never run.
@@ -23,6 +24,8 @@ use super::error::{ApiError, ErrorKind};
 use super::multipart;
 use super::state::{AppState, ServedModel, find};
 use crate::model::top_k;
+use crate::preprocess::decode;
+use crate::preprocess::pool::CpuPool;
 
 /// The request header that may shorten the server's deadline, in milliseconds.
 pub const DEADLINE_HEADER: &str = "x-deadline-ms";
@@ -265,8 +268,18 @@ async fn classify_one(
     arrived: Instant,
     until: Instant,
 ) -> Result<Classified, ApiError> {
-    let pipeline = m.pipeline.clone();
-    let prepared = state.pool.run(move || pipeline.run(&image)).await??;
+    // A small frame is decoded here: handing it to a pool thread and back would cost more
+    // CPU (two thread wake-ups) than the decode itself. Larger ones go to the pool, so that
+    // a big JPEG never holds an HTTP thread.
+    let small = decode::header_pixels(&image).is_some_and(|p| p <= state.limits.decode_inline_pixels);
+    let prepared = if small {
+        m.metrics.decoded_inline.inc();
+        CpuPool::run_here(|| m.pipeline.run(&image))??
+    } else {
+        m.metrics.decoded_pool.inc();
+        let pipeline = m.pipeline.clone();
+        state.pool.run(move || pipeline.run(&image)).await??
+    };
     m.metrics.preprocess_duration.observe((prepared.decode + prepared.preprocess).as_secs_f64());
     let (decode, preprocess) = (prepared.decode, prepared.preprocess);
     let scored = m.batcher.infer(prepared.tensor, until).await?;

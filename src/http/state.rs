@@ -115,6 +115,8 @@ pub struct RequestLimits {
     pub stall: Duration,
     /// `ready_backlog`: the backlog share at which `/readyz` turns 503.
     pub ready_backlog: f64,
+    /// `decode_inline_pixels`: frames this small are decoded on the HTTP thread.
+    pub decode_inline_pixels: u64,
 }
 
 /// A count of classify requests in progress; [`InFlight::enter`] returns a guard that

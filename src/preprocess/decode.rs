@@ -28,6 +28,16 @@ pub struct FrameLimits {
     pub min_side: u32,
 }
 
+/// The pixel count (width x height) the image's header declares, read without decoding any
+/// pixels; `None` when the bytes are not an image this build reads, or the header is
+/// broken (the full decode then says what is wrong).
+pub fn header_pixels(bytes: &[u8]) -> Option<u64> {
+    let reader = ImageReader::new(Cursor::new(bytes)).with_guessed_format().ok()?;
+    reader.format()?;
+    let (w, h) = reader.into_dimensions().ok()?;
+    Some(u64::from(w) * u64::from(h))
+}
+
 /// Decode `bytes`, applying EXIF orientation when asked and dropping alpha.
 ///
 /// # Errors
@@ -225,6 +235,26 @@ mod tests {
         let err = decode(&png(40, 30), lim(1199), Orientation::Exif).unwrap_err();
         assert!(matches!(err, PreprocessError::TooLarge { width: 40, height: 30, max_pixels: 1199 }), "{err:?}");
         assert!(decode(&png(40, 30), lim(1200), Orientation::Exif).is_ok());
+    }
+
+    #[test]
+    fn header_pixels_reads_the_declared_size_only() {
+        assert_eq!(header_pixels(&png(40, 30)), Some(1200));
+        let img = RgbImage::from_fn(64, 48, |x, y| image::Rgb([x as u8, y as u8, 7]));
+        let mut jpeg = Vec::new();
+        img.write_to(&mut Cursor::new(&mut jpeg), ImageFormat::Jpeg).unwrap();
+        assert_eq!(header_pixels(&jpeg), Some(64 * 48));
+        // A header claiming 60000 x 60000 is read, not decoded: the caller sends it to the pool,
+        // where the full decode refuses it.
+        let mut p = png(1, 1);
+        p[16..20].copy_from_slice(&60000u32.to_be_bytes());
+        p[20..24].copy_from_slice(&60000u32.to_be_bytes());
+        let crc = crc32(&p[12..29]);
+        p[29..33].copy_from_slice(&crc.to_be_bytes());
+        assert_eq!(header_pixels(&p), Some(3_600_000_000));
+        assert_eq!(header_pixels(b"not an image"), None);
+        assert_eq!(header_pixels(&png(40, 30)[..12]), None);
+        assert_eq!(header_pixels(&[]), None);
     }
 
     #[test]

@@ -83,6 +83,15 @@ impl CpuPool {
         }
     }
 
+    /// Run `f` here, on the caller's thread, with the same panic guard as a pool job: for
+    /// work small enough that handing it to a pool thread and back costs more than the work.
+    ///
+    /// # Errors
+    /// `Panicked` if `f` panicked.
+    pub fn run_here<T>(f: impl FnOnce() -> T) -> Result<T, PoolError> {
+        catch_unwind(AssertUnwindSafe(f)).map_err(|_| PoolError::Panicked)
+    }
+
     /// Jobs waiting for a thread now.
     pub fn queued(&self) -> usize {
         self.tx.len()
@@ -100,6 +109,9 @@ mod tests {
         let boom: Result<(), _> = pool.run(|| panic!("boom")).await;
         assert_eq!(boom, Err(PoolError::Panicked));
         assert_eq!(pool.run(|| "still here").await, Ok("still here"));
+        assert_eq!(CpuPool::run_here(|| 3), Ok(3));
+        let boom: Result<(), _> = CpuPool::run_here(|| panic!("boom here"));
+        assert_eq!(boom, Err(PoolError::Panicked));
     }
 
     // Multi-threaded: the test thread blocks on a std channel while a task submits the job.

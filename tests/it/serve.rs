@@ -200,6 +200,44 @@ async fn frames_too_small_outside_the_roi_or_ycck_get_their_own_statuses() {
     server.stop().await.unwrap();
 }
 
+/// Small frames are decoded on the HTTP thread that received them, large ones on the decode
+/// pool (`server.decode_inline_pixels`); where a frame is decoded must not change its answer.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn small_frames_decode_on_the_http_thread_with_the_same_answer() {
+    // A full 320x240 sample (76 800 pixels, above the default 16 384) and the same frame
+    // stretched to 96x96 (9 216 pixels, below it).
+    let big = samples().remove(0).bytes;
+    let frame = image::load_from_memory(&big).unwrap();
+    let mut small = Vec::new();
+    frame
+        .resize_exact(96, 96, image::imageops::FilterType::Triangle)
+        .write_to(&mut std::io::Cursor::new(&mut small), image::ImageFormat::Png)
+        .unwrap();
+    let c = client();
+    let mut answers = Vec::new();
+    for (config, http, pool) in [
+        (washer_config(), 1.0, 1.0),
+        (washer_config_with(&[("# decode_inline_pixels = 16384", "decode_inline_pixels = 0")]), 0.0, 2.0),
+    ] {
+        let server = TestServer::start(config).await;
+        let mut tops = Vec::new();
+        for body in [&small, &big] {
+            let r = c.post(server.url("/classify/washers?top=all")).body(body.clone()).send().await.unwrap();
+            assert_eq!(r.status(), 200);
+            let v: Value = r.json().await.unwrap();
+            tops.push(v["top"].clone());
+        }
+        let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
+        assert_eq!(metric(&m, r#"lineside_frames_decoded_total{model="washers",thread="http"}"#), http);
+        assert_eq!(metric(&m, r#"lineside_frames_decoded_total{model="washers",thread="pool"}"#), pool);
+        answers.push(tops);
+        server.stop().await.unwrap();
+    }
+    // Same pipeline code on either thread: the same scores to the bit.
+    assert_eq!(answers[0], answers[1]);
+    assert_ne!(answers[0][0], answers[0][1], "the two frames differ, so the comparison means something");
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn metrics_parse_and_count_every_request() {
     let server = TestServer::start(washer_config()).await;
