@@ -118,7 +118,13 @@ pub async fn run(
     let mut load_pending = true;
     let mut failure: Option<anyhow::Error> = None;
     tokio::pin!(shutdown);
-    tracing::info!(addr = %listener.local_addr()?, "listening");
+    tracing::info!(
+        addr = %listener.local_addr()?,
+        http_threads = s.http_threads,
+        decode_threads = s.decode_threads,
+        decode_inline_pixels = s.decode_inline_pixels,
+        "listening"
+    );
 
     loop {
         tokio::select! {
