@@ -564,6 +564,8 @@ pub struct Overrides {
     pub batching: BatchingOverrides,
     /// `--engine`: every model's `engine`.
     pub engine: Option<EngineKind>,
+    /// `--http-threads`: `[server] http_threads`.
+    pub http_threads: Option<usize>,
 }
 
 /// Batching keys set from the command line for every model; checked like the file's.
@@ -696,7 +698,7 @@ fn validate(
     if decode_backlog == 0 {
         return Err("server.decode_backlog = 0: expected at least 1".into());
     }
-    let http_threads = s.http_threads.unwrap_or(defaults::HTTP_THREADS);
+    let http_threads = overrides.http_threads.or(s.http_threads).unwrap_or(defaults::HTTP_THREADS);
     if http_threads == 0 || http_threads > 256 {
         return Err(format!("server.http_threads = {http_threads}: expected 1 ..= 256"));
     }
@@ -1106,6 +1108,13 @@ height = 32
         }
         let zero = parse(&format!("[server]\ndecode_inline_pixels = 0\nhttp_threads = 2\n{MINIMAL}")).unwrap();
         assert_eq!((zero.server.decode_inline_pixels, zero.server.http_threads), (0, 2));
+        // `--http-threads` wins over the file, and is checked like the key.
+        let flag = |n| Overrides { http_threads: Some(n), ..Overrides::default() };
+        let text = format!("[server]\nhttp_threads = 2\n{MINIMAL}");
+        let over = Config::from_toml(&text, "test.toml", &|p| Source::File(p.to_path_buf()), &flag(3)).unwrap();
+        assert_eq!(over.server.http_threads, 3);
+        let err = Config::from_toml(&text, "test.toml", &|p| Source::File(p.to_path_buf()), &flag(0)).unwrap_err();
+        assert!(format!("{err:#}").contains("server.http_threads = 0"), "{err:#}");
     }
 
     #[test]

@@ -21,6 +21,8 @@ pub struct Settings {
     pub lanes: usize,
     /// `lane_threads`.
     pub lane_threads: usize,
+    /// `[server] http_threads`, when known (a server this bench started).
+    pub http_threads: Option<usize>,
 }
 
 impl std::fmt::Display for Settings {
@@ -29,7 +31,11 @@ impl std::fmt::Display for Settings {
             f,
             "batch_cap = {}, gather_us = {}, lanes = {}, lane_threads = {}",
             self.batch_cap, self.gather_us, self.lanes, self.lane_threads
-        )
+        )?;
+        match self.http_threads {
+            Some(n) => write!(f, ", http_threads = {n}"),
+            None => Ok(()),
+        }
     }
 }
 
@@ -416,7 +422,8 @@ fn draw_distribution(run: &Run, area: &DrawingArea<SVGBackend<'_>, plotters::coo
 fn draw_grid(run: &Run, area: &DrawingArea<SVGBackend<'_>, plotters::coord::Shift>) -> DrawResult {
     // Columns: batch_cap x gather_us; rows: lanes x lane_threads. Colour: frames/s within budget.
     let mut cols: Vec<(usize, u64)> = run.grid.iter().map(|g| (g.settings.batch_cap, g.settings.gather_us)).collect();
-    let mut rows: Vec<(usize, usize)> = run.grid.iter().map(|g| (g.settings.lanes, g.settings.lane_threads)).collect();
+    let row_of = |s: &Settings| (s.lanes, s.lane_threads, s.http_threads);
+    let mut rows: Vec<(usize, usize, Option<usize>)> = run.grid.iter().map(|g| row_of(&g.settings)).collect();
     if run.grid.is_empty() {
         return Ok(());
     }
@@ -441,17 +448,18 @@ fn draw_grid(run: &Run, area: &DrawingArea<SVGBackend<'_>, plotters::coord::Shif
             _ => String::new(),
         })
         .y_label_formatter(&|v| match v {
-            SegmentValue::CenterOf(i) => {
-                rows.get(*i).map_or_else(String::new, |(l, t)| format!("{l} lane(s) x {t} thr"))
-            }
+            SegmentValue::CenterOf(i) => rows.get(*i).map_or_else(String::new, |(l, t, h)| match h {
+                Some(h) => format!("{l} lane(s) x {t} thr, http {h}"),
+                None => format!("{l} lane(s) x {t} thr"),
+            }),
             _ => String::new(),
         })
         .x_desc("batch_cap, gather_us")
-        .y_desc("lanes x lane_threads")
+        .y_desc("lanes x lane_threads, http_threads")
         .draw()?;
     for g in &run.grid {
         let x = cols.iter().position(|c| *c == (g.settings.batch_cap, g.settings.gather_us)).unwrap_or(0);
-        let y = rows.iter().position(|r| *r == (g.settings.lanes, g.settings.lane_threads)).unwrap_or(0);
+        let y = rows.iter().position(|r| *r == row_of(&g.settings)).unwrap_or(0);
         let (fill, label) = match g.throughput_at_budget {
             Some(f) => (shade(f / best).to_rgba(), format!("{f:.0}/s")),
             None => (RGBColor(200, 200, 200).to_rgba(), "over budget".into()),
@@ -538,7 +546,7 @@ mod tests {
     fn charts_are_drawn_for_a_sweep_and_a_one_row_grid() {
         let mut steps = vec![step(1, 100.0, 5.0, 0), step(4, 300.0, 20.0, 0)];
         steps[1].samples_us = (1..=500).map(|v| v * 40).collect();
-        let settings = |batch_cap| Settings { batch_cap, gather_us: 0, lanes: 1, lane_threads: 1 };
+        let settings = |batch_cap| Settings { batch_cap, gather_us: 0, lanes: 1, lane_threads: 1, http_threads: None };
         let grid = vec![
             GridPoint {
                 settings: settings(1),
@@ -547,6 +555,13 @@ mod tests {
                 concurrency: Some(1),
             },
             GridPoint { settings: settings(8), throughput_at_budget: None, p99_ms: None, concurrency: None },
+            // The grid's best point re-run with another HTTP thread count: a row of its own.
+            GridPoint {
+                settings: Settings { http_threads: Some(2), ..settings(1) },
+                throughput_at_budget: Some(120.0),
+                p99_ms: Some(8.0),
+                concurrency: Some(1),
+            },
         ];
         let run = Run {
             lineside_version: "0".into(),
@@ -570,10 +585,13 @@ mod tests {
         };
         let svg = svg(&run).unwrap();
         assert!(svg.starts_with("<svg") && svg.trim_end().ends_with("</svg>"));
-        for text in ["c=4", "90/s", "over budget", "99.9%", "cap 8, 0 us"] {
+        for text in ["c=4", "90/s", "120/s", "over budget", "99.9%", "cap 8, 0 us", "1 lane(s) x 1 thr, http 2"] {
             assert!(svg.contains(text), "the chart lacks {text:?}");
         }
         assert_eq!(run.recommendation.frames_per_s, Some(300.0), "the sweep's best beats the grid's");
+        let grid_only = recommend(&[], &run.grid, None, 40.0, None);
+        assert_eq!(grid_only.frames_per_s, Some(120.0));
+        assert!(grid_only.text.contains("lane_threads = 1, http_threads = 2"), "{}", grid_only.text);
         let page = html(&run).unwrap();
         assert!(page.contains("<svg") && !page.contains("<script"));
     }

@@ -62,6 +62,10 @@ pub struct BenchArgs {
     /// with that feature); passed on to the server lineside bench starts.
     #[arg(long, value_name = "NAME", conflicts_with = "url")]
     pub engine: Option<EngineKind>,
+    /// Threads that run HTTP in the server lineside bench starts (overrides `[server]
+    /// http_threads`); `--tune` also tries the other of 1 and 2 on its best point.
+    #[arg(long, value_name = "N", conflicts_with = "url")]
+    pub http_threads: Option<usize>,
     /// Measured time per step (e.g. 10s, 500ms).
     #[arg(long, value_name = "TIME", value_parser = parse_duration, default_value = "10s")]
     pub duration: Duration,
@@ -81,9 +85,10 @@ pub struct BenchArgs {
 
 /// "200/s", "200" or "12.5/s" → frames per second.
 impl BenchArgs {
-    /// `--engine` as a flag for the `lineside serve` the bench starts (none without it).
+    /// `--engine` and `--http-threads` as flags for the `lineside serve` the bench starts.
     fn serve_flags(&self) -> Vec<String> {
-        self.engine.iter().map(|e| format!("--engine={}", e.name())).collect()
+        let engine = self.engine.iter().map(|e| format!("--engine={}", e.name()));
+        engine.chain(self.http_threads.iter().map(|n| format!("--http-threads={n}"))).collect()
     }
 }
 
@@ -145,14 +150,16 @@ fn frames(args: &BenchArgs, model: Option<&ModelConfig>) -> anyhow::Result<Vec<(
     Ok(out)
 }
 
-/// The server's settings for this model as `/models/{model}` reports them.
-fn settings_of(info: &serde_json::Value) -> Option<Settings> {
+/// The server's settings for this model as `/models/{model}` reports them, with its HTTP
+/// threads when known (a server this bench started).
+fn settings_of(info: &serde_json::Value, http_threads: Option<usize>) -> Option<Settings> {
     let b = &info["batching"];
     Some(Settings {
         batch_cap: b["batch_cap"].as_u64()? as usize,
         gather_us: b["gather_us"].as_u64()?,
         lanes: b["lanes"].as_u64()? as usize,
         lane_threads: b["lane_threads"].as_u64()? as usize,
+        http_threads,
     })
 }
 
@@ -171,7 +178,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
         "--concurrency {:?}: expected numbers 1 ..= 4096",
         args.concurrency
     );
-    let overrides = Overrides { engine: args.engine, ..Overrides::default() };
+    let overrides = Overrides { engine: args.engine, http_threads: args.http_threads, ..Overrides::default() };
     let config = Config::load(args.config.config.as_deref(), &overrides)?;
     let model_cfg = match &args.model {
         Some(name) => config.models.iter().find(|m| &m.name == name),
@@ -186,6 +193,8 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
         anyhow::bail!("{}: no model named {model_name:?} (configured: {})", config.origin, names(&config));
     }
     let frames = frames(&args, model_cfg)?;
+    // The server's HTTP threads are known when this bench starts it.
+    let local_http = args.url.is_none().then_some(config.server.http_threads);
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build()?;
 
     let mut run = Run {
@@ -224,7 +233,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
         run.model_info = rt.block_on(load::get_json(&target, &format!("/models/{model_name}"))).with_context(|| {
             format!("{}/models/{model_name}: cannot read the model's description (is it a lineside server serving {model_name:?}?)", run.url)
         })?;
-        let configured = settings_of(&run.model_info);
+        let configured = settings_of(&run.model_info, local_http);
         let modes: Vec<Mode> = match args.rate {
             Some(r) => vec![Mode::Open(r)],
             None => args.concurrency.iter().map(|&c| Mode::Closed(c)).collect(),
@@ -235,7 +244,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
         }
         drop(server);
         if args.tune {
-            run.grid = tune(&rt, &args, config_path, &model_name, &bodies)?;
+            run.grid = tune(&rt, &args, config_path, &model_name, &bodies, config.server.http_threads)?;
         }
     }
     if args.engine_only || args.url.is_none() {
@@ -247,8 +256,8 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
     {
         run.serving_ratio = Some(best / e.throughput);
     }
-    run.recommendation =
-        report::recommend(&run.steps, &run.grid, settings_of(&run.model_info), args.p99_ms, args.line_rate);
+    let configured = settings_of(&run.model_info, local_http);
+    run.recommendation = report::recommend(&run.steps, &run.grid, configured, args.p99_ms, args.line_rate);
 
     print!("{}", report::table(&run));
     if !args.engine_only {
@@ -331,13 +340,17 @@ fn measure(
 }
 
 /// The batching grid: each point restarts the server with those settings and sweeps the
-/// concurrency list upwards until p99 leaves the budget or errors appear.
+/// concurrency list upwards until p99 leaves the budget or errors appear. The grid runs with
+/// the configured `http_threads`; on a box with more than one core, the best point is then
+/// run once more with the other of 1 and 2 HTTP threads (which one wins depends on how the
+/// HTTP work compares with the inference: README, Performance).
 fn tune(
     rt: &tokio::runtime::Runtime,
     args: &BenchArgs,
     config_path: Option<&Path>,
     model: &str,
     bodies: &[Bytes],
+    http_threads: usize,
 ) -> anyhow::Result<Vec<GridPoint>> {
     let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
     let mut arrangements = vec![(cores, 1)];
@@ -348,37 +361,60 @@ fn tune(
     for (lanes, lane_threads) in arrangements {
         for batch_cap in [1usize, 8] {
             for gather_us in [0u64, 2000] {
-                let settings = Settings { batch_cap, gather_us, lanes, lane_threads };
-                eprintln!("tuning: {settings}");
-                let mut flags = vec![
-                    format!("--batch-cap={batch_cap}"),
-                    format!("--gather-us={gather_us}"),
-                    format!("--lanes={lanes}"),
-                    format!("--lane-threads={lane_threads}"),
-                ];
-                flags.extend(args.serve_flags());
-                let server = ChildServer::start(config_path, &flags)?;
-                let target = server.target(model);
-                let mut steps = Vec::new();
-                for &c in &args.concurrency {
-                    let s = measure(rt, &target, bodies, Mode::Closed(c), args, Some(&server), Some(settings.clone()));
-                    let over = !s.within(args.p99_ms);
-                    steps.push(s);
-                    if over {
-                        break;
-                    }
-                }
-                let best = report::best_within(&steps, args.p99_ms);
-                grid.push(GridPoint {
-                    settings,
-                    throughput_at_budget: best.map(|s| s.throughput),
-                    p99_ms: best.map(|s| s.latency.p99_ms),
-                    concurrency: best.and_then(|s| s.concurrency),
-                });
+                let settings = Settings { batch_cap, gather_us, lanes, lane_threads, http_threads: Some(http_threads) };
+                grid.push(grid_point(rt, args, config_path, model, bodies, settings)?);
             }
         }
     }
+    let best = grid
+        .iter()
+        .filter(|g| g.throughput_at_budget.is_some())
+        .max_by(|a, b| a.throughput_at_budget.unwrap_or(0.0).total_cmp(&b.throughput_at_budget.unwrap_or(0.0)));
+    if let (true, Some(best)) = (cores > 1, best) {
+        let other = if http_threads == 1 { 2 } else { 1 };
+        let settings = Settings { http_threads: Some(other), ..best.settings.clone() };
+        grid.push(grid_point(rt, args, config_path, model, bodies, settings)?);
+    }
     Ok(grid)
+}
+
+/// One point of the grid: a server with `settings`, swept upwards until p99 leaves the budget.
+fn grid_point(
+    rt: &tokio::runtime::Runtime,
+    args: &BenchArgs,
+    config_path: Option<&Path>,
+    model: &str,
+    bodies: &[Bytes],
+    settings: Settings,
+) -> anyhow::Result<GridPoint> {
+    eprintln!("tuning: {settings}");
+    let mut flags = vec![
+        format!("--batch-cap={}", settings.batch_cap),
+        format!("--gather-us={}", settings.gather_us),
+        format!("--lanes={}", settings.lanes),
+        format!("--lane-threads={}", settings.lane_threads),
+    ];
+    // The point's own HTTP threads come after (and so win over) a --http-threads flag.
+    flags.extend(args.serve_flags());
+    flags.extend(settings.http_threads.map(|n| format!("--http-threads={n}")));
+    let server = ChildServer::start(config_path, &flags)?;
+    let target = server.target(model);
+    let mut steps = Vec::new();
+    for &c in &args.concurrency {
+        let s = measure(rt, &target, bodies, Mode::Closed(c), args, Some(&server), Some(settings.clone()));
+        let over = !s.within(args.p99_ms);
+        steps.push(s);
+        if over {
+            break;
+        }
+    }
+    let best = report::best_within(&steps, args.p99_ms);
+    Ok(GridPoint {
+        settings,
+        throughput_at_budget: best.map(|s| s.throughput),
+        p99_ms: best.map(|s| s.latency.p99_ms),
+        concurrency: best.and_then(|s| s.concurrency),
+    })
 }
 
 /// The engine alone, with the model's configured lanes and threads.

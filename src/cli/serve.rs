@@ -23,6 +23,9 @@ pub struct ServeArgs {
     /// build with that feature.
     #[arg(long, value_name = "NAME")]
     pub engine: Option<EngineKind>,
+    /// Threads that run HTTP (overrides `[server] http_threads`).
+    #[arg(long, value_name = "N")]
+    pub http_threads: Option<usize>,
 }
 
 /// `[models.batching]` keys as flags.
@@ -61,7 +64,12 @@ impl BatchingArgs {
 pub fn run(args: ServeArgs) -> anyhow::Result<Outcome> {
     let config = Config::load(
         args.config.config.as_deref(),
-        &Overrides { listen: args.listen, batching: args.batching.overrides(), engine: args.engine },
+        &Overrides {
+            listen: args.listen,
+            batching: args.batching.overrides(),
+            engine: args.engine,
+            http_threads: args.http_threads,
+        },
     )?;
     // One HTTP thread by default: on a small box the lanes own the cores, and every extra
     // async worker is one more thread to wake per request (README, Performance).
