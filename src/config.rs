@@ -532,7 +532,9 @@ pub mod defaults {
     /// `[server] decode_backlog`.
     pub const DECODE_BACKLOG: usize = 256;
     /// `[server] decode_inline_pixels`: 128 x 128. A 96x96 PNG decodes and preprocesses in
-    /// about 0.08 ms here, well inside the time an async thread may run between awaits.
+    /// about 0.08 ms here (a 128x128 one about twice that), less than the CPU that handing
+    /// it to a pool thread and back cost per request in the serving bench; larger frames go
+    /// to the pool, so that a slow decode never holds the HTTP thread.
     pub const DECODE_INLINE_PIXELS: u64 = 128 * 128;
     /// `[server] http_threads`.
     pub const HTTP_THREADS: usize = 1;

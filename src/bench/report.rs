@@ -190,6 +190,13 @@ pub fn best_within<'a>(steps: impl IntoIterator<Item = &'a Step>, budget_ms: f64
     })
 }
 
+/// The grid point with the most frames/s within the budget, if any stayed within it.
+pub fn best_point(grid: &[GridPoint]) -> Option<&GridPoint> {
+    grid.iter()
+        .filter(|g| g.throughput_at_budget.is_some())
+        .max_by(|a, b| a.throughput_at_budget.unwrap_or(0.0).total_cmp(&b.throughput_at_budget.unwrap_or(0.0)))
+}
+
 /// The recommendation from the closed-loop steps (or the grid's best point).
 pub fn recommend(
     steps: &[Step],
@@ -198,10 +205,7 @@ pub fn recommend(
     budget_ms: f64,
     line_rate: Option<f64>,
 ) -> Recommendation {
-    let grid_best = grid
-        .iter()
-        .filter(|g| g.throughput_at_budget.is_some())
-        .max_by(|a, b| a.throughput_at_budget.unwrap_or(0.0).total_cmp(&b.throughput_at_budget.unwrap_or(0.0)));
+    let grid_best = best_point(grid);
     let closed = steps.iter().filter(|s| s.concurrency.is_some());
     let (settings, fps, p99, conc) = match (grid_best, best_within(closed, budget_ms)) {
         (Some(g), s) if s.is_none_or(|s| g.throughput_at_budget.unwrap_or(0.0) > s.throughput) => {

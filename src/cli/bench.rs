@@ -85,10 +85,12 @@ pub struct BenchArgs {
 
 /// "200/s", "200" or "12.5/s" → frames per second.
 impl BenchArgs {
-    /// `--engine` and `--http-threads` as flags for the `lineside serve` the bench starts.
-    fn serve_flags(&self) -> Vec<String> {
+    /// `--engine` and the HTTP threads as flags for the `lineside serve` the bench starts:
+    /// `http_threads` (a grid point's) if given, else `--http-threads` (each flag at most
+    /// once: the server refuses a repeated one).
+    fn serve_flags(&self, http_threads: Option<usize>) -> Vec<String> {
         let engine = self.engine.iter().map(|e| format!("--engine={}", e.name()));
-        engine.chain(self.http_threads.iter().map(|n| format!("--http-threads={n}"))).collect()
+        engine.chain(http_threads.or(self.http_threads).map(|n| format!("--http-threads={n}"))).collect()
     }
 }
 
@@ -224,7 +226,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
         let (server, target) = match &args.url {
             Some(url) => (None, target_of(url, &model_name)?),
             None => {
-                let s = ChildServer::start(config_path, &args.serve_flags())?;
+                let s = ChildServer::start(config_path, &args.serve_flags(None))?;
                 let t = s.target(&model_name);
                 (Some(s), t)
             }
@@ -366,11 +368,7 @@ fn tune(
             }
         }
     }
-    let best = grid
-        .iter()
-        .filter(|g| g.throughput_at_budget.is_some())
-        .max_by(|a, b| a.throughput_at_budget.unwrap_or(0.0).total_cmp(&b.throughput_at_budget.unwrap_or(0.0)));
-    if let (true, Some(best)) = (cores > 1, best) {
+    if let (true, Some(best)) = (cores > 1, report::best_point(&grid)) {
         let other = if http_threads == 1 { 2 } else { 1 };
         let settings = Settings { http_threads: Some(other), ..best.settings.clone() };
         grid.push(grid_point(rt, args, config_path, model, bodies, settings)?);
@@ -394,9 +392,7 @@ fn grid_point(
         format!("--lanes={}", settings.lanes),
         format!("--lane-threads={}", settings.lane_threads),
     ];
-    // The point's own HTTP threads come after (and so win over) a --http-threads flag.
-    flags.extend(args.serve_flags());
-    flags.extend(settings.http_threads.map(|n| format!("--http-threads={n}")));
+    flags.extend(args.serve_flags(settings.http_threads));
     let server = ChildServer::start(config_path, &flags)?;
     let target = server.target(model);
     let mut steps = Vec::new();
@@ -476,6 +472,20 @@ fn write_outputs(args: &BenchArgs, run: &Run) -> anyhow::Result<()> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn the_child_server_gets_each_flag_once() {
+        use clap::Parser as _;
+        let cli =
+            crate::cli::Cli::try_parse_from(["lineside", "bench", "--engine", "tract", "--http-threads", "2"]).unwrap();
+        let crate::cli::Command::Bench(args) = cli.command else { panic!("not bench") };
+        assert_eq!(args.serve_flags(None), ["--engine=tract", "--http-threads=2"]);
+        // A grid point's own count replaces the flag instead of repeating it.
+        assert_eq!(args.serve_flags(Some(1)), ["--engine=tract", "--http-threads=1"]);
+        // ... which `lineside serve` would refuse.
+        let twice = ["lineside", "serve", "--http-threads=2", "--http-threads=1"];
+        assert!(crate::cli::Cli::try_parse_from(twice).is_err());
+    }
 
     #[test]
     fn rates_and_durations_parse_with_units() {
