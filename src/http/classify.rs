@@ -240,16 +240,18 @@ async fn answer(
     let content_type = headers.get(axum::http::header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
     let multipart = multipart::boundary(content_type);
     let Some(boundary) = multipart else {
-        let result = classify_one(state, m, body, top, arrived, until).await?;
+        let result = classify_one(state, m, body, top, arrived, until, true).await?;
         let answer = Answer { model: m.model.name.clone(), version: m.model.version.clone(), result };
         return Ok(Json(answer).into_response());
     };
     let boundary = boundary.map_err(|e| ApiError::new(ErrorKind::BadRequest, e))?;
     let (_, backlog) = m.batcher.depth();
     let parts = multipart::parse(&body, &boundary, backlog).map_err(|e| ApiError::new(ErrorKind::BadRequest, e))?;
-    // Every part goes through the pool and joins the backlog at once; answers keep part order.
+    // Every part goes through the pool, however small (a burst's parts decode in parallel
+    // there instead of one after another on the HTTP thread), and joins the backlog at once;
+    // answers keep part order.
     let jobs = parts.into_iter().enumerate().map(|(index, part)| async move {
-        let outcome = classify_one(state, m, part.data, top, arrived, until).await;
+        let outcome = classify_one(state, m, part.data, top, arrived, until, false).await;
         let (result, error) = match outcome {
             Ok(c) => (Some(c), None),
             Err(e) => (None, Some(PartError { kind: e.kind.as_str(), message: e.message })),
@@ -267,11 +269,13 @@ async fn classify_one(
     top: usize,
     arrived: Instant,
     until: Instant,
+    may_decode_here: bool,
 ) -> Result<Classified, ApiError> {
-    // A small frame is decoded here: handing it to a pool thread and back would cost more
-    // CPU (two thread wake-ups) than the decode itself. Larger ones go to the pool, so that
-    // a big JPEG never holds an HTTP thread.
-    let small = decode::header_pixels(&image).is_some_and(|p| p <= state.limits.decode_inline_pixels);
+    // A small single frame is decoded here: handing it to a pool thread and back would cost
+    // more CPU (two thread wake-ups) than the decode itself. Larger ones go to the pool, so
+    // that a big JPEG never holds an HTTP thread.
+    let small =
+        may_decode_here && decode::header_pixels(&image).is_some_and(|p| p <= state.limits.decode_inline_pixels);
     let prepared = if small {
         m.metrics.decoded_inline.inc();
         CpuPool::run_here(|| m.pipeline.run(&image))??

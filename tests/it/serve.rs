@@ -227,9 +227,28 @@ async fn small_frames_decode_on_the_http_thread_with_the_same_answer() {
             let v: Value = r.json().await.unwrap();
             tops.push(v["top"].clone());
         }
+        // A multipart burst's parts decode on the pool, however small: in parallel there.
+        let mut burst = Vec::new();
+        for name in ["a.png", "b.png"] {
+            let head = format!("--zz\r\nContent-Disposition: form-data; name=\"f\"; filename=\"{name}\"\r\n\r\n");
+            burst.extend_from_slice(head.as_bytes());
+            burst.extend_from_slice(&small);
+            burst.extend_from_slice(b"\r\n");
+        }
+        burst.extend_from_slice(b"--zz--\r\n");
+        let r = c
+            .post(server.url("/classify/washers"))
+            .header("content-type", "multipart/form-data; boundary=zz")
+            .body(burst)
+            .send()
+            .await
+            .unwrap();
+        assert_eq!(r.status(), 200);
+        let v: Value = r.json().await.unwrap();
+        assert_eq!(v["results"].as_array().unwrap().len(), 2, "{v}");
         let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
         assert_eq!(metric(&m, r#"lineside_frames_decoded_total{model="washers",thread="http"}"#), http);
-        assert_eq!(metric(&m, r#"lineside_frames_decoded_total{model="washers",thread="pool"}"#), pool);
+        assert_eq!(metric(&m, r#"lineside_frames_decoded_total{model="washers",thread="pool"}"#), pool + 2.0);
         answers.push(tops);
         server.stop().await.unwrap();
     }
