@@ -297,7 +297,8 @@ fn main() {
         for round in 0..rounds_n {
             // ABBA order: a drift that favours whichever step comes first in a round (the
             // raw step's model load leaves the cores a moment's rest) cancels out.
-            let (raw, l) = if round % 2 == 0 {
+            let raw_first = round % 2 == 0;
+            let (raw, l) = if raw_first {
                 let raw = raw_engine(b, 2, 1, secs);
                 (raw, saturate(&s, b.name, &b.png, 16, secs))
             } else {
@@ -305,7 +306,7 @@ fn main() {
                 (raw_engine(b, 2, 1, secs), l)
             };
             if std::env::var_os("LINESIDE_BENCH_VERBOSE").is_some() {
-                let order = if round % 2 == 0 { "raw first" } else { "served first" };
+                let order = if raw_first { "raw first" } else { "served first" };
                 println!(
                     "    round {round} ({order}): ratio {:.3}, raw {raw:.1} img/s, served {:.1} req/s",
                     l.rate / raw,
