@@ -110,7 +110,7 @@ struct Bench {
 
 /// One row of the table: (column, images/s).
 fn measure(b: &Bench, secs: f64, cores: usize, rounds: usize) -> Vec<(String, f64)> {
-    let mut mc = ModelConfig::bare(b.onnx.clone(), None, None, Channels::Rgb);
+    let mut mc = ModelConfig::bare(b.onnx.clone(), None, None, Some(Channels::Rgb));
     let model = load::load(&mc).unwrap_or_else(|e| panic!("{}: {e:#}", b.onnx.display()));
     let c = model.contract.clone();
     assert_eq!(c.input_type, InputType::Float32, "the benchmark models take floats");

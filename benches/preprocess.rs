@@ -59,15 +59,16 @@ fn contract(size: u32) -> Contract {
     }
 }
 
-fn config(resize: ResizeMode, crop_fraction: f64, mean: Vec<f32>, std: Vec<f32>) -> PreprocessConfig {
+fn config(resize: ResizeMode, short_side: Option<u32>, mean: Vec<f32>, std: Vec<f32>) -> PreprocessConfig {
     PreprocessConfig {
         width: None,
         height: None,
         resize,
-        crop_fraction,
+        short_side,
         pad_value: 0,
         filter: Filter::Bilinear,
         channels: Channels::Rgb,
+        channels_given: true,
         orientation: Orientation::Exif,
         roi: None,
         min_side: defaults::MIN_SIDE,
@@ -101,10 +102,11 @@ fn main() {
     let png = std::fs::read(&png_path).expect("benches/frames/washer-320x240.png");
     let n = 41;
 
-    let imagenet = config(ResizeMode::Crop, 0.875, defaults::IMAGENET_MEAN.to_vec(), defaults::IMAGENET_STD.to_vec());
+    let imagenet =
+        config(ResizeMode::Crop, Some(256), defaults::IMAGENET_MEAN.to_vec(), defaults::IMAGENET_STD.to_vec());
     let p224 = Pipeline::new(imagenet, &contract(224), defaults::MAX_PIXELS);
     let p96 = Pipeline::new(
-        config(ResizeMode::Stretch, 1.0, vec![0.0; 3], vec![1.0; 3]),
+        config(ResizeMode::Stretch, None, vec![0.0; 3], vec![1.0; 3]),
         &contract(96),
         defaults::MAX_PIXELS,
     );

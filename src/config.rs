@@ -222,7 +222,8 @@ pub struct SelftestConfig {
 pub enum ResizeMode {
     /// To width x height, ignoring aspect.
     Stretch,
-    /// Short side to S = floor(W / crop_fraction), then the centre W x W (square inputs).
+    /// Short side to `short_side` (default: the crop size W), then the centre W x W (square
+    /// inputs).
     Crop,
     /// Scale to fit inside width x height keeping aspect, centred on a `pad_value` canvas.
     Letterbox,
@@ -317,14 +318,21 @@ pub struct PreprocessConfig {
     pub height: Option<u32>,
     /// Resize mode.
     pub resize: ResizeMode,
-    /// For `resize = "crop"`: the centre crop's share of the resized short side (0 < f <= 1).
-    pub crop_fraction: f64,
+    /// For `resize = "crop"`: the short side in pixels the frame is resized to before the
+    /// centre crop (`None`: the crop size, so the crop takes the whole short side).
+    pub short_side: Option<u32>,
     /// For `resize = "letterbox"`: the level (0..255) of the padding, in every channel.
     pub pad_value: u8,
     /// Resampling filter.
     pub filter: Filter,
-    /// Channel order.
+    /// Channel order. When the config has no `channels` key and nothing else fixes the count
+    /// (`channels_given` false), this is a placeholder that the model's input replaces at load:
+    /// one channel is gray, three are RGB ([`PreprocessConfig::follow_model`]).
     pub channels: Channels,
+    /// Whether the config fixed the channels (`channels`, or `mean`/`std`/`normalize` that
+    /// imply a count).
+    #[serde(skip)]
+    pub channels_given: bool,
     /// Whether EXIF orientation is applied.
     pub orientation: Orientation,
     /// Crop this region (source pixels, after orientation) before anything else.
@@ -449,12 +457,11 @@ struct RawPreprocess {
     height: Option<u32>,
     #[serde(default = "default_resize")]
     resize: ResizeMode,
-    crop_fraction: Option<f64>,
+    short_side: Option<i64>,
     pad_value: Option<i64>,
     #[serde(default = "default_filter")]
     filter: Filter,
-    #[serde(default = "default_channels")]
-    channels: Channels,
+    channels: Option<Channels>,
     #[serde(default = "default_orientation")]
     orientation: Orientation,
     roi: Option<Vec<i64>>,
@@ -476,9 +483,6 @@ fn default_resize() -> ResizeMode {
 }
 fn default_filter() -> Filter {
     Filter::Bilinear
-}
-fn default_channels() -> Channels {
-    Channels::Rgb
 }
 fn default_divisor() -> f32 {
     255.0
@@ -509,7 +513,7 @@ enum RawLanes {
     Word(String),
 }
 
-/// Defaults, in one place (README's config table lists the same).
+/// Defaults, in one place (docs/configuration.md lists the same).
 pub mod defaults {
     /// `[server] listen`.
     pub const LISTEN: &str = "127.0.0.1:8080";
@@ -562,7 +566,7 @@ pub struct Overrides {
     /// `--listen ADDR`.
     pub listen: Option<String>,
     /// `--batch-cap`, `--gather-us`, `--lanes`, `--lane-threads`: every model's
-    /// `[models.batching]` key of that name (for trials and `lineside bench --tune`).
+    /// `[models.batching]` key of that name (for trials and `lineside bench --try-settings`).
     pub batching: BatchingOverrides,
     /// `--engine`: every model's `engine`.
     pub engine: Option<EngineKind>,
@@ -795,9 +799,10 @@ fn validate(
 
 impl ModelConfig {
     /// A model config for a bare ONNX file (`lineside check model.onnx`): default
-    /// preprocessing at `width` x `height` (or the model's own size) with `channels`,
-    /// classes named by index.
-    pub fn bare(onnx: PathBuf, width: Option<u32>, height: Option<u32>, channels: Channels) -> ModelConfig {
+    /// preprocessing at `width` x `height` (or the model's own size) with `channels` (`None`:
+    /// as the model's input has them), classes named by index.
+    pub fn bare(onnx: PathBuf, width: Option<u32>, height: Option<u32>, channels: Option<Channels>) -> ModelConfig {
+        let given = channels.unwrap_or(Channels::Rgb);
         let name = onnx.file_stem().map_or_else(|| "model".into(), |s| s.to_string_lossy().into_owned());
         ModelConfig {
             name,
@@ -807,17 +812,18 @@ impl ModelConfig {
                 width,
                 height,
                 resize: default_resize(),
-                crop_fraction: 1.0,
+                short_side: None,
                 pad_value: 0,
                 filter: default_filter(),
-                channels,
+                channels: given,
+                channels_given: channels.is_some(),
                 orientation: default_orientation(),
                 roi: None,
                 min_side: defaults::MIN_SIDE,
                 layout: None,
                 divisor: default_divisor(),
-                mean: vec![0.0; channels.count()],
-                std: vec![1.0; channels.count()],
+                mean: vec![0.0; given.count()],
+                std: vec![1.0; given.count()],
             },
             batching: validate_batching(RawBatching::default())
                 .unwrap_or_else(|e| unreachable!("defaults are valid: {e}")),
@@ -844,6 +850,49 @@ pub fn default_engine() -> Result<EngineKind, String> {
 /// Environment variable naming the engine for models without an `engine` key.
 pub const ENGINE_ENV: &str = "LINESIDE_ENGINE";
 
+/// The channels a `[models.preprocess]` table fixes, and whether it fixes them: the
+/// `channels` key; else a `mean`/`std` of one value (gray) or three (RGB), or `normalize`
+/// (three); else none (RGB as a placeholder until the model's input decides).
+fn implied_channels(p: &RawPreprocess) -> Result<(Channels, bool), String> {
+    if let Some(c) = p.channels {
+        return Ok((c, true));
+    }
+    if p.normalize.is_some() {
+        return Ok((Channels::Rgb, true));
+    }
+    let given = [("mean", &p.mean), ("std", &p.std)].into_iter().find_map(|(k, v)| Some((k, v.as_ref()?.len())));
+    match given {
+        None => Ok((Channels::Rgb, false)),
+        Some((_, 1)) => Ok((Channels::Gray, true)),
+        Some((_, 3)) => Ok((Channels::Rgb, true)),
+        Some((key, n)) => {
+            Err(format!("preprocess.{key} has {n} values, expected 3 (rgb, bgr) or 1 (gray): one per model channel"))
+        }
+    }
+}
+
+/// The error for a `short_side` smaller than the square crop it must contain.
+pub fn short_side_below_crop(short_side: u32, crop: u32) -> String {
+    format!(
+        "preprocess.short_side = {short_side} is below the crop size {crop}: the centre crop must fit inside the \
+         resized frame; set short_side >= {crop} (e.g. 256 for a 224 crop) or remove it (the crop size)"
+    )
+}
+
+impl PreprocessConfig {
+    /// These settings for a model whose input has `model_channels` channels: where the config
+    /// left the channels open, 1 is gray and 3 is RGB, with the default mean and std.
+    pub fn follow_model(mut self, model_channels: usize) -> PreprocessConfig {
+        if !self.channels_given {
+            self.channels = if model_channels == 1 { Channels::Gray } else { Channels::Rgb };
+            let n = self.channels.count();
+            (self.mean, self.std) = (vec![0.0; n], vec![1.0; n]);
+            self.channels_given = true;
+        }
+        self
+    }
+}
+
 fn positive(key: &str, v: Option<u64>, default: u64) -> Result<u64, String> {
     match v.unwrap_or(default) {
         0 => Err(format!("{key} = 0: expected at least 1")),
@@ -864,8 +913,9 @@ fn validate_preprocess(p: RawPreprocess) -> Result<PreprocessConfig, String> {
             p.divisor
         ));
     }
-    let n = p.channels.count();
-    let name = format!("{:?}", p.channels).to_lowercase();
+    let (channels, channels_given) = implied_channels(&p)?;
+    let n = channels.count();
+    let name = format!("{channels:?}").to_lowercase();
     let per_channel = |key: &str, v: Option<Vec<f32>>, default: f32| -> Result<Vec<f32>, String> {
         let v = v.unwrap_or_else(|| vec![default; n]);
         if v.len() != n {
@@ -888,7 +938,7 @@ fn validate_preprocess(p: RawPreprocess) -> Result<PreprocessConfig, String> {
         }
         Some("imagenet") => {
             let (m, s) = (defaults::IMAGENET_MEAN, defaults::IMAGENET_STD);
-            match p.channels {
+            match channels {
                 Channels::Rgb => (m.to_vec(), s.to_vec()),
                 // Listed in the model's channel order, after the swap.
                 Channels::Bgr => (vec![m[2], m[1], m[0]], vec![s[2], s[1], s[0]]),
@@ -904,15 +954,22 @@ fn validate_preprocess(p: RawPreprocess) -> Result<PreprocessConfig, String> {
     if let Some(bad) = std.iter().find(|x| **x <= 0.0) {
         return Err(format!("preprocess.std contains {bad}: every std must be > 0"));
     }
-    let crop_fraction = match (p.crop_fraction, p.resize) {
-        (None, _) => 1.0,
-        (Some(f), ResizeMode::Crop) if f > 0.0 && f <= 1.0 => f,
-        (Some(f), ResizeMode::Crop) => {
-            return Err(format!("preprocess.crop_fraction = {f}: expected 0 < f <= 1 (0.875 crops 224 from 256)"));
+    let short_side = match (p.short_side, p.resize) {
+        (None, _) => None,
+        (Some(v), ResizeMode::Crop) => {
+            let v = u32::try_from(v).ok().filter(|v| (1..=65535).contains(v)).ok_or_else(|| {
+                format!("preprocess.short_side = {v}: expected 1 ..= 65535 pixels (256 for the usual 256 -> 224)")
+            })?;
+            // The crop is square; its size is the model's when the config leaves it out
+            // (checked again at load, against the model's size).
+            if let Some(crop) = p.width.max(p.height).filter(|&c| v < c) {
+                return Err(short_side_below_crop(v, crop));
+            }
+            Some(v)
         }
         (Some(_), mode) => {
             let mode = format!("{mode:?}").to_lowercase();
-            return Err(format!("preprocess.crop_fraction applies only to resize = \"crop\" (resize is {mode:?})"));
+            return Err(format!("preprocess.short_side applies only to resize = \"crop\" (resize is {mode:?})"));
         }
     };
     let pad_value = match (p.pad_value, p.resize) {
@@ -946,10 +1003,11 @@ fn validate_preprocess(p: RawPreprocess) -> Result<PreprocessConfig, String> {
         width: p.width,
         height: p.height,
         resize: p.resize,
-        crop_fraction,
+        short_side,
         pad_value,
         filter: p.filter,
-        channels: p.channels,
+        channels,
+        channels_given,
         orientation: p.orientation,
         roi,
         min_side,
@@ -1079,6 +1137,21 @@ height = 32
     }
 
     #[test]
+    fn channels_left_open_follow_the_model_and_mean_std_imply_them() {
+        let open = parse(MINIMAL).unwrap().models[0].preprocess.clone();
+        assert!(!open.channels_given);
+        let gray = open.clone().follow_model(1);
+        assert_eq!((gray.channels, gray.mean, gray.std), (Channels::Gray, vec![0.0], vec![1.0]));
+        assert_eq!(open.follow_model(3).channels, Channels::Rgb);
+        let one = parse(&MINIMAL.replace("height = 32", "height = 32\nmean = [0.5]\nstd = [0.25]")).unwrap();
+        let p = one.models[0].preprocess.clone();
+        assert_eq!((p.channels, p.channels_given), (Channels::Gray, true));
+        // A stated channel order is never replaced by the model's.
+        let bgr = parse(&MINIMAL.replace("height = 32", "height = 32\nchannels = \"bgr\"")).unwrap();
+        assert_eq!(bgr.models[0].preprocess.clone().follow_model(1).channels, Channels::Bgr);
+    }
+
+    #[test]
     fn bad_values_are_refused_with_the_key() {
         for (edit, needle) in [
             ("height = 32\nstd = [1.0, 0.0, 1.0]", "every std must be > 0"),
@@ -1147,10 +1220,11 @@ height = 32
             ("height = 32\nnormalize = \"imagenet\"\nmean = [0.5, 0.5, 0.5]", "both given"),
             ("height = 32\nnormalize = \"coco\"", "normalize = \"coco\""),
             ("height = 32\nchannels = \"gray\"\nnormalize = \"imagenet\"", "needs 3 channels"),
-            ("height = 32\nresize = \"crop\"\ncrop_fraction = 1.5", "crop_fraction = 1.5"),
-            ("height = 32\ncrop_fraction = 0.875", "applies only to resize = \"crop\""),
+            ("height = 32\nresize = \"crop\"\nshort_side = 0", "short_side = 0"),
+            ("height = 32\nresize = \"crop\"\nshort_side = 31", "short_side = 31 is below the crop size 32"),
+            ("height = 32\nshort_side = 36", "applies only to resize = \"crop\""),
             ("height = 32\nresize = \"letterbox\"\npad_value = 300", "pad_value = 300"),
-            ("height = 32\npad_value = 114", "applies only to resize = \"letterbox\""),
+            ("height = 32\npad_value = 40", "applies only to resize = \"letterbox\""),
             ("height = 32\nroi = [0, 0, 10]", "preprocess.roi = [0, 0, 10]"),
             ("height = 32\nroi = [0, 0, 0, 10]", "w and h >= 1"),
             ("height = 32\nmin_side = 0", "min_side = 0"),
@@ -1169,9 +1243,9 @@ height = 32
         assert_eq!(p.mean, vec![0.406, 0.456, 0.485]);
         assert_eq!(p.std, vec![0.225, 0.224, 0.229]);
         let crop =
-            MINIMAL.replace("height = 32", "height = 32\nresize = \"crop\"\ncrop_fraction = 0.875\nroi = [1, 2, 3, 4]");
+            MINIMAL.replace("height = 32", "height = 32\nresize = \"crop\"\nshort_side = 36\nroi = [1, 2, 3, 4]");
         let p = parse(&crop).unwrap().models[0].preprocess.clone();
-        assert_eq!((p.crop_fraction, p.roi), (0.875, Some(Roi { x: 1, y: 2, w: 3, h: 4 })));
+        assert_eq!((p.short_side, p.roi), (Some(36), Some(Roi { x: 1, y: 2, w: 3, h: 4 })));
         assert_eq!((p.min_side, p.orientation, p.pad_value), (8, Orientation::Exif, 0));
     }
 }

@@ -2,8 +2,8 @@
 //!
 //! `check` loads a model and verifies its input/output contract, `serve` answers images over
 //! HTTP (decode, preprocess, batch, infer) with health probes and Prometheus metrics,
-//! `preprocess` writes the exact tensor a model gets for one image, and `bench` measures
-//! throughput and latency on this box and recommends settings.
+//! `preprocess` writes the exact tensor a model gets for one image, and `bench` says
+//! whether this box keeps up with the line's frame rate within its budget per frame.
 //!
 //! # Layout
 //!

@@ -139,7 +139,7 @@ pub async fn run(
                         served = Some(loaded.served.clone());
                         guards = loaded.guards;
                         if loaded.selftest_failures.is_empty() {
-                            tracing::info!(models = loaded.served.len(), "ready");
+                            tracing::info!(models = loaded.served.len(), "models loaded, accepting frames");
                             let _ = ready_tx.send(Readiness::Ready(loaded.served));
                         } else {
                             // Stay up, but never ready: the orchestrator keeps traffic away and

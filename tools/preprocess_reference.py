@@ -19,7 +19,7 @@ The reference pipeline (versions pinned in tools/requirements.txt):
                     new_short, new_long = S, int(S * long / short)
                   center_crop: crop_top = int(round((image_height - crop_height) / 2.0)),
                     crop_left = int(round((image_width - crop_width) / 2.0))
-                  with S = floor(W / crop_fraction).
+                  with S = short_side (default W).
                 letterbox: s = min(W / w, H / h), size int(w * s + 0.5) x int(h * s + 0.5),
                   pasted at ((W - nw) // 2, (H - nh) // 2) on a canvas of pad_value.
   normalise     (p / divisor - mean[c]) / std[c]; NCHW or NHWC; uint8 models get raw levels.
@@ -33,7 +33,6 @@ The second form prints, per file, onnxruntime's softmax probabilities on the ref
 import argparse
 import io
 import json
-import math
 import os
 import struct
 import subprocess
@@ -142,8 +141,7 @@ def frames():
 # ----------------------------------------------------------------------------- reference
 
 
-def resize_crop_box(w, h, W, frac):
-    s = math.floor(W / frac)
+def resize_crop_box(w, h, W, s):
     short, long = (w, h) if w <= h else (h, w)
     new_short, new_long = s, int(s * long / short)
     nw, nh = (new_short, new_long) if w <= h else (new_long, new_short)
@@ -158,7 +156,7 @@ def geometry(img_size, p, W, H, resize_fn, paste_fn):
     if mode == "stretch":
         return resize_fn((W, H), None)
     if mode == "crop":
-        size, box = resize_crop_box(w, h, W, p.get("crop_fraction", 1.0))
+        size, box = resize_crop_box(w, h, W, p.get("short_side", W))
         return resize_fn(size, box)
     s = min(W / w, H / h)
     nw, nh = int(w * s + 0.5), int(h * s + 0.5)
@@ -252,11 +250,11 @@ def level_scale(p, channels):
 
 # ----------------------------------------------------------------------------- cases
 
-MODELS = {  # fixture -> (layout, uint8, fixed size or None)
-    "dynamic_hw": ("nchw", False, None),
-    "lenet5": ("nchw", False, (32, 32)),
-    "nhwc": ("nhwc", False, (64, 64)),
-    "uint8": ("nchw", True, (32, 32)),
+MODELS = {  # fixture -> (layout, uint8, fixed size or None, channels; see tools/fixtures.py)
+    "dynamic_hw": ("nchw", False, None, 3),
+    "lenet5": ("nchw", False, (32, 32), 1),
+    "nhwc": ("nhwc", False, (64, 64), 3),
+    "uint8": ("nchw", True, (32, 32), 3),
 }
 
 
@@ -270,17 +268,18 @@ def cases(all_frames):
         add(f"format/{f}", f)
     for mode, size in [("stretch", (40, 30)), ("crop", (64, 64)), ("letterbox", (48, 48))]:
         for flt in FILTERS:
-            extra = {"crop": {"crop_fraction": 0.875}, "letterbox": {"pad_value": 114}}.get(mode, {})
+            extra = {"crop": {"short_side": 73}, "letterbox": {"pad_value": 40}}.get(mode, {})
             add(f"{mode}/{flt}", "png_rgb8", size=size, resize=mode, filter=flt, **extra)
             add(f"{mode}/{flt}/16bit", "png_rgb16", size=size, resize=mode, filter=flt, **extra)
-    add("crop/portrait_odd", "png_portrait", size=(57, 57), resize="crop", crop_fraction=0.9, filter="bicubic")
+    add("crop/portrait_odd", "png_portrait", size=(57, 57), resize="crop", short_side=63, filter="bicubic")
     add("crop/upscale", "png_small", size=(96, 96), resize="crop", filter="bilinear")
     add("stretch/upscale_lanczos", "png_small", size=(96, 80), filter="lanczos")
     add("letterbox/portrait", "png_portrait", size=(64, 40), resize="letterbox", pad_value=0)
     add("channels/gray_from_rgb", "png_rgb8", model="lenet5", size=None, channels="gray")
+    add("channels/gray_by_default", "png_rgb8", model="lenet5", size=None)  # no channels key: the model's 1
     add("channels/gray_from_rgb16", "png_rgb16", model="lenet5", size=None, channels="gray", filter="area")
     add("channels/bgr_imagenet", "png_rgb8", size=(48, 48), channels="bgr", normalize="imagenet", resize="crop",
-        crop_fraction=0.875)
+        short_side=54)
     add("channels/rgb_mean_std", "tiff_rgb16", size=(48, 36), mean=[0.5, 0.4, 0.3], std=[0.2, 0.25, 0.3])
     add("layout/nhwc", "png_rgb8", model="nhwc", size=None, filter="bicubic")
     add("layout/uint8", "png_rgb8", model="uint8", size=None, filter="lanczos")
@@ -350,9 +349,10 @@ def main():
     report = []
     for case in cases(all_frames):
         data, kind, arr16 = all_frames[case["frame"]]
-        layout, uint8, fixed = MODELS[case["model"]]
+        layout, uint8, fixed, channels = MODELS[case["model"]]
         W, H = case["size"] or fixed
-        p = case["pre"]
+        # Without a channels key the config follows the model: one channel is gray.
+        p = dict(case["pre"], channels=case["pre"].get("channels", "gray" if channels == 1 else "rgb"))
         slug = case["name"].replace("/", "-")
         cfg, out = os.path.join(args.work, slug + ".toml"), os.path.join(args.work, slug + ".npy")
         write_config(cfg, case)

@@ -210,7 +210,7 @@ impl FaultPlan {
 /// Lanes for `Lanes::Auto`: as many lanes of `lane_threads` threads as fit the cores (at
 /// least one). With the default `lane_threads = 1` that is one single-threaded lane per core:
 /// two lanes x 1 thread used 1.95 of 2 cores here, against 1.2-1.8 for one 2-thread lane,
-/// and gave the most images per second (README, performance).
+/// and gave the most images per second (docs/performance.md).
 pub fn auto_lanes(lane_threads: usize) -> usize {
     let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
     (cores / lane_threads.max(1)).max(1)

@@ -1,15 +1,17 @@
-//! `lineside bench`: how many frames per second this box sustains at the line's latency
-//! budget, and with which batching settings.
+//! `lineside bench`: whether this box keeps up with the line (its frames per second, each
+//! answered within its budget), with what margin and with which settings.
 //!
 //! | file | part |
 //! |---|---|
 //! | [`load`] | the HTTP load generator: closed and open loop, every latency kept |
 //! | [`child`] | a `lineside serve` child process on a free loopback port |
 //! | [`engine`] | the engine alone, for the serving-overhead ratio |
-//! | [`report`] | percentiles, the table, the JSON and the SVG/HTML charts, the recommendation |
+//! | [`report`] | the steps, the settings tried, the verdict, the table and the JSON |
+//! | [`chart`] | the share of frames slower than each latency, with the budget; SVG and HTML |
 //!
-//! The command itself (child server, sweep, grid) is in `cli/bench.rs`.
+//! The command itself (child server, steps, settings tried) is in `cli/bench.rs`.
 
+pub mod chart;
 pub mod child;
 pub mod engine;
 pub mod load;
@@ -71,7 +73,7 @@ pub fn summarize(samples_us: &[u64]) -> Latency {
     }
 }
 
-/// The latency at each of `quantiles`, in milliseconds (for the distribution chart).
+/// The latency at each of `quantiles`, in milliseconds (for the slower-than chart).
 pub fn quantile_curve(samples_us: &[u64], quantiles: &[f64]) -> Vec<f64> {
     let h = histogram(samples_us);
     quantiles.iter().map(|&q| h.value_at_quantile(q) as f64 / 1e3).collect()

@@ -1,5 +1,7 @@
-//! `lineside bench`: drive a server with frames and report throughput and latency, a
-//! recommendation, and optionally the engine alone and a grid of batching settings.
+//! `lineside bench`: drive a server with frames and say whether this box keeps up with the
+//! line (`--line-fps` frames per second, each within `--budget-ms`), with what margin, and
+//! optionally with which of several arrangements of lanes and batching (`--try-settings`);
+//! also the engine alone.
 //!
 //! Without `--url` lineside starts `lineside serve` as a child process on a free loopback
 //! port (so its CPU time is read apart from the load generator's); with `--url` it drives a
@@ -14,9 +16,10 @@ use axum::body::Bytes;
 
 use super::{ConfigArg, Outcome};
 use crate::batch::auto_lanes;
+use crate::bench::chart;
 use crate::bench::child::ChildServer;
 use crate::bench::load::{self, Mode, Target};
-use crate::bench::report::{self, EngineStep, GridPoint, Run, Settings, Step};
+use crate::bench::report::{self, EngineStep, Line, LineResult, Run, Settings, Step};
 use crate::bench::{Machine, cpu_seconds, engine, summarize};
 use crate::config::{Config, Lanes, ModelConfig, Overrides};
 use crate::model::{EngineKind, load as model_load};
@@ -39,22 +42,24 @@ pub struct BenchArgs {
     /// Frames to post, files or folders of images (default: the model's self-test samples).
     #[arg(long, value_name = "DIR|FILE", num_args = 1..)]
     pub images: Vec<PathBuf>,
+    /// The line's budget per frame in milliseconds, arrival to answer: a frame answered later
+    /// is an uninspected part. Judged on p99.9 and the slowest frame.
+    #[arg(long, value_name = "MS")]
+    pub budget_ms: Option<f64>,
+    /// The frames per second the line sends (e.g. 25): the bench then posts frames at that
+    /// rate and at multiples of it, and says whether the box keeps up and with what margin.
+    #[arg(long, value_name = "RATE", value_parser = parse_rate, requires = "budget_ms", conflicts_with_all = ["rate", "concurrency"])]
+    pub line_fps: Option<f64>,
     /// Closed loop: the numbers of concurrent clients to sweep.
     #[arg(long, value_name = "N,N,...", value_delimiter = ',', default_value = "1,2,4,8,16,32")]
     pub concurrency: Vec<usize>,
     /// Open loop instead: frames due at this rate (e.g. 200/s), latency from the due time.
     #[arg(long, value_name = "RATE", value_parser = parse_rate)]
     pub rate: Option<f64>,
-    /// Re-run the server with a grid of batch_cap x gather_us x lanes x lane_threads and
-    /// report the best setting within the p99 budget.
-    #[arg(long, conflicts_with_all = ["url", "rate", "engine_only"])]
-    pub tune: bool,
-    /// The p99 latency budget in milliseconds (the line's cycle allowance for one frame).
-    #[arg(long, value_name = "MS", default_value_t = 100.0)]
-    pub p99_ms: f64,
-    /// The frame rate the line needs (e.g. 40/s), to report the headroom against.
-    #[arg(long, value_name = "RATE", value_parser = parse_rate)]
-    pub line_rate: Option<f64>,
+    /// Restart the server with each arrangement of lanes x lane_threads and batch_cap, run the
+    /// line's steps on each, and name the one that keeps up with the most margin.
+    #[arg(long, requires = "line_fps", conflicts_with_all = ["url", "engine_only"])]
+    pub try_settings: bool,
     /// Run the model through its engine only (no HTTP, no decoding): images per second.
     #[arg(long, conflicts_with_all = ["url", "rate"])]
     pub engine_only: bool,
@@ -63,7 +68,7 @@ pub struct BenchArgs {
     #[arg(long, value_name = "NAME", conflicts_with = "url")]
     pub engine: Option<EngineKind>,
     /// Threads that run HTTP in the server lineside bench starts (overrides `[server]
-    /// http_threads`); `--tune` also tries the other of 1 and 2 on its best point.
+    /// http_threads`); `--try-settings` also tries the other of 1 and 2 on its best arrangement.
     #[arg(long, value_name = "N", conflicts_with = "url")]
     pub http_threads: Option<usize>,
     /// Measured time per step (e.g. 10s, 500ms).
@@ -83,17 +88,22 @@ pub struct BenchArgs {
     pub samples: Option<PathBuf>,
 }
 
-/// "200/s", "200" or "12.5/s" → frames per second.
 impl BenchArgs {
     /// `--engine` and the HTTP threads as flags for the `lineside serve` the bench starts:
-    /// `http_threads` (a grid point's) if given, else `--http-threads` (each flag at most
+    /// `http_threads` (an arrangement's) if given, else `--http-threads` (each flag at most
     /// once: the server refuses a repeated one).
     fn serve_flags(&self, http_threads: Option<usize>) -> Vec<String> {
         let engine = self.engine.iter().map(|e| format!("--engine={}", e.name()));
         engine.chain(http_threads.or(self.http_threads).map(|n| format!("--http-threads={n}"))).collect()
     }
+
+    /// The line as given on the command line.
+    fn line(&self) -> Line {
+        Line { budget_ms: self.budget_ms, fps: self.line_fps }
+    }
 }
 
+/// "200/s", "200" or "12.5/s" → frames per second.
 fn parse_rate(s: &str) -> Result<f64, String> {
     let n = s.trim().trim_end_matches("/s");
     match n.parse::<f64>() {
@@ -174,7 +184,9 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
     if let Some(p) = &args.report {
         report_kind(p)?;
     }
-    anyhow::ensure!(args.p99_ms > 0.0, "--p99-ms {}: expected a positive budget", args.p99_ms);
+    if let Some(b) = args.budget_ms {
+        anyhow::ensure!(b > 0.0 && b.is_finite(), "--budget-ms {b}: expected a positive number of milliseconds");
+    }
     anyhow::ensure!(
         args.concurrency.iter().all(|&c| (1..=4096).contains(&c)),
         "--concurrency {:?}: expected numbers 1 ..= 4096",
@@ -210,13 +222,12 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
         frames: frames.iter().map(|f| f.0.clone()).collect(),
         warmup_s: args.warmup.as_secs_f64(),
         duration_s: args.duration.as_secs_f64(),
-        p99_budget_ms: args.p99_ms,
-        line_rate: args.line_rate,
+        line: args.line(),
         steps: Vec::new(),
         engine: None,
         serving_ratio: None,
-        grid: Vec::new(),
-        recommendation: report::recommend(&[], &[], None, args.p99_ms, None),
+        tried: Vec::new(),
+        verdict: report::judge(&[], &[], None, args.line()),
         caution: report::CAUTION.into(),
     };
     let bodies: Vec<Bytes> = frames.iter().map(|f| Bytes::from(f.1.clone())).collect();
@@ -236,17 +247,22 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
             format!("{}/models/{model_name}: cannot read the model's description (is it a lineside server serving {model_name:?}?)", run.url)
         })?;
         let configured = settings_of(&run.model_info, local_http);
-        let modes: Vec<Mode> = match args.rate {
-            Some(r) => vec![Mode::Open(r)],
-            None => args.concurrency.iter().map(|&c| Mode::Closed(c)).collect(),
+        run.steps = match args.line_fps {
+            Some(fps) => line_steps(&rt, &target, &bodies, fps, &args, server.as_ref(), configured.clone()),
+            None => {
+                let modes: Vec<Mode> = match args.rate {
+                    Some(r) => vec![Mode::Open(r)],
+                    None => args.concurrency.iter().map(|&c| Mode::Closed(c)).collect(),
+                };
+                let steps = modes
+                    .into_iter()
+                    .map(|m| measure(&rt, &target, &bodies, m, &args, server.as_ref(), configured.clone()));
+                steps.collect()
+            }
         };
-        for mode in modes {
-            let step = measure(&rt, &target, &bodies, mode, &args, server.as_ref(), configured.clone());
-            run.steps.push(step);
-        }
         drop(server);
-        if args.tune {
-            run.grid = tune(&rt, &args, config_path, &model_name, &bodies, config.server.http_threads)?;
+        if args.try_settings {
+            run.tried = try_settings(&rt, &args, config_path, &model_name, &bodies, config.server.http_threads)?;
         }
     }
     if args.engine_only || args.url.is_none() {
@@ -259,11 +275,11 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
         run.serving_ratio = Some(best / e.throughput);
     }
     let configured = settings_of(&run.model_info, local_http);
-    run.recommendation = report::recommend(&run.steps, &run.grid, configured, args.p99_ms, args.line_rate);
+    run.verdict = report::judge(&run.steps, &run.tried, configured, run.line);
 
     print!("{}", report::table(&run));
     if !args.engine_only {
-        println!("\n{}", run.recommendation.text);
+        println!("\nDoes this box keep up with the line? {}", run.verdict.text);
     }
     write_outputs(&args, &run)?;
     Ok(Outcome::Ok)
@@ -303,6 +319,47 @@ fn measure(
     server: Option<&ChildServer>,
     settings: Option<Settings>,
 ) -> Step {
+    let mut step = measure_once(rt, target, bodies, mode, args, server, settings);
+    if let Some(b) = args.budget_ms {
+        step.count_late(b);
+    }
+    step
+}
+
+/// The line's steps: frames due at the line's rate, then at each larger multiple of it
+/// ([`report::LINE_MULTIPLES`]) until one breaks the budget.
+fn line_steps(
+    rt: &tokio::runtime::Runtime,
+    target: &Target,
+    bodies: &[Bytes],
+    fps: f64,
+    args: &BenchArgs,
+    server: Option<&ChildServer>,
+    settings: Option<Settings>,
+) -> Vec<Step> {
+    let budget = args.budget_ms.unwrap_or(f64::INFINITY);
+    let mut steps = Vec::new();
+    for m in report::LINE_MULTIPLES {
+        let mut s = measure(rt, target, bodies, Mode::Open(fps * m), args, server, settings.clone());
+        s.multiple = Some(m);
+        let broke = !s.holds(budget);
+        steps.push(s);
+        if broke {
+            break;
+        }
+    }
+    steps
+}
+
+fn measure_once(
+    rt: &tokio::runtime::Runtime,
+    target: &Target,
+    bodies: &[Bytes],
+    mode: Mode,
+    args: &BenchArgs,
+    server: Option<&ChildServer>,
+    settings: Option<Settings>,
+) -> Step {
     let bar = indicatif::ProgressBar::new(1000);
     bar.set_style(
         indicatif::ProgressStyle::with_template("{prefix:>24} [{bar:40}] {elapsed}")
@@ -328,9 +385,11 @@ fn measure(
         mode: if concurrency.is_some() { "closed" } else { "open" }.into(),
         concurrency,
         rate,
+        multiple: None,
         settings,
         requests: m.total(),
         ok: m.ok,
+        late: None,
         throughput: m.throughput(),
         duration_s: m.wall_s,
         latency: summarize(&m.samples_us),
@@ -341,51 +400,50 @@ fn measure(
     }
 }
 
-/// The batching grid: each point restarts the server with those settings and sweeps the
-/// concurrency list upwards until p99 leaves the budget or errors appear. The grid runs with
-/// the configured `http_threads`; on a box with more than one core, the best point is then
-/// run once more with the other of 1 and 2 HTTP threads (which one wins depends on how the
-/// HTTP work compares with the inference: README, Performance).
-fn tune(
+/// The arrangements `--try-settings` measures: (lanes x lane_threads) {cores x 1, 1 x cores}
+/// x `batch_cap` {1, 8} (a cap of 8 gathers for up to 2 ms on an engine that stacks), each on a
+/// restarted server with the configured `http_threads`; on a box with more than one core the
+/// best is run once more with the other of 1 and 2 HTTP threads (which one wins depends on how
+/// the HTTP work compares with the inference: docs/performance.md).
+fn try_settings(
     rt: &tokio::runtime::Runtime,
     args: &BenchArgs,
     config_path: Option<&Path>,
     model: &str,
     bodies: &[Bytes],
     http_threads: usize,
-) -> anyhow::Result<Vec<GridPoint>> {
+) -> anyhow::Result<Vec<LineResult>> {
     let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
     let mut arrangements = vec![(cores, 1)];
     if cores > 1 {
         arrangements.push((1, cores));
     }
-    let mut grid = Vec::new();
+    let mut tried = Vec::new();
     for (lanes, lane_threads) in arrangements {
-        for batch_cap in [1usize, 8] {
-            for gather_us in [0u64, 2000] {
-                let settings = Settings { batch_cap, gather_us, lanes, lane_threads, http_threads: Some(http_threads) };
-                grid.push(grid_point(rt, args, config_path, model, bodies, settings)?);
-            }
+        for (batch_cap, gather_us) in [(1usize, 0u64), (8, 2000)] {
+            let settings = Settings { batch_cap, gather_us, lanes, lane_threads, http_threads: Some(http_threads) };
+            tried.push(trial(rt, args, config_path, model, bodies, settings)?);
         }
     }
-    if let (true, Some(best)) = (cores > 1, report::best_point(&grid)) {
+    let best = report::best_tried(&tried).and_then(|b| b.settings.clone());
+    if let (true, Some(best)) = (cores > 1, best) {
         let other = if http_threads == 1 { 2 } else { 1 };
-        let settings = Settings { http_threads: Some(other), ..best.settings.clone() };
-        grid.push(grid_point(rt, args, config_path, model, bodies, settings)?);
+        let settings = Settings { http_threads: Some(other), ..best };
+        tried.push(trial(rt, args, config_path, model, bodies, settings)?);
     }
-    Ok(grid)
+    Ok(tried)
 }
 
-/// One point of the grid: a server with `settings`, swept upwards until p99 leaves the budget.
-fn grid_point(
+/// One arrangement: a server with `settings`, driven at the line's rate and its multiples.
+fn trial(
     rt: &tokio::runtime::Runtime,
     args: &BenchArgs,
     config_path: Option<&Path>,
     model: &str,
     bodies: &[Bytes],
     settings: Settings,
-) -> anyhow::Result<GridPoint> {
-    eprintln!("tuning: {settings}");
+) -> anyhow::Result<LineResult> {
+    eprintln!("trying: {settings}");
     let mut flags = vec![
         format!("--batch-cap={}", settings.batch_cap),
         format!("--gather-us={}", settings.gather_us),
@@ -395,22 +453,10 @@ fn grid_point(
     flags.extend(args.serve_flags(settings.http_threads));
     let server = ChildServer::start(config_path, &flags)?;
     let target = server.target(model);
-    let mut steps = Vec::new();
-    for &c in &args.concurrency {
-        let s = measure(rt, &target, bodies, Mode::Closed(c), args, Some(&server), Some(settings.clone()));
-        let over = !s.within(args.p99_ms);
-        steps.push(s);
-        if over {
-            break;
-        }
-    }
-    let best = report::best_within(&steps, args.p99_ms);
-    Ok(GridPoint {
-        settings,
-        throughput_at_budget: best.map(|s| s.throughput),
-        p99_ms: best.map(|s| s.latency.p99_ms),
-        concurrency: best.and_then(|s| s.concurrency),
-    })
+    let (fps, budget) = (args.line_fps.context("--try-settings needs --line-fps")?, args.budget_ms.unwrap_or(0.0));
+    let steps = line_steps(rt, &target, bodies, fps, args, Some(&server), Some(settings.clone()));
+    let ladder: Vec<&Step> = steps.iter().collect();
+    LineResult::of(&ladder, budget, Some(settings)).context("no step ran at the line's rate")
 }
 
 /// The engine alone, with the model's configured lanes and threads.
@@ -453,7 +499,7 @@ fn write_outputs(args: &BenchArgs, run: &Run) -> anyhow::Result<()> {
         std::fs::write(p, text).with_context(|| format!("{}: cannot write the JSON report", p.display()))?;
     }
     if let Some(p) = &args.report {
-        let text = if report_kind(p)? { report::html(run)? } else { report::svg(run)? };
+        let text = if report_kind(p)? { chart::html(run)? } else { chart::svg(run)? };
         std::fs::write(p, text).with_context(|| format!("{}: cannot write the report", p.display()))?;
     }
     if let Some(p) = &args.samples {
@@ -480,7 +526,7 @@ mod tests {
             crate::cli::Cli::try_parse_from(["lineside", "bench", "--engine", "tract", "--http-threads", "2"]).unwrap();
         let crate::cli::Command::Bench(args) = cli.command else { panic!("not bench") };
         assert_eq!(args.serve_flags(None), ["--engine=tract", "--http-threads=2"]);
-        // A grid point's own count replaces the flag instead of repeating it.
+        // An arrangement's own count replaces the flag instead of repeating it.
         assert_eq!(args.serve_flags(Some(1)), ["--engine=tract", "--http-threads=1"]);
         // ... which `lineside serve` would refuse.
         let twice = ["lineside", "serve", "--http-threads=2", "--http-threads=1"];

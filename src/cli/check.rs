@@ -14,7 +14,7 @@ use serde::Serialize;
 use super::{ConfigArg, Outcome};
 use anyhow::Context as _;
 
-use crate::config::{Channels, Config, ModelConfig, Overrides, Source};
+use crate::config::{Channels, Config, ModelConfig, Overrides, PreprocessConfig, ResizeMode, Source};
 use crate::model::report::Report;
 use crate::model::{BatchAxis, Contract, EngineKind, InputType, Model, ScoreTransform, Stacking, load};
 use crate::preprocess::Pipeline;
@@ -35,9 +35,10 @@ pub struct CheckArgs {
     /// Input height for PATH.onnx (needed when the model leaves it dynamic).
     #[arg(long, requires = "onnx")]
     pub height: Option<u32>,
-    /// Channels for PATH.onnx: rgb, bgr or gray.
-    #[arg(long, requires = "onnx", default_value = "rgb", value_parser = ["rgb", "bgr", "gray"])]
-    pub channels: String,
+    /// Channels for PATH.onnx: rgb, bgr or gray (default: as the model's input has them, one
+    /// channel gray, three rgb).
+    #[arg(long, requires = "onnx", value_parser = ["rgb", "bgr", "gray"])]
+    pub channels: Option<String>,
     /// Check only the configured model with this name.
     #[arg(long, value_name = "NAME")]
     pub model: Option<String>,
@@ -86,6 +87,8 @@ pub struct Details {
     pub labels: Vec<String>,
     /// Input/output contract.
     pub contract: Contract,
+    /// The preprocessing in force (channels resolved against the model's input).
+    pub preprocess: PreprocessConfig,
     /// Layers and totals.
     pub report: Report,
     /// Time to parse, check, plan and warm, in ms.
@@ -109,11 +112,11 @@ pub struct Details {
 pub fn run(args: CheckArgs) -> anyhow::Result<Outcome> {
     let (origin, models) = match &args.onnx {
         Some(path) => {
-            let channels = match args.channels.as_str() {
+            let channels = args.channels.as_deref().map(|c| match c {
                 "gray" => Channels::Gray,
                 "bgr" => Channels::Bgr,
                 _ => Channels::Rgb,
-            };
+            });
             let mut mc = ModelConfig::bare(path.clone(), args.width, args.height, channels);
             if let Some(engine) = args.engine {
                 mc.engine = engine.require_built().map_err(|e| anyhow::anyhow!("--engine: {e}"))?;
@@ -199,6 +202,7 @@ fn check_one(mc: &ModelConfig) -> ModelCheck {
                     stacking: model.stacking.clone(),
                     labels: model.labels.clone(),
                     contract: model.contract.clone(),
+                    preprocess: Pipeline::new(mc.preprocess.clone(), &model.contract, u64::MAX).config().clone(),
                     report,
                     load_ms: ms(model.load_time),
                     single_ms,
@@ -253,6 +257,27 @@ fn dims(d: &[usize]) -> String {
     format!("[{}]", v.join(", "))
 }
 
+/// One line on what a frame goes through: resize, filter, channels, normalisation.
+fn preprocess_summary(p: &PreprocessConfig, k: &Contract) -> String {
+    let (w, h) = (k.width, k.height);
+    let resize = match p.resize {
+        ResizeMode::Stretch => format!("stretch to {w}x{h}"),
+        ResizeMode::Crop => format!("short side to {}, centre {w}x{h}", p.short_side.unwrap_or(w)),
+        ResizeMode::Letterbox => format!("letterbox into {w}x{h} on level {}", p.pad_value),
+    };
+    let roi = p.roi.map_or_else(String::new, |r| format!("roi [{}, {}, {}, {}], ", r.x, r.y, r.w, r.h));
+    let channels = format!("{:?}", p.channels).to_lowercase();
+    let filter = format!("{:?}", p.filter).to_lowercase();
+    let list = |v: &[f32]| v.iter().map(|x| format!("{x}")).collect::<Vec<_>>().join(", ");
+    let norm = match k.input_type {
+        InputType::Uint8 => "raw levels (uint8 input)".to_string(),
+        InputType::Float32 => {
+            format!("x = (pixel / {} - [{}]) / [{}]", p.divisor, list(&p.mean), list(&p.std))
+        }
+    };
+    format!("{roi}{resize}, {filter}, {channels}; {norm}")
+}
+
 /// The text report of one model.
 pub fn render(c: &ModelCheck) -> String {
     let mut s = String::new();
@@ -298,6 +323,7 @@ pub fn render(c: &ModelCheck) -> String {
         k.classes
     );
     let _ = writeln!(s, "  labels      {}", d.labels.join(", "));
+    let _ = writeln!(s, "  preprocess  {}", preprocess_summary(&d.preprocess, k));
 
     let r = &d.report;
     let _ = writeln!(

@@ -33,8 +33,8 @@ pub enum Command {
     Check(check::CheckArgs),
     /// Write the exact input tensor a model gets for one image (.npy), and a preview.
     Preprocess(preprocess::PreprocessArgs),
-    /// Measure throughput and latency on this box (closed or open loop), optionally the
-    /// engine alone and a grid of batching settings; print a table and a recommendation.
+    /// Say whether this box keeps up with the line (its frames per second within its budget
+    /// per frame) and with what margin; also throughput and latency sweeps and the engine alone.
     Bench(bench::BenchArgs),
 }
 

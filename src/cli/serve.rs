@@ -16,7 +16,7 @@ pub struct ServeArgs {
     #[arg(long, value_name = "ADDR")]
     pub listen: Option<String>,
     /// Batching settings for every model, overriding `[models.batching]` (for trials; `lineside
-    /// bench --tune` uses them).
+    /// bench --try-settings` uses them).
     #[command(flatten)]
     pub batching: BatchingArgs,
     /// Engine for every model, overriding each model's `engine`: tract, or onnxruntime in a
@@ -72,7 +72,7 @@ pub fn run(args: ServeArgs) -> anyhow::Result<Outcome> {
         },
     )?;
     // One HTTP thread by default: on a small box the lanes own the cores, and every extra
-    // async worker is one more thread to wake per request (README, Performance).
+    // async worker is one more thread to wake per request (docs/performance.md).
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(config.server.http_threads)
         .enable_all()

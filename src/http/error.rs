@@ -13,7 +13,7 @@ use crate::batch::BatchError;
 use crate::preprocess::PreprocessError;
 use crate::preprocess::pool::PoolError;
 
-/// What went wrong, as a client can act on it. The README's error table lists the same.
+/// What went wrong, as a client can act on it. docs/http-api.md's error table lists the same.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum ErrorKind {
@@ -233,7 +233,7 @@ mod tests {
 
     #[test]
     fn every_kind_maps_to_its_documented_status() {
-        // The README's error table, row by row.
+        // docs/http-api.md's error table, row by row.
         let table = [
             (ErrorKind::UnknownModel, 404, "unknown_model"),
             (ErrorKind::BadImage, 400, "bad_image"),

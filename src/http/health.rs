@@ -12,14 +12,49 @@ use axum::Json;
 use axum::extract::State;
 use axum::http::header;
 use axum::response::IntoResponse;
+use serde::Serialize;
 use serde_json::{Value, json};
 
 use super::error::{ApiError, ErrorKind};
 use super::state::{AppState, Readiness};
 
+/// The body of a 200 from `/healthz`.
+#[derive(Debug, Serialize)]
+pub struct Alive {
+    /// Always true (a process that is not alive does not answer).
+    pub alive: bool,
+    /// Inference lanes running, over every model (0 while the models load).
+    pub lanes: usize,
+}
+
+/// The body of a 200 from `/readyz`, and one model's entry in it (or in a 503's details).
+#[derive(Debug, Serialize)]
+pub struct Accepting {
+    /// Whether frames are accepted.
+    pub accepting: bool,
+    /// Each model's state.
+    pub models: Vec<ModelAccepting>,
+}
+
+/// One model's readiness.
+#[derive(Debug, Serialize)]
+pub struct ModelAccepting {
+    /// The model's name.
+    pub name: String,
+    /// The model file's version (SHA-256 prefix).
+    pub version: String,
+    /// Whether this model takes frames now.
+    pub accepting: bool,
+    /// Requests waiting for a lane.
+    pub backlog: usize,
+    /// Why not, when it does not.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub reason: Option<String>,
+}
+
 /// 200 while the process and its lanes are alive; 503 `stalled` when a lane has run one pass
 /// for longer than `server.stall_ms`. Answers while models load and while the cores are busy.
-pub async fn healthz(State(state): State<AppState>) -> Result<Json<Value>, ApiError> {
+pub async fn healthz(State(state): State<AppState>) -> Result<Json<Alive>, ApiError> {
     let served = match &*state.readiness.borrow() {
         Readiness::Ready(s) | Readiness::Draining(s) => Some(s.clone()),
         Readiness::Loading(_) | Readiness::Failed(_) => None,
@@ -34,7 +69,8 @@ pub async fn healthz(State(state): State<AppState>) -> Result<Json<Value>, ApiEr
         })
         .collect();
     if stalled.is_empty() {
-        return Ok(Json(json!({ "live": true })));
+        let lanes = served.iter().flat_map(|s| s.values()).map(|m| m.batcher.lanes()).sum();
+        return Ok(Json(Alive { alive: true, lanes }));
     }
     Err(ApiError::new(
         ErrorKind::Stalled,
@@ -48,7 +84,7 @@ pub async fn healthz(State(state): State<AppState>) -> Result<Json<Value>, ApiEr
 
 /// 200 with every model when ready; 503 `not_ready` (loading, failed, backlog nearly full) or
 /// `draining`, with the reason per model in `error.details.models`.
-pub async fn readyz(State(state): State<AppState>) -> Result<Json<Value>, ApiError> {
+pub async fn readyz(State(state): State<AppState>) -> Result<Json<Accepting>, ApiError> {
     let served = match &*state.readiness.borrow() {
         Readiness::Ready(served) => served.clone(),
         Readiness::Loading(what) => return Err(ApiError::new(ErrorKind::NotReady, format!("loading: {what}"))),
@@ -58,27 +94,28 @@ pub async fn readyz(State(state): State<AppState>) -> Result<Json<Value>, ApiErr
         }
     };
     let share = state.limits.ready_backlog;
-    let models: Vec<Value> = served
+    let models: Vec<ModelAccepting> = served
         .values()
         .map(|m| {
             let (depth, size) = m.batcher.depth();
             let full = depth as f64 >= share * size as f64;
-            let mut v = json!({ "name": m.model.name, "version": m.model.version, "ready": !full, "backlog": depth });
-            if full {
-                v["reason"] = json!(format!(
-                    "backlog holds {depth} of {size} requests, at or above server.ready_backlog = {share}"
-                ));
+            ModelAccepting {
+                name: m.model.name.clone(),
+                version: m.model.version.clone(),
+                accepting: !full,
+                backlog: depth,
+                reason: full.then(|| {
+                    format!("backlog holds {depth} of {size} requests, at or above server.ready_backlog = {share}")
+                }),
             }
-            v
         })
         .collect();
-    if models.iter().all(|m| m["ready"] == json!(true)) {
-        return Ok(Json(json!({ "ready": true, "models": models })));
+    if models.iter().all(|m| m.accepting) {
+        return Ok(Json(Accepting { accepting: true, models }));
     }
-    let names: Vec<&str> =
-        models.iter().filter(|m| m["ready"] == json!(false)).filter_map(|m| m["name"].as_str()).collect();
-    Err(ApiError::new(ErrorKind::NotReady, format!("model(s) {names:?} not ready: backlog nearly full"))
-        .with_details(json!({ "models": models })))
+    let names: Vec<&str> = models.iter().filter(|m| !m.accepting).map(|m| m.name.as_str()).collect();
+    let message = format!("model(s) {names:?} not accepting frames: backlog nearly full");
+    Err(ApiError::new(ErrorKind::NotReady, message).with_details(json!({ "models": models })))
 }
 
 /// The registry in the Prometheus text format (version 0.0.4).

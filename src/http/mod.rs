@@ -53,7 +53,7 @@ async fn openapi() -> Response {
 async fn not_found(req: Request) -> ApiError {
     ApiError::new(
         ErrorKind::NotFound,
-        format!("no route {} {}; see the README for the endpoints", req.method(), req.uri().path()),
+        format!("no route {} {}; GET /openapi.json lists the endpoints", req.method(), req.uri().path()),
     )
 }
 

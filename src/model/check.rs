@@ -168,7 +168,7 @@ pub fn contract(
         Layout::Nhwc => (d[3], d[1], d[2]),
     };
     let channels = fixed(c).unwrap_or(0);
-    if channels != pre.channels.count() {
+    if pre.channels_given && channels != pre.channels.count() {
         return Err(at(&format!(
             ": takes {channels} channel(s) but preprocess.channels gives {}; use channels = {} (--channels for a bare file)",
             pre.channels.count(),
@@ -214,6 +214,9 @@ pub fn contract(
              (resize the short side, then crop the centre square) needs a square input; \
              use resize = \"stretch\" or \"letterbox\""
         ));
+    }
+    if let Some(s) = pre.short_side.filter(|&s| s < width) {
+        return Err(format!("{file}: {}", crate::config::short_side_below_crop(s, width)));
     }
     let batch = match fixed(d[0]) {
         Some(1) => BatchAxis::Fixed(1),

@@ -4,7 +4,7 @@
 //! lanes), and each lane asks it for its own [`EngineState`] with the lane's thread count.
 //! The engine also says whether it can stack a formed pass into one tensor at all; whether
 //! a model's passes are stacked is decided at load (`load::decide_stacking`): never on
-//! tract (slower per image stacked, README's engine table), by config or calibration on
+//! tract (slower per image stacked, the engine table in docs/performance.md), by config or calibration on
 //! onnxruntime.
 //!
 //! Engines: `tract` (pure Rust, always built, the default) and `onnxruntime` (cargo feature

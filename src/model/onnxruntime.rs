@@ -7,7 +7,7 @@
 //! builds its own session from the model's bytes with `intra_op_num_threads = lane_threads`
 //! (the runtime's default graph optimisations, as a Python `InferenceSession` gets). It can
 //! stack a pass along the batch axis; whether it does is calibrated at load (on the machine
-//! of the README's engine table it gained nothing per core, so passes ran image by image).
+//! of the the engine table in docs/performance.md it gained nothing per core, so passes ran image by image).
 
 use std::path::{Path, PathBuf};
 use std::sync::Arc;

@@ -156,19 +156,20 @@ fn round_half_even(x: f64) -> u32 {
 /// The geometry of a resize mode for a `src_w x src_h` frame and a `dst_w x dst_h` input.
 ///
 /// - stretch: the whole frame to the input size.
-/// - crop: torchvision's `Resize(S)` then `CenterCrop(dst_w)` on a PIL image, with
-///   S = floor(dst_w / crop_fraction): the short side becomes S, the long side
-///   int(S * long / short); the crop offsets are round((new - dst) / 2), halves to even.
+/// - crop: resize so the short side becomes S = `short_side` (default: `dst_w`), the long
+///   side int(S * long / short), then the centre `dst_w x dst_h`, at offsets
+///   round((new - dst) / 2) with halves to even (a common training library's arithmetic for
+///   a short-side resize followed by a centre crop on a PIL image).
 /// - letterbox: s = min(dst_w / src_w, dst_h / src_h); the frame becomes
 ///   floor(src * s + 0.5) (round half up) and is centred at floor((dst - new) / 2).
-pub fn geometry(mode: ResizeMode, crop_fraction: f64, src: (u32, u32), dst: (u32, u32)) -> Geometry {
+pub fn geometry(mode: ResizeMode, short_side: Option<u32>, src: (u32, u32), dst: (u32, u32)) -> Geometry {
     let (sw, sh) = src;
     let (dw, dh) = dst;
     let whole = |w, h| Window { x: 0, y: 0, w, h };
     match mode {
         ResizeMode::Stretch => Geometry { full_w: dw, full_h: dh, window: whole(dw, dh), left: 0, top: 0 },
         ResizeMode::Crop => {
-            let s = (f64::from(dw) / crop_fraction).floor() as u64;
+            let s = u64::from(short_side.unwrap_or(dw));
             let (short, long) = (u64::from(sw.min(sh)), u64::from(sw.max(sh)));
             let new_long = ((s * long) as f64 / short as f64) as u64;
             let (nw, nh) = if sw <= sh { (s, new_long) } else { (new_long, s) };
@@ -201,7 +202,8 @@ impl Pipeline {
     /// A pipeline for a model with this config, at the size and in the layout its contract
     /// says. A uint8 model takes raw pixels: the normalisation keys do not apply to it.
     /// (`resize = "crop"` needs a square input: the model check refuses any other.)
-    pub fn new(mut cfg: PreprocessConfig, contract: &Contract, max_pixels: u64) -> Pipeline {
+    pub fn new(cfg: PreprocessConfig, contract: &Contract, max_pixels: u64) -> Pipeline {
+        let mut cfg = cfg.follow_model(contract.channels);
         if contract.input_type == InputType::Uint8 {
             let n = cfg.channels.count();
             (cfg.divisor, cfg.mean, cfg.std) = (1.0, vec![0.0; n], vec![1.0; n]);
@@ -273,7 +275,7 @@ impl Pipeline {
         } else {
             frame
         };
-        let g = geometry(c.resize, c.crop_fraction, (frame.width, frame.height), (self.width, self.height));
+        let g = geometry(c.resize, c.short_side, (frame.width, frame.height), (self.width, self.height));
         let resized = resize::resize(&frame, g.full_w, g.full_h, g.window, c.filter)?;
         if (g.window.w, g.window.h) == (self.width, self.height) {
             return Ok(resized);
@@ -337,26 +339,26 @@ mod tests {
     }
 
     #[test]
-    fn crop_geometry_follows_torchvision() {
+    fn crop_geometry_follows_the_short_side_resize_and_centre_crop() {
         // Resize(256) + CenterCrop(224) on a 640x480 frame: short side 480 -> 256, long side
         // int(256 * 640 / 480) = 341; left = round((341 - 224) / 2) = round(58.5) = 58 (even),
         // top = round((256 - 224) / 2) = 16. (torchvision's transforms, by their formulas.)
-        let g = geometry(ResizeMode::Crop, 0.875, (640, 480), (224, 224));
+        let g = geometry(ResizeMode::Crop, Some(256), (640, 480), (224, 224));
         assert_eq!((g.full_w, g.full_h), (341, 256));
         assert_eq!(g.window, Window { x: 58, y: 16, w: 224, h: 224 });
-        // Portrait, odd: 479x641 with crop_fraction 1 to 96: 96 x int(96 * 641 / 479) = 128;
+        // Portrait, odd: 479x641, short side to the crop size 96: 96 x int(96 * 641 / 479) = 128;
         // top = round(32 / 2) = 16.
-        let g = geometry(ResizeMode::Crop, 1.0, (479, 641), (96, 96));
+        let g = geometry(ResizeMode::Crop, None, (479, 641), (96, 96));
         assert_eq!((g.full_w, g.full_h, g.window.x, g.window.y), (96, 128, 0, 16));
     }
 
     #[test]
     fn letterbox_geometry_rounds_half_up_and_centres() {
         // 320x240 into 96x96: s = 0.3, 96 x 72, centred 12 rows down.
-        let g = geometry(ResizeMode::Letterbox, 1.0, (320, 240), (96, 96));
+        let g = geometry(ResizeMode::Letterbox, None, (320, 240), (96, 96));
         assert_eq!((g.full_w, g.full_h, g.left, g.top), (96, 72, 0, 12));
         // 5x3 into 4x4: s = 0.8, 4 x floor(2.4 + 0.5) = 2, top (4 - 2) / 2 = 1.
-        let g = geometry(ResizeMode::Letterbox, 1.0, (5, 3), (4, 4));
+        let g = geometry(ResizeMode::Letterbox, None, (5, 3), (4, 4));
         assert_eq!((g.full_w, g.full_h, g.left, g.top), (4, 2, 0, 1));
     }
 }

@@ -51,7 +51,7 @@ fn a_short_bench_on_the_demo_model_reports_consistent_figures_and_valid_charts()
         "1s",
         "--warmup",
         "300ms",
-        "--p99-ms",
+        "--budget-ms",
         "1000",
         "--report",
         html.to_str().unwrap(),
@@ -89,8 +89,11 @@ fn a_short_bench_on_the_demo_model_reports_consistent_figures_and_valid_charts()
     assert_eq!(run["engine"]["engine"], engine);
     assert_eq!(run["model_info"]["engine"], engine);
     assert!(run["serving_ratio"].as_f64().unwrap() > 0.0);
-    let rec = run["recommendation"]["text"].as_str().unwrap();
-    assert!(rec.contains("this machine") && rec.contains("safety systems"), "{rec}");
+    let verdict = run["verdict"]["text"].as_str().unwrap();
+    assert!(verdict.contains("this machine") && verdict.contains("safety systems"), "{verdict}");
+    assert_eq!(run["line"]["budget_ms"], 1000.0);
+    // Without a line rate there is no keep-up verdict, only the most frames within budget.
+    assert!(run["verdict"]["keeps_up"].is_null(), "{}", run["verdict"]);
 
     // The page and its charts parse as HTML and as XML (SVG) with Python's standard library.
     let check = r#"
@@ -102,13 +105,54 @@ assert len(svgs) == 1, len(svgs)
 root = ET.fromstring(svgs[0])
 assert root.tag == "{http://www.w3.org/2000/svg}svg", root.tag
 texts = [t.text or "" for t in root.iter("{http://www.w3.org/2000/svg}text")]
-assert any("throughput vs p99" in t for t in texts), texts[:5]
-assert any("latency distribution" in t for t in texts), texts[:5]
+assert any("share of frames slower" in t for t in texts), texts[:5]
+assert any("budget 1000 ms" in t for t in texts), texts[:12]
+assert "Does this box keep up with the line?" in page
 assert "<script" not in page and "http://" not in page.replace("http://www.w3.org/2000/svg", "")
 print("ok")
 "#;
     let out = Command::new(python()).arg("-c").arg(check).arg(&html).output().unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+}
+
+/// Issue 14: with the line's rate the bench posts frames at that rate and its multiples, counts
+/// every frame later than the budget, and its verdict follows its own figures. Nothing here
+/// depends on the machine's speed: the assertions compare the report with itself and with
+/// the exported samples.
+#[test]
+fn at_the_line_rate_the_verdict_follows_the_late_frames() {
+    let dir = temp_dir("bench-line");
+    let csv = dir.join("samples.csv");
+    let common = ["--config", "config/lineside.toml", "--duration", "1s", "--warmup", "200ms", "--line-fps", "20"];
+    let run = bench(&[&common[..], &["--budget-ms", "1000", "--samples", csv.to_str().unwrap()]].concat());
+    let steps = run["steps"].as_array().unwrap();
+    let multiples: Vec<f64> = steps.iter().map(|s| s["multiple"].as_f64().unwrap()).collect();
+    assert_eq!(multiples, [1.0, 1.5, 2.0, 3.0, 4.0][..multiples.len()], "the line's rate first, then multiples");
+    let recorded = samples(&csv);
+    for s in steps {
+        let name = format!("{}x ({}/s)", s["multiple"].as_f64().unwrap(), s["rate"].as_f64().unwrap());
+        let late = recorded[&name].iter().filter(|&&v| v > 1_000_000).count() as u64;
+        assert_eq!(s["late"].as_u64(), Some(late), "{name}: late frames as the samples show");
+        assert_eq!(s["rate"].as_f64().unwrap(), 20.0 * s["multiple"].as_f64().unwrap());
+    }
+    let first = &steps[0];
+    let holds = first["errors"].as_object().unwrap().is_empty()
+        && first["latency"]["p999_ms"].as_f64().unwrap() <= 1000.0
+        && first["latency"]["max_ms"].as_f64().unwrap() <= 1000.0;
+    let v = &run["verdict"];
+    assert_eq!(v["keeps_up"].as_bool(), Some(holds), "{v}");
+    assert_eq!(v["at_line_rate"]["frames"], first["requests"], "{v}");
+    let margin = 1000.0 - first["latency"]["max_ms"].as_f64().unwrap();
+    assert!((v["latency_margin_ms"].as_f64().unwrap() - margin).abs() < 1e-9, "{v}");
+
+    // No HTTP answer comes back within a microsecond: every frame is late, the bench says so
+    // and stops after the line's own rate.
+    let run = bench(&[&common[..], &["--budget-ms", "0.001"]].concat());
+    assert_eq!(run["steps"].as_array().unwrap().len(), 1, "stops at the first rate that breaks the budget");
+    assert_eq!(run["verdict"]["keeps_up"], false);
+    assert_eq!(run["steps"][0]["late"], run["steps"][0]["ok"]);
+    let text = run["verdict"]["text"].as_str().unwrap();
+    assert!(text.starts_with("Does not keep up") && text.contains("uninspected"), "{text}");
 }
 
 #[test]

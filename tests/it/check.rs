@@ -17,7 +17,7 @@ fn fixture(case: &str) -> PathBuf {
 }
 
 fn bare(case: &str, side: u32, channels: Channels) -> ModelConfig {
-    ModelConfig::bare(fixture(case), Some(side), Some(side), channels)
+    ModelConfig::bare(fixture(case), Some(side), Some(side), Some(channels))
 }
 
 fn report(case: &str, side: u32, channels: Channels) -> Report {
@@ -185,7 +185,8 @@ fn broken_models_are_refused_with_a_message_naming_file_and_cause() {
     for (case, side, ch, needles) in cases {
         // side 0: no size configured
         let size = (*side > 0).then_some(*side);
-        let err = format!("{:#}", load::load(&ModelConfig::bare(fixture(case), size, size, *ch)).expect_err(case));
+        let err =
+            format!("{:#}", load::load(&ModelConfig::bare(fixture(case), size, size, Some(*ch))).expect_err(case));
         for n in *needles {
             assert!(err.contains(n), "{case}: {n:?} not in: {err}");
         }
@@ -245,6 +246,21 @@ fn check_cli_json_report_and_exit_codes() {
     let out = Command::new(bin).args(["check", "--model", "bolts"]).current_dir(std::env::temp_dir()).output().unwrap();
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("no model named \"bolts\""));
+}
+
+/// Issue 14: a bare 1-channel model checks without `--channels` (gray follows the model), and
+/// an explicit `--channels rgb` that contradicts it is still refused.
+#[test]
+fn issue_14_a_bare_gray_model_checks_without_channels() {
+    let bin = env!("CARGO_BIN_EXE_lineside");
+    let out = Command::new(bin).args(["check", "--json"]).arg(fixture("lenet5")).output().unwrap();
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    let v: Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["models"][0]["contract"]["channels"], 1);
+    assert_eq!(v["models"][0]["preprocess"]["channels"], "gray", "{}", v["models"][0]);
+    let out = Command::new(bin).args(["check", "--channels", "rgb"]).arg(fixture("lenet5")).output().unwrap();
+    assert_eq!(out.status.code(), Some(1));
+    assert!(String::from_utf8_lossy(&out.stdout).contains("takes 1 channel(s) but preprocess.channels gives 3"));
 }
 
 /// A copy of two washer samples in a fresh folder, and a config whose self-test reads it.
@@ -356,7 +372,7 @@ fn paper_architectures_match_their_published_totals_and_onnxruntime() {
         ("vgg_small", VGG_SMALL_MACS, VGG_SMALL_PARAMS, 0.0),
     ];
     for (name, macs, params, params_tol) in cases {
-        let mc = ModelConfig::bare(dir.join(format!("{name}.onnx")), None, None, Channels::Rgb);
+        let mc = ModelConfig::bare(dir.join(format!("{name}.onnx")), None, None, Some(Channels::Rgb));
         let (model, r) = load::load_with_report(&mc).unwrap_or_else(|e| panic!("{name}: {e:#}"));
         let mac_err = (r.macs_per_image as f64 - macs).abs() / macs;
         let mac_tol = if name == "vgg_small" { 0.0 } else { 0.01 };

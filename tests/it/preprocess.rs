@@ -150,15 +150,15 @@ async fn served_scores_match_pillow_and_onnxruntime_on_the_original_files() {
         // std 0.225 x 255) would amplify every level of JPEG decoder difference 4.4x, beyond
         // what the model saw in training; those statistics are checked on the tensor above.
         (
-            "crop 0.875, bicubic, bgr",
-            "resize = \"crop\"\ncrop_fraction = 0.875\nfilter = \"bicubic\"\nchannels = \"bgr\"".into(),
-            serde_json::json!({"resize": "crop", "crop_fraction": 0.875, "filter": "bicubic", "channels": "bgr"}),
+            "crop from short side 110, bicubic, bgr",
+            "resize = \"crop\"\nshort_side = 110\nfilter = \"bicubic\"\nchannels = \"bgr\"".into(),
+            serde_json::json!({"resize": "crop", "short_side": 110, "filter": "bicubic", "channels": "bgr"}),
         ),
         (
             "roi + letterbox, area",
-            "roi = [20, 10, 280, 220]\nresize = \"letterbox\"\npad_value = 114\nfilter = \"area\"\nchannels = \"rgb\""
+            "roi = [20, 10, 280, 220]\nresize = \"letterbox\"\npad_value = 40\nfilter = \"area\"\nchannels = \"rgb\""
                 .into(),
-            serde_json::json!({"roi": [20, 10, 280, 220], "resize": "letterbox", "pad_value": 114, "filter": "area"}),
+            serde_json::json!({"roi": [20, 10, 280, 220], "resize": "letterbox", "pad_value": 40, "filter": "area"}),
         ),
     ];
     let client = reqwest::Client::new();

@@ -66,8 +66,13 @@ async fn readyz_is_503_until_the_models_are_loaded() {
     server.release_load();
     server.wait_ready().await;
     let v: Value = c.get(server.url("/readyz")).send().await.unwrap().json().await.unwrap();
-    assert_eq!(v["ready"], true);
+    // Issue 14: the bodies are lineside's own ("accepting", "alive" with the lane count).
+    assert_eq!(v["accepting"], true, "{v}");
     assert_eq!(v["models"][0]["name"], "washers");
+    assert_eq!(v["models"][0]["accepting"], true, "{v}");
+    let alive: Value = c.get(server.url("/healthz")).send().await.unwrap().json().await.unwrap();
+    assert_eq!(alive["alive"], true, "{alive}");
+    assert!(alive["lanes"].as_u64().is_some_and(|n| n >= 1), "{alive}");
     let r = c.post(server.url("/classify/washers")).body(sample.bytes.clone()).send().await.unwrap();
     assert_eq!(r.status(), 200);
     server.stop().await.unwrap();
@@ -554,7 +559,7 @@ async fn healthz_fails_while_a_lane_is_stuck_and_readyz_while_the_backlog_is_nea
     let body: Value = r.json().await.unwrap();
     assert_eq!(body["error"]["kind"], "not_ready", "{body}");
     assert_eq!(body["error"]["details"]["models"][0]["name"], "washers", "{body}");
-    assert_eq!(body["error"]["details"]["models"][0]["ready"], false, "{body}");
+    assert_eq!(body["error"]["details"]["models"][0]["accepting"], false, "{body}");
     // Past stall_ms the lane counts as stuck.
     tokio::time::sleep(Duration::from_millis(300)).await;
     let r = c.get(server.url("/healthz")).send().await.unwrap();

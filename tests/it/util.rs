@@ -25,7 +25,11 @@ pub(crate) fn root() -> PathBuf {
 
 /// A fresh, empty scratch folder for one test (named after it and this process).
 pub(crate) fn temp_dir(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("lineside-it-{name}-{}", std::process::id()));
+    // A fresh folder per call: tests run in parallel, and two that asked for the same name
+    // (the bench tests' JSON report) overwrote each other's files.
+    static CALLS: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
+    let n = CALLS.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+    let d = std::env::temp_dir().join(format!("lineside-it-{name}-{}-{n}", std::process::id()));
     let _ = std::fs::remove_dir_all(&d);
     std::fs::create_dir_all(&d).unwrap();
     d
