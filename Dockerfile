@@ -10,8 +10,8 @@ COPY models models
 COPY config config
 # Portable x86-64 by default: tract picks its AVX2/AVX-512 matrix kernels at run time. For
 # boxes with AVX2 (x86-64-v3: most x86 CPUs since 2015, not some Atom/Celeron industrial
-# PCs), `--build-arg TARGET_CPU=x86-64-v3` made the demo model 1.3x faster (README,
-# performance); such a binary refuses to start on a CPU without AVX2, with a message.
+# PCs), `--build-arg TARGET_CPU=x86-64-v3` made the demo model 1.3x faster (docs/
+# performance.md); such a binary refuses to start on a CPU without AVX2, with a message.
 ARG TARGET_CPU=x86-64
 RUN RUSTFLAGS="-C target-cpu=${TARGET_CPU}" cargo build --release --locked --bin lineside
 
