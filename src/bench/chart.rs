@@ -8,20 +8,29 @@ use super::report::{self, Run};
 
 type DrawResult = Result<(), Box<dyn std::error::Error>>;
 
-/// Points of the slower-than curve: (latency ms, share of frames slower than it), from the
-/// whole share down to one frame in `n`, spaced evenly on the log scale.
+/// Points of the slower-than curve: (latency ms, share of frames that took at least that
+/// long), from every frame down to the slowest one alone (1 in `n`), the shares spaced evenly
+/// on the log scale. The curve ends at the slowest frame's latency, so a single late frame
+/// is drawn where it happened.
 pub fn slower_than(samples_us: &[u64]) -> Vec<(f64, f64)> {
     let n = samples_us.len();
     if n == 0 {
         return Vec::new();
     }
-    let floor = 1.0 / n as f64;
+    let mut sorted = samples_us.to_vec();
+    sorted.sort_unstable();
     let points = 120;
-    let shares: Vec<f64> = (0..=points).map(|i| floor.powf(i as f64 / points as f64)).collect();
-    // Share s slower than x  <=>  x is the (1 - s) quantile.
-    let quantiles: Vec<f64> = shares.iter().map(|s| 1.0 - s).collect();
-    let xs = super::quantile_curve(samples_us, &quantiles);
-    xs.into_iter().zip(shares).collect()
+    let mut out: Vec<(f64, f64)> = Vec::with_capacity(points + 1);
+    for i in 0..=points {
+        // k frames of n are at least as slow as the k-th slowest one.
+        let share = (1.0 / n as f64).powf(i as f64 / points as f64);
+        let k = ((share * n as f64).round() as usize).clamp(1, n);
+        let p = (sorted[n - k] as f64 / 1e3, k as f64 / n as f64);
+        if out.last() != Some(&p) {
+            out.push(p);
+        }
+    }
+    out
 }
 
 /// The chart as one SVG document.
@@ -43,8 +52,9 @@ fn draw_slower_than(run: &Run, area: &DrawingArea<SVGBackend<'_>, plotters::coor
     let curves: Vec<(String, Vec<(f64, f64)>)> =
         run.steps.iter().filter(|s| !s.samples_us.is_empty()).map(|s| (s.name(), slower_than(&s.samples_us))).collect();
     let budget = run.line.budget_ms;
+    // Wide enough for the slowest frame of any step, late or not, and the budget.
     let slowest = curves.iter().flat_map(|c| c.1.iter().map(|p| p.0)).fold(1.0, f64::max);
-    let xmax = slowest.max(budget.unwrap_or(0.0)) * 1.1;
+    let xmax = slowest.max(budget.unwrap_or(0.0)) * 1.08;
     let ymin = curves.iter().flat_map(|c| c.1.iter().map(|p| p.1)).fold(1.0, f64::min).min(1e-3) * 0.8;
     let mut c = ChartBuilder::on(area)
         .caption(format!("{}: share of frames slower than each latency", run.model), ("sans-serif", 18))
@@ -54,25 +64,41 @@ fn draw_slower_than(run: &Run, area: &DrawingArea<SVGBackend<'_>, plotters::coor
         .build_cartesian_2d(0.0..xmax, (ymin..1.0).log_scale())?;
     c.configure_mesh()
         .x_desc("latency, arrival to answer, ms")
-        .y_desc("share of frames slower")
+        .y_desc("share of frames this slow or slower")
         .y_label_formatter(&|v| format!("{}%", trim(v * 100.0)))
         .draw()?;
     if let Some(b) = budget {
-        c.draw_series(LineSeries::new([(b, ymin), (b, 1.0)], RED.stroke_width(2)))?
+        let budget_style = BLACK.stroke_width(3);
+        c.draw_series(LineSeries::new([(b, ymin), (b, 1.0)], budget_style))?
             .label(format!("budget {b} ms: frames right of it are late"))
-            .legend(|(x, y)| PathElement::new([(x, y), (x + 16, y)], RED));
+            .legend(move |(x, y)| PathElement::new([(x, y), (x + 16, y)], budget_style));
     }
     for (i, (name, pts)) in curves.iter().enumerate() {
-        let color = Palette99::pick(i).to_rgba();
+        let color = STEP_COLOURS[i % STEP_COLOURS.len()];
         let step = run.steps.iter().find(|s| &s.name() == name);
         let late = step.and_then(|s| s.late).map_or_else(String::new, |l| format!(", {l} late"));
         c.draw_series(LineSeries::new(pts.clone(), color.stroke_width(2)))?
             .label(format!("{name}{late}"))
             .legend(move |(x, y)| PathElement::new([(x, y), (x + 16, y)], color));
     }
-    c.configure_series_labels().border_style(BLACK).background_style(WHITE.mix(0.85)).draw()?;
+    // Bottom left: the curves fall towards the bottom right, where the late frames are.
+    c.configure_series_labels()
+        .position(SeriesLabelPosition::LowerLeft)
+        .border_style(BLACK)
+        .background_style(WHITE.mix(0.9))
+        .draw()?;
     Ok(())
 }
+
+/// Step colours, none of them black (the budget's): a colour-blind-safe set (common practice).
+const STEP_COLOURS: [RGBColor; 6] = [
+    RGBColor(0, 114, 178),
+    RGBColor(230, 159, 0),
+    RGBColor(0, 158, 115),
+    RGBColor(204, 121, 167),
+    RGBColor(86, 180, 233),
+    RGBColor(213, 94, 0),
+];
 
 /// A percentage without trailing zeros: 10, 1, 0.1, 0.01.
 fn trim(pct: f64) -> String {
@@ -126,14 +152,21 @@ mod tests {
     use crate::bench::report::{CAUTION, Line, judge, tests::step};
 
     #[test]
-    fn the_slower_than_curve_falls_from_all_frames_to_one_in_n() {
-        // 1..=1000 ms: the share slower than 900 ms is 10% (inverted-CDF quantiles).
-        let samples: Vec<u64> = (1..=1000).map(|ms| ms * 1000).collect();
+    fn the_slower_than_curve_falls_from_all_frames_to_the_slowest_alone() {
+        // 1..=1000 ms, shuffled: every frame took at least 1 ms, 100 of them (10%) at least
+        // 901 ms, and the slowest alone (0.1%) 1000 ms: the curve ends there.
+        let mut samples: Vec<u64> = (1..=1000).map(|ms| ms * 1000).collect();
+        samples.reverse();
         let pts = slower_than(&samples);
-        assert!((pts[0].1 - 1.0).abs() < 1e-12 && (pts.last().unwrap().1 - 1e-3).abs() < 1e-12);
+        assert_eq!(pts[0], (1.0, 1.0));
+        assert_eq!(*pts.last().unwrap(), (1000.0, 0.001));
         assert!(pts.windows(2).all(|w| w[0].0 <= w[1].0 && w[0].1 > w[1].1), "latency rises as the share falls");
-        let at_10 = pts.iter().min_by(|a, b| (a.1 - 0.1).abs().total_cmp(&(b.1 - 0.1).abs())).unwrap();
-        assert!((at_10.0 - 900.0).abs() <= 900.0 * 0.02, "{at_10:?}");
+        let at_10 = pts.iter().find(|p| (p.1 - 0.1).abs() < 0.004).expect("a point near 10%");
+        assert_eq!(at_10.0, 1000.0 - (at_10.1 * 1000.0).round() + 1.0, "{at_10:?}");
+        // One late frame among fast ones shows at its own latency.
+        let mut one_late = vec![5_000u64; 999];
+        one_late.push(37_760);
+        assert_eq!(*slower_than(&one_late).last().unwrap(), (37.76, 0.001));
         assert!(slower_than(&[]).is_empty());
     }
 
@@ -151,7 +184,7 @@ mod tests {
             machine: Machine::this(),
             url: String::new(),
             model: "m".into(),
-            model_info: serde_json::Value::Null,
+            model_info: None,
             config: None,
             frames: vec![],
             warmup_s: 0.0,
