@@ -20,7 +20,7 @@ use std::process::Command;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
-use lineside::config::{Channels, ModelConfig};
+use lineside::config::{Channels, ModelConfig, Overrides};
 use lineside::model::tract::TractPlan;
 use lineside::model::{EngineKind, EngineState, Input, InputType, Planned, load};
 
@@ -110,8 +110,9 @@ struct Bench {
 
 /// One row of the table: (column, images/s).
 fn measure(b: &Bench, secs: f64, cores: usize, rounds: usize) -> Vec<(String, f64)> {
-    let mut mc = ModelConfig::bare(b.onnx.clone(), None, None, Some(Channels::Rgb));
-    let model = load::load(&mc).unwrap_or_else(|e| panic!("{}: {e:#}", b.onnx.display()));
+    let tract_first = Overrides { engine: Some(EngineKind::Tract), ..lineside::cli::base_overrides().unwrap() };
+    let mut mc = ModelConfig::bare(b.onnx.clone(), None, None, Some(Channels::Rgb), &tract_first);
+    let model = load::load(&mc.spec()).unwrap_or_else(|e| panic!("{}: {e:#}", b.onnx.display()));
     let c = model.contract.clone();
     assert_eq!(c.input_type, InputType::Float32, "the benchmark models take floats");
     let bytes = std::fs::read(&b.onnx).unwrap();
@@ -126,7 +127,7 @@ fn measure(b: &Bench, secs: f64, cores: usize, rounds: usize) -> Vec<(String, f6
     let b8 = TractPlan::build(inference(), c.input_type, c.input_shape(8), &file).unwrap();
     // lineside's onnxruntime engine (and the same runtime from Python).
     mc.engine = EngineKind::Onnxruntime;
-    let ort = load::load(&mc).unwrap_or_else(|e| panic!("{}: {e:#}", b.onnx.display()));
+    let ort = load::load(&mc.spec()).unwrap_or_else(|e| panic!("{}: {e:#}", b.onnx.display()));
     let ort = &ort;
     let ort_state = |threads: usize| move || ort.engine_state(threads).unwrap();
     let (i1, i8) = (Input::F32(&x1), Input::F32(&x8));

@@ -23,9 +23,8 @@ use hyper_util::rt::TokioIo;
 
 use lineside::bench::load::{self, Mode, Target};
 use lineside::bench::{cpu_seconds, engine};
-use lineside::config::{Config, Lanes, Overrides};
-use lineside::model::load as model_load;
-use lineside::preprocess::Pipeline;
+use lineside::config::Config;
+use lineside::served::{LoadOptions, Loaded};
 
 fn root() -> std::path::PathBuf {
     std::path::PathBuf::from(env!("CARGO_MANIFEST_DIR"))
@@ -71,7 +70,8 @@ fn start_server() -> (u16, String) {
 fn main() {
     let secs: f64 = std::env::var("LINESIDE_BENCH_SECS").ok().and_then(|s| s.parse().ok()).unwrap_or(5.0);
     let duration = Duration::from_secs_f64(secs);
-    let config = Config::from_file(&root().join("config/lineside.toml"), &Overrides::default()).unwrap();
+    let config =
+        Config::from_file(&root().join("config/lineside.toml"), &lineside::cli::base_overrides().unwrap()).unwrap();
     let m = &config.models[0];
     let frames = lineside::selftest::Samples::images_only(m.selftest.as_ref().unwrap()).unwrap();
     let bodies: Vec<Bytes> = frames.iter().map(|f| Bytes::from(f.1.clone())).collect();
@@ -99,13 +99,9 @@ fn main() {
     let (client_cores, server_cores) = ((thread_cpu(&pid) - c0) / wall, (thread_cpu(&server_tid) - s0) / wall);
     assert!(measured.errors.is_empty(), "errors: {:?}", measured.errors);
 
-    let model = Arc::new(model_load::load(m).unwrap());
-    let pipeline = Pipeline::new(m.preprocess.clone(), &model.contract, u64::MAX);
-    let tensors: Vec<Vec<f32>> = frames.iter().map(|f| pipeline.run(&f.1).unwrap().tensor).collect();
-    let lanes = match m.batching.lanes {
-        Lanes::Auto => lineside::batch::auto_lanes(m.batching.lane_threads),
-        Lanes::Fixed(n) => n,
-    };
+    let loaded = Loaded::load(m, &LoadOptions::single()).unwrap();
+    let (model, lanes) = (Arc::clone(&loaded.model), loaded.lanes);
+    let tensors: Vec<Vec<f32>> = frames.iter().map(|f| loaded.pipeline.run(&f.1).unwrap().tensor).collect();
     let e = engine::run(
         &model,
         &tensors,

@@ -27,9 +27,9 @@ use axum::body::Bytes;
 use lineside::bench::child::ChildServer;
 use lineside::bench::load::{self as loadgen, Mode};
 use lineside::bench::{engine, summarize};
-use lineside::config::{Config, Overrides};
+use lineside::config::Config;
 use lineside::model::load;
-use lineside::preprocess::Pipeline;
+use lineside::served::{LoadOptions, Loaded};
 
 fn root() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))
@@ -101,17 +101,17 @@ fn png_of_size(size: u32) -> Vec<u8> {
 fn bundle(dir: &Path, name: &'static str, onnx: &Path, labels: &Path, size: u32) -> Bundle {
     let config = write_config(dir, name, onnx, labels, size, 2, 1, 8);
     let png = png_of_size(size);
-    let cfg = Config::from_file(&config, &Overrides::default()).unwrap();
-    let contract = load::contract(&cfg.models[0]).unwrap();
-    let tensor = Pipeline::new(cfg.models[0].preprocess.clone(), &contract, u64::MAX).run(&png).unwrap().tensor;
+    let cfg = Config::from_file(&config, &lineside::cli::base_overrides().unwrap()).unwrap();
+    let loaded = Loaded::load(&cfg.models[0], &LoadOptions::single()).unwrap();
+    let tensor = loaded.pipeline.run(&png).unwrap().tensor;
     Bundle { name, onnx: onnx.to_path_buf(), labels: labels.to_path_buf(), size, config, png, tensor }
 }
 
 /// Images per second of `lanes` lanes of `threads` threads each running the engine back to
 /// back, as the server's lanes do.
 fn raw_engine(b: &Bundle, lanes: usize, threads: usize, secs: f64) -> f64 {
-    let cfg = Config::from_file(&b.config, &Overrides::default()).unwrap();
-    let model = Arc::new(load::load(&cfg.models[0]).unwrap());
+    let cfg = Config::from_file(&b.config, &lineside::cli::base_overrides().unwrap()).unwrap();
+    let model = Arc::new(load::load(&cfg.models[0].spec()).unwrap());
     let warm = Duration::from_millis(500);
     engine::run(&model, std::slice::from_ref(&b.tensor), lanes, threads, 8, warm, Duration::from_secs_f64(secs))
         .unwrap()

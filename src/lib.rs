@@ -34,8 +34,10 @@ pub mod metrics;
 pub mod model;
 pub mod preprocess;
 pub mod selftest;
+pub mod served;
 pub mod server;
 pub mod shutdown;
+pub mod source;
 
 /// Whether this CPU has the instruction-set extensions the binary was compiled for (a build
 /// with `-C target-cpu=x86-64-v3` or higher would otherwise die of an illegal instruction on
@@ -58,8 +60,22 @@ pub fn build_cpu_fits() -> Result<(), &'static str> {
     Ok(())
 }
 
+/// A duration in milliseconds, rounded to the microsecond: the one way lineside reports a
+/// time (answers' `timing_ms`, `/models`, access logs, `check`).
+pub fn millis(d: std::time::Duration) -> f64 {
+    (d.as_secs_f64() * 1e6).round() / 1e3
+}
+
 #[cfg(test)]
 mod tests {
+    #[test]
+    fn millis_rounds_to_the_microsecond() {
+        use std::time::Duration;
+        assert_eq!(super::millis(Duration::from_nanos(1_426_499)), 1.426);
+        assert_eq!(super::millis(Duration::from_nanos(1_426_500)), 1.427);
+        assert_eq!(super::millis(Duration::from_secs(2)), 2000.0);
+    }
+
     #[test]
     fn the_build_fits_the_cpu_that_runs_the_tests() {
         // A build made with a target-cpu this CPU cannot run would fail here (or earlier, with

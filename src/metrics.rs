@@ -51,6 +51,7 @@ pub struct Metrics {
     lane_failures: IntCounterVec,
     lane_restarts: IntCounterVec,
     abandoned: IntCounterVec,
+    background_frames: IntCounterVec,
     backlog_wait: HistogramVec,
     predictions: IntCounterVec,
     low_confidence: IntCounterVec,
@@ -81,6 +82,8 @@ pub struct ModelMetrics {
     predictions: IntCounterVec,
     /// Jobs dropped before inference because the client had gone.
     pub abandoned: IntCounter,
+    /// Frames run as background work (not live requests).
+    pub background_frames: IntCounter,
     /// Decode + preprocess time per image.
     pub preprocess_duration: Histogram,
     /// Frames decoded on the HTTP thread that received them (`server.decode_inline_pixels`).
@@ -104,6 +107,27 @@ impl ModelMetrics {
 }
 
 // Metric construction only fails for invalid names or label sets, which are constants here.
+/// A histogram family, registered.
+fn hist(r: &Registry, name: &str, help: &str, labels: &[&str], buckets: Vec<f64>) -> HistogramVec {
+    let h = must(HistogramVec::new(HistogramOpts::new(name, help).buckets(buckets), labels));
+    must(r.register(Box::new(h.clone())));
+    h
+}
+
+/// A gauge family, registered.
+fn gauge(r: &Registry, name: &str, help: &str, labels: &[&str]) -> IntGaugeVec {
+    let g = must(IntGaugeVec::new(Opts::new(name, help), labels));
+    must(r.register(Box::new(g.clone())));
+    g
+}
+
+/// A counter family, registered.
+fn counter(r: &Registry, name: &str, help: &str, labels: &[&str]) -> IntCounterVec {
+    let c = must(IntCounterVec::new(Opts::new(name, help), labels));
+    must(r.register(Box::new(c.clone())));
+    c
+}
+
 fn must<T>(r: prometheus::Result<T>) -> T {
     r.expect("metric definitions are constant and valid")
 }
@@ -111,98 +135,92 @@ fn must<T>(r: prometheus::Result<T>) -> T {
 impl Metrics {
     /// A fresh registry with every lineside metric registered.
     pub fn new() -> Metrics {
-        let registry = must(Registry::new_custom(Some("lineside".into()), None));
-        let hist = |name: &str, help: &str, labels: &[&str], buckets: Vec<f64>| {
-            let h = must(HistogramVec::new(HistogramOpts::new(name, help).buckets(buckets), labels));
-            must(registry.register(Box::new(h.clone())));
-            h
+        let r = must(Registry::new_custom(Some("lineside".into()), None));
+        let latency = || LATENCY_BUCKETS.to_vec();
+        let model = &["model"];
+        let m = Metrics {
+            request_duration: hist(
+                &r,
+                "request_duration_seconds",
+                "Time from a classify request's arrival to its answer, by model and outcome.",
+                &["model", "outcome"],
+                latency(),
+            ),
+            preprocess_duration: hist(
+                &r,
+                "preprocess_duration_seconds",
+                "Time to decode and preprocess one image.",
+                model,
+                latency(),
+            ),
+            inference_duration: hist(
+                &r,
+                "inference_duration_seconds",
+                "Engine wall time of one inference pass.",
+                model,
+                latency(),
+            ),
+            pass_size: hist(
+                &r,
+                "pass_size_requests",
+                "Requests in one inference pass.",
+                model,
+                vec![1.0, 2.0, 3.0, 4.0, 6.0, 8.0, 12.0, 16.0, 32.0, 64.0],
+            ),
+            backlog_depth: gauge(&r, "backlog_depth", "Requests waiting in the model's backlog.", model),
+            lanes: gauge(&r, "lanes", "Inference lanes serving the model.", model),
+            lane_failures: counter(&r, "lane_failures_total", "Inference errors and panics inside a lane.", model),
+            lane_restarts: counter(&r, "lane_restarts_total", "Lane engine states replaced after a panic.", model),
+            abandoned: counter(
+                &r,
+                "abandoned_total",
+                "Requests dropped before inference because the client disconnected.",
+                model,
+            ),
+            background_frames: counter(
+                &r,
+                "background_frames_total",
+                "Frames run as background work in the lanes' spare time (evaluation, maps, trials, warm-ups).",
+                model,
+            ),
+            backlog_wait: hist(
+                &r,
+                "backlog_wait_seconds",
+                "Time a request waited in the backlog for an inference lane.",
+                model,
+                latency(),
+            ),
+            predictions: counter(&r, "predictions_total", "Answers by model and top-1 label.", &["model", "label"]),
+            low_confidence: counter(
+                &r,
+                "low_confidence_total",
+                "Answers whose top score is below the model's min_score.",
+                model,
+            ),
+            model_info: gauge(
+                &r,
+                "model_info",
+                "Always 1: the served model's version and engine.",
+                &["model", "version", "engine"],
+            ),
+            http_requests: counter(
+                &r,
+                "http_requests_total",
+                "HTTP responses, by matched route and status.",
+                &["route", "status"],
+            ),
+            frames_decoded: counter(
+                &r,
+                "frames_decoded_total",
+                "Frames decoded and preprocessed, by thread: \"http\" (small frames, on the thread that received \
+                 them) or \"pool\" (the decode pool).",
+                &["model", "thread"],
+            ),
+            registry: r.clone(),
         };
-        let request_duration = hist(
-            "request_duration_seconds",
-            "Time from a classify request's arrival to its answer, by model and outcome.",
-            &["model", "outcome"],
-            LATENCY_BUCKETS.to_vec(),
-        );
-        let preprocess_duration = hist(
-            "preprocess_duration_seconds",
-            "Time to decode and preprocess one image.",
-            &["model"],
-            LATENCY_BUCKETS.to_vec(),
-        );
-        let inference_duration = hist(
-            "inference_duration_seconds",
-            "Engine wall time of one inference pass.",
-            &["model"],
-            LATENCY_BUCKETS.to_vec(),
-        );
-        let pass_size = hist(
-            "pass_size_requests",
-            "Requests in one inference pass.",
-            &["model"],
-            vec![1.0, 2.0, 3.0, 4.0, 6.0, 8.0, 12.0, 16.0, 32.0, 64.0],
-        );
-        let gauge = |name: &str, help: &str| {
-            let g = must(IntGaugeVec::new(Opts::new(name, help), &["model"]));
-            must(registry.register(Box::new(g.clone())));
-            g
-        };
-        let backlog_depth = gauge("backlog_depth", "Requests waiting in the model's backlog.");
-        let lanes = gauge("lanes", "Inference lanes serving the model.");
-        let counter = |name: &str, help: &str, labels: &[&str]| {
-            let c = must(IntCounterVec::new(Opts::new(name, help), labels));
-            must(registry.register(Box::new(c.clone())));
-            c
-        };
-        let lane_failures = counter("lane_failures_total", "Inference errors and panics inside a lane.", &["model"]);
-        let abandoned = counter(
-            "abandoned_total",
-            "Requests dropped before inference because the client disconnected.",
-            &["model"],
-        );
-        let http_requests =
-            counter("http_requests_total", "HTTP responses, by matched route and status.", &["route", "status"]);
-        let lane_restarts = counter("lane_restarts_total", "Lane engine states replaced after a panic.", &["model"]);
-        let predictions = counter("predictions_total", "Answers by model and top-1 label.", &["model", "label"]);
-        let low_confidence =
-            counter("low_confidence_total", "Answers whose top score is below the model's min_score.", &["model"]);
-        let frames_decoded = counter(
-            "frames_decoded_total",
-            "Frames decoded and preprocessed, by thread: \"http\" (small frames, on the thread that received \
-             them) or \"pool\" (the decode pool).",
-            &["model", "thread"],
-        );
-        let backlog_wait = hist(
-            "backlog_wait_seconds",
-            "Time a request waited in the backlog for an inference lane.",
-            &["model"],
-            LATENCY_BUCKETS.to_vec(),
-        );
-        let model_info = must(IntGaugeVec::new(
-            Opts::new("model_info", "Always 1: the served model's version and engine."),
-            &["model", "version", "engine"],
-        ));
-        must(registry.register(Box::new(model_info.clone())));
-        let build = must(IntGaugeVec::new(Opts::new("build_info", "Always 1: lineside's version."), &["version"]));
-        must(registry.register(Box::new(build.clone())));
+        let build = gauge(&r, "build_info", "Always 1: lineside's version.", &["version"]);
         build.with_label_values(&[env!("CARGO_PKG_VERSION")]).set(1);
-        Metrics {
-            registry,
-            request_duration,
-            preprocess_duration,
-            inference_duration,
-            pass_size,
-            backlog_depth,
-            lanes,
-            lane_failures,
-            lane_restarts,
-            abandoned,
-            backlog_wait,
-            predictions,
-            low_confidence,
-            model_info,
-            http_requests,
-            frames_decoded,
-        }
+        m
     }
 
     /// Handles for one model, with its expected series created at zero (one prediction
@@ -226,6 +244,7 @@ impl Metrics {
             low_confidence: self.low_confidence.with_label_values(&[model]),
             predictions: self.predictions.clone(),
             abandoned: self.abandoned.with_label_values(&[model]),
+            background_frames: self.background_frames.with_label_values(&[model]),
             preprocess_duration: self.preprocess_duration.with_label_values(&[model]),
             decoded_inline: self.frames_decoded.with_label_values(&[model, "http"]),
             decoded_pool: self.frames_decoded.with_label_values(&[model, "pool"]),

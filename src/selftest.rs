@@ -11,9 +11,18 @@ use std::collections::BTreeMap;
 use anyhow::Context as _;
 use serde::{Deserialize, Serialize};
 
-use crate::config::SelftestConfig;
 use crate::model::{Model, Runner, top_k};
 use crate::preprocess::Pipeline;
+use crate::source::Source;
+
+/// Validated `[models.selftest]`.
+#[derive(Debug, Clone)]
+pub struct SelftestConfig {
+    /// The folder of images with their `expected.json`.
+    pub samples: Source,
+    /// Largest allowed difference of an expected score.
+    pub tolerance: f32,
+}
 
 /// One sample's expectation.
 #[derive(Debug, Clone, Deserialize, Serialize, PartialEq)]
@@ -27,7 +36,7 @@ pub struct Expected {
 }
 
 /// What the self-test found.
-#[derive(Debug, Clone, Serialize, PartialEq)]
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 pub struct Outcome {
     /// Samples checked.
     pub samples: usize,

@@ -21,23 +21,22 @@ use hyper_util::service::TowerToHyperService;
 use tokio::net::TcpListener;
 use tokio::sync::{oneshot, watch};
 
-use crate::batch::{Batcher, BatcherGuard, FaultPlan};
+use crate::batch::BatcherGuard;
 use crate::config::Config;
-use crate::http::state::{AppState, InFlight, Readiness, RequestIds, RequestLimits, Served, ServedModel};
+use crate::http::state::{AppState, InFlight, Readiness, RequestIds, RequestLimits, Served};
 use crate::metrics::Metrics;
-use crate::model::load;
-use crate::preprocess::Pipeline;
+use crate::model::StateWrap;
 use crate::preprocess::pool::CpuPool;
-use crate::selftest;
+use crate::served::{LoadOptions, Loaded as LoadedModel};
 
 /// Extra controls for tests.
 #[derive(Default)]
 pub struct RunOptions {
     /// Loading starts only when this resolves (tests hold it to observe `/readyz` = 503).
     pub load_gate: Option<oneshot::Receiver<()>>,
-    /// A fault to inject into every model's lanes (tests of lane recovery).
-    #[doc(hidden)]
-    pub fault: FaultPlan,
+    /// Wraps every lane's engine state (tests put a fault-injecting engine around the real
+    /// one to test lane recovery, deadlines and health).
+    pub wrap_lanes: Option<StateWrap>,
 }
 
 /// Serve `config` on `listener` until `shutdown` resolves, then drain.
@@ -57,47 +56,11 @@ pub async fn run(
     options: RunOptions,
 ) -> anyhow::Result<()> {
     let metrics = Metrics::new();
-    let pool = CpuPool::new("decode", config.server.decode_threads, config.server.decode_backlog)
-        .context("cannot start the decode threads")?;
     let (ready_tx, ready_rx) = watch::channel(Readiness::Loading("waiting to start".into()));
-    let s = &config.server;
-    let limits = RequestLimits {
-        body_limit: s.body_limit_bytes,
-        body_timeout: s.body_timeout,
-        deadline: s.deadline,
-        stall: s.stall,
-        ready_backlog: s.ready_backlog,
-        decode_inline_pixels: s.decode_inline_pixels,
-    };
-    let in_flight = Arc::new(InFlight::default());
-    let state = AppState {
-        readiness: ready_rx,
-        metrics: metrics.clone(),
-        pool,
-        limits,
-        in_flight: Arc::clone(&in_flight),
-        request_ids: Arc::new(RequestIds::new()),
-    };
+    let state = app_state(&config, ready_rx, metrics.clone())?;
+    let in_flight = Arc::clone(&state.in_flight);
     let app = crate::http::router(state);
-
-    // The loader owns nothing the server needs; it reports back once.
-    let (loaded_tx, mut loaded_rx) = oneshot::channel::<anyhow::Result<Loaded>>();
-    {
-        let config = config.clone();
-        let ready_tx = ready_tx.clone();
-        let gate = options.load_gate;
-        let fault = options.fault;
-        tokio::spawn(async move {
-            if let Some(gate) = gate {
-                let _ = gate.await;
-            }
-            let _ = ready_tx.send(Readiness::Loading(format!("loading {} model(s)", config.models.len())));
-            let result = tokio::task::spawn_blocking(move || load_all(&config, &metrics, &fault))
-                .await
-                .unwrap_or_else(|e| Err(anyhow::anyhow!("model loader panicked: {e}")));
-            let _ = loaded_tx.send(result);
-        });
-    }
+    let mut loaded_rx = spawn_loader(config.clone(), ready_tx.clone(), metrics, options);
 
     let mut builder = Builder::new(TokioExecutor::new());
     builder.http1().timer(TokioTimer::new()).header_read_timeout(config.server.header_timeout);
@@ -113,11 +76,7 @@ pub async fn run(
             }
         });
     };
-    let mut guards: Vec<BatcherGuard> = Vec::new();
-    let mut served: Option<Arc<Served>> = None;
-    let mut load_pending = true;
-    let mut failure: Option<anyhow::Error> = None;
-    tokio::pin!(shutdown);
+    let s = &config.server;
     tracing::info!(
         addr = %listener.local_addr()?,
         http_threads = s.http_threads,
@@ -126,6 +85,12 @@ pub async fn run(
         "listening"
     );
 
+    // Serve until shutdown (or a failed load); the models arrive while serving.
+    let mut guards: Vec<BatcherGuard> = Vec::new();
+    let mut served: Option<Arc<Served>> = None;
+    let mut load_pending = true;
+    let mut failure: Option<anyhow::Error> = None;
+    tokio::pin!(shutdown);
     loop {
         tokio::select! {
             conn = listener.accept() => match conn {
@@ -134,29 +99,16 @@ pub async fn run(
             },
             loaded = &mut loaded_rx, if load_pending => {
                 load_pending = false;
-                match loaded {
-                    Ok(Ok(loaded)) => {
+                match loaded.unwrap_or_else(|_| Err(anyhow::anyhow!("model loader vanished"))) {
+                    Ok(loaded) => {
                         served = Some(loaded.served.clone());
                         guards = loaded.guards;
-                        if loaded.selftest_failures.is_empty() {
-                            tracing::info!(models = loaded.served.len(), "models loaded, accepting frames");
-                            let _ = ready_tx.send(Readiness::Ready(loaded.served));
-                        } else {
-                            // Stay up, but never ready: the orchestrator keeps traffic away and
-                            // the reason is on /readyz and in the log.
-                            let reason = format!("self-test failed: {}", loaded.selftest_failures.join("; "));
-                            tracing::error!(%reason, "not ready");
-                            let _ = ready_tx.send(Readiness::Failed(reason));
-                        }
+                        announce(&ready_tx, loaded.served, &loaded.selftest_failures);
                     }
-                    Ok(Err(e)) => {
+                    Err(e) => {
                         tracing::error!(cause = %format!("{e:#}"), "model loading failed");
                         let _ = ready_tx.send(Readiness::Failed(format!("model loading failed: {e:#}")));
                         failure = Some(e);
-                        break;
-                    }
-                    Err(_) => {
-                        failure = Some(anyhow::anyhow!("model loader vanished"));
                         break;
                     }
                 }
@@ -167,24 +119,9 @@ pub async fn run(
 
     // Drain: not ready at once, new classify requests refused with `draining`, the listener
     // still open, until every accepted request is answered or drain_ms passes.
-    let drain = config.server.drain;
     if let Some(s) = served {
         let _ = ready_tx.send(Readiness::Draining(s));
-        tracing::info!(in_flight = in_flight.count(), drain_ms = drain.as_millis() as u64, "draining");
-        let until = tokio::time::Instant::now() + drain;
-        while in_flight.count() > 0 {
-            tokio::select! {
-                conn = listener.accept() => match conn {
-                    Ok((stream, _)) => accept(stream),
-                    Err(e) => backoff(e).await,
-                },
-                () = tokio::time::sleep_until(until) => {
-                    tracing::warn!(in_flight = in_flight.count(), "drain deadline passed; answering the rest `draining`");
-                    break;
-                }
-                () = tokio::time::sleep(POLL) => {}
-            }
-        }
+        drain(&listener, &accept, &in_flight, config.server.drain).await;
     }
     // Stops the lanes; anything still queued is answered `draining`. Give those answers a
     // moment to be written before the connections close.
@@ -206,6 +143,88 @@ pub async fn run(
     }
 }
 
+/// Keep accepting (answers say `draining`) until nothing is in flight or `drain` passes.
+async fn drain(
+    listener: &TcpListener,
+    accept: &impl Fn(tokio::net::TcpStream),
+    in_flight: &InFlight,
+    drain: std::time::Duration,
+) {
+    tracing::info!(in_flight = in_flight.count(), drain_ms = drain.as_millis() as u64, "draining");
+    let until = tokio::time::Instant::now() + drain;
+    while in_flight.count() > 0 {
+        tokio::select! {
+            conn = listener.accept() => match conn {
+                Ok((stream, _)) => accept(stream),
+                Err(e) => backoff(e).await,
+            },
+            () = tokio::time::sleep_until(until) => {
+                tracing::warn!(in_flight = in_flight.count(), "drain deadline passed; answering the rest `draining`");
+                break;
+            }
+            () = tokio::time::sleep(POLL) => {}
+        }
+    }
+}
+
+/// The handlers' shared state, before any model is loaded.
+fn app_state(config: &Config, readiness: watch::Receiver<Readiness>, metrics: Metrics) -> anyhow::Result<AppState> {
+    let s = &config.server;
+    let pool = CpuPool::new("decode", s.decode_threads, s.decode_backlog).context("cannot start the decode threads")?;
+    let limits = RequestLimits {
+        body_limit: s.body_limit_bytes,
+        body_timeout: s.body_timeout,
+        deadline: s.deadline,
+        stall: s.stall,
+        ready_backlog: s.ready_backlog,
+        decode_inline_pixels: s.decode_inline_pixels,
+    };
+    Ok(AppState {
+        readiness,
+        metrics,
+        pool,
+        limits,
+        in_flight: Arc::new(InFlight::default()),
+        request_ids: Arc::new(RequestIds::new()),
+    })
+}
+
+/// Load the models on a blocking thread (after the test's gate, if any); the result comes
+/// back once on the returned channel. The loader owns nothing the server needs.
+fn spawn_loader(
+    config: Config,
+    ready_tx: watch::Sender<Readiness>,
+    metrics: Metrics,
+    options: RunOptions,
+) -> oneshot::Receiver<anyhow::Result<Loaded>> {
+    let (loaded_tx, loaded_rx) = oneshot::channel();
+    tokio::spawn(async move {
+        if let Some(gate) = options.load_gate {
+            let _ = gate.await;
+        }
+        let _ = ready_tx.send(Readiness::Loading(format!("loading {} model(s)", config.models.len())));
+        let wrap = options.wrap_lanes;
+        let result = tokio::task::spawn_blocking(move || load_all(&config, &metrics, wrap.as_ref()))
+            .await
+            .unwrap_or_else(|e| Err(anyhow::anyhow!("model loader panicked: {e}")));
+        let _ = loaded_tx.send(result);
+    });
+    loaded_rx
+}
+
+/// Ready, or up but never ready when a self-test failed: the orchestrator keeps traffic
+/// away and the reason is on `/readyz` and in the log.
+fn announce(ready_tx: &watch::Sender<Readiness>, served: Arc<Served>, selftest_failures: &[String]) {
+    if selftest_failures.is_empty() {
+        tracing::info!(models = served.len(), "models loaded, accepting frames");
+        let _ = ready_tx.send(Readiness::Ready(served));
+    } else {
+        let reason = format!("self-test failed: {}", selftest_failures.join("; "));
+        tracing::error!(%reason, "not ready");
+        let _ = ready_tx.send(Readiness::Failed(reason));
+    }
+}
+
 /// How often the drain looks at the in-flight count.
 const POLL: std::time::Duration = std::time::Duration::from_millis(5);
 /// Longest wait for the last answers and idle connections after the lanes stop.
@@ -224,42 +243,29 @@ struct Loaded {
     selftest_failures: Vec<String>,
 }
 
-/// Load every model, run its self-test and start its lanes.
-fn load_all(config: &Config, metrics: &Metrics, fault: &FaultPlan) -> anyhow::Result<Loaded> {
+/// Load every model through the one loading path, run its self-test and start its lanes.
+fn load_all(config: &Config, metrics: &Metrics, wrap: Option<&StateWrap>) -> anyhow::Result<Loaded> {
     let mut served = Served::new();
     let mut guards = Vec::new();
     let mut selftest_failures = Vec::new();
+    let opts = LoadOptions { max_pixels: config.server.max_pixels, models: config.models.len(), report: false };
     for mc in &config.models {
-        let model = Arc::new(load::load(mc).with_context(|| format!("model {:?}", mc.name))?);
+        let loaded = LoadedModel::load(mc, &opts)?;
+        let model = &loaded.model;
         tracing::info!(
             model = %model.name,
             version = %model.version,
             load_ms = model.load_time.as_millis() as u64,
+            lanes = loaded.lanes,
             "model loaded"
         );
-        let mm = metrics.for_model(&mc.name, &model.version, model.engine().name(), &model.labels);
-        let (batcher, guard) = Batcher::start(Arc::clone(&model), &mc.batching, mm.clone(), fault.clone())?;
-        let pipeline = Pipeline::new(mc.preprocess.clone(), &model.contract, config.server.max_pixels);
-        let mut selftest = None;
-        if let Some(st) = &mc.selftest {
-            let samples = selftest::Samples::read(st).with_context(|| format!("model {:?}: self-test", mc.name))?;
-            let outcome = selftest::run(&model, &pipeline, &samples, st.tolerance);
+        let selftest = loaded.selftest()?;
+        if let Some(outcome) = &selftest {
             tracing::info!(model = %mc.name, samples = outcome.samples, failures = outcome.failures.len(), "self-test");
             selftest_failures.extend(outcome.failures.iter().map(|f| format!("model {:?}: {f}", mc.name)));
-            selftest = Some(outcome);
         }
+        let (entry, guard) = loaded.start(metrics, wrap, selftest)?;
         guards.push(guard);
-        let lanes = batcher.lanes();
-        let entry = ServedModel {
-            model,
-            pipeline: Arc::new(pipeline),
-            batcher,
-            metrics: mm,
-            min_score: mc.min_score,
-            batching: mc.batching.clone(),
-            lanes,
-            selftest,
-        };
         served.insert(mc.name.clone(), entry);
     }
     Ok(Loaded { served: Arc::new(served), guards, selftest_failures })

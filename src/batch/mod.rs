@@ -11,23 +11,56 @@
 //! are refused at once) and stops the lanes: they answer whatever is still queued with
 //! [`BatchError::ShuttingDown`] and exit.
 //!
+//! Background work (evaluation, occlusion maps, candidate trials, reload warm-ups) shares the
+//! lanes with live requests through [`Batcher::infer_background`]: its jobs wait in a second,
+//! small queue, and a lane takes them only when no live request waits. A live request that
+//! arrives meanwhile waits for at most the one background pass in progress on that lane (up
+//! to `batch_cap` images); at most `lanes x batch_cap` background jobs wait per model, and a
+//! submitter beyond that waits for room instead of being refused (DEVELOPERS.md).
+//!
 //! Deadlines: every job carries the instant its request must be answered by; a lane that
 //! picks up a job past it answers [`BatchError::DeadlineExpired`] without running it, and a job
 //! whose client has gone (its reply channel closed) is skipped too.
 
+#[cfg(test)]
+mod lane_tests;
 pub mod worker;
 
 use std::sync::Arc;
-use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::time::{Duration, Instant};
 
 use crossbeam_channel::{Receiver, Sender, TrySendError, bounded};
 use tokio::sync::oneshot;
 
-use crate::config::{BatchingConfig, Lanes};
 use crate::metrics::ModelMetrics;
-use crate::model::Model;
+use crate::model::{Model, StackMode, StateWrap};
 
+/// How many inference lanes a model gets.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Lanes {
+    /// One lane per available core (see `batch` for the rule).
+    Auto,
+    /// Exactly this many.
+    Fixed(usize),
+}
+
+/// Validated `[models.batching]`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct BatchingConfig {
+    /// Most requests one inference pass takes.
+    pub batch_cap: usize,
+    /// Longest the first request of a pass may wait for company (engines that stack only).
+    pub gather: Duration,
+    /// Requests waiting per model before new ones get 503 `overloaded`.
+    pub backlog: usize,
+    /// Parallel inference lanes.
+    pub lanes: Lanes,
+    /// Threads inside one lane's inference.
+    pub lane_threads: usize,
+    /// Whether passes are stacked into one tensor (`stack`).
+    pub stack: StackMode,
+}
 /// Why a request got no scores from the batcher.
 #[derive(Debug, Clone, thiserror::Error, PartialEq, Eq)]
 pub enum BatchError {
@@ -115,9 +148,11 @@ impl Gather {
 #[derive(Clone)]
 pub struct Batcher {
     tx: Sender<Job>,
+    /// The background queue; `background_room` holds one permit per free place in it.
+    background: Sender<Job>,
+    background_room: Arc<tokio::sync::Semaphore>,
     model: String,
     backlog: usize,
-    metrics: ModelMetrics,
     closed: Arc<AtomicBool>,
     busy: Arc<BusyClock>,
 }
@@ -128,6 +163,8 @@ pub struct Batcher {
 pub struct BatcherGuard {
     closed: Arc<AtomicBool>,
     queued: Receiver<Job>,
+    background: Receiver<Job>,
+    background_room: Arc<tokio::sync::Semaphore>,
     _stop: Sender<()>,
 }
 
@@ -135,7 +172,9 @@ impl Drop for BatcherGuard {
     fn drop(&mut self) {
         // Refuse new jobs first, so that none is queued behind the sweep below.
         self.closed.store(true, Ordering::SeqCst);
+        self.background_room.close();
         refuse_queued(&self.queued);
+        refuse_queued(&self.background);
     }
 }
 
@@ -183,75 +222,52 @@ impl BusyClock {
     }
 }
 
-/// Faults injected into the lanes, for tests of recovery, deadlines and health: the engine
-/// panics on the job that brings `panic_countdown` from 1 to 0, and the next job to start
-/// first sleeps `stall_once_ms` (then the value is cleared). Not a configuration key.
-#[doc(hidden)]
-#[derive(Clone, Default)]
-pub struct FaultPlan {
-    /// Jobs to run before the injected panic (0: never).
-    pub panic_countdown: Arc<AtomicUsize>,
-    /// Milliseconds the next job stalls the lane (0: none).
-    pub stall_once_ms: Arc<AtomicU64>,
-}
-
-impl FaultPlan {
-    /// Whether the job now starting must panic.
-    pub(crate) fn fire(&self) -> bool {
-        self.panic_countdown.fetch_update(Ordering::SeqCst, Ordering::SeqCst, |n| n.checked_sub(1)) == Ok(1)
-    }
-
-    /// How long the job now starting must stall the lane (once).
-    pub(crate) fn stall(&self) -> Duration {
-        Duration::from_millis(self.stall_once_ms.swap(0, Ordering::SeqCst))
-    }
-}
-
-/// Lanes for `Lanes::Auto`: as many lanes of `lane_threads` threads as fit the cores (at
-/// least one). With the default `lane_threads = 1` that is one single-threaded lane per core:
-/// two lanes x 1 thread used 1.95 of 2 cores here, against 1.2-1.8 for one 2-thread lane,
-/// and gave the most images per second (docs/performance.md).
-pub fn auto_lanes(lane_threads: usize) -> usize {
-    let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
-    (cores / lane_threads.max(1)).max(1)
-}
-
 impl Batcher {
-    /// Start the lanes for `model`.
+    /// Start `lanes` lanes for `model` (`lanes = "auto"` is resolved by the caller:
+    /// `served::share_lanes`).
     ///
     /// # Errors
     /// When a lane's engine state or thread cannot be created.
     pub fn start(
         model: Arc<Model>,
         cfg: &BatchingConfig,
+        lanes: usize,
         metrics: ModelMetrics,
-        fault: FaultPlan,
+        wrap: Option<&StateWrap>,
     ) -> anyhow::Result<(Batcher, BatcherGuard)> {
         let (tx, rx) = bounded::<Job>(cfg.backlog);
+        let background_cap = lanes * cfg.batch_cap;
+        let (bg_tx, bg_rx) = bounded::<Job>(background_cap);
+        let background_room = Arc::new(tokio::sync::Semaphore::new(background_cap));
         let (stop_tx, stop_rx) = bounded::<()>(0);
-        let lanes = match cfg.lanes {
-            Lanes::Auto => auto_lanes(cfg.lane_threads),
-            Lanes::Fixed(n) => n,
-        };
         let gather = Gather { cap: cfg.batch_cap, window: cfg.gather, stacks: model.stacks() };
         let busy = Arc::new(BusyClock::new(lanes));
         let closed = Arc::new(AtomicBool::new(false));
         for i in 0..lanes {
             let ends = worker::LaneEnds {
                 jobs: rx.clone(),
+                background: bg_rx.clone(),
                 stop: stop_rx.clone(),
                 busy: Arc::clone(&busy),
                 index: i,
                 closed: Arc::clone(&closed),
             };
             let threads = cfg.lane_threads;
-            let lane = worker::Lane::new(Arc::clone(&model), ends, gather, threads, metrics.clone(), fault.clone())?;
+            let lane = worker::Lane::new(Arc::clone(&model), ends, gather, threads, metrics.clone(), wrap.cloned())?;
             std::thread::Builder::new().name(format!("lane-{}-{i}", model.name)).spawn(move || lane.run())?;
         }
         metrics.lanes.set(lanes as i64);
-        let batcher =
-            Batcher { tx, model: model.name.clone(), backlog: cfg.backlog, metrics, closed: Arc::clone(&closed), busy };
-        Ok((batcher, BatcherGuard { closed, queued: rx, _stop: stop_tx }))
+        let batcher = Batcher {
+            tx,
+            background: bg_tx,
+            background_room: Arc::clone(&background_room),
+            model: model.name.clone(),
+            backlog: cfg.backlog,
+            closed: Arc::clone(&closed),
+            busy,
+        };
+        let guard = BatcherGuard { closed, queued: rx, background: bg_rx, background_room, _stop: stop_tx };
+        Ok((batcher, guard))
     }
 
     /// Lanes serving this model.
@@ -287,11 +303,38 @@ impl Batcher {
             }
             Err(TrySendError::Disconnected(_)) => return Err(BatchError::ShuttingDown),
         }
-        self.metrics.backlog_depth.set(self.tx.len() as i64);
         // A dropped reply means the lane went away without answering: only at shutdown.
         answer.await.unwrap_or(Err(BatchError::ShuttingDown))
     }
+
+    /// Run one image as background work: it waits until a lane finds no live request
+    /// waiting, and never delays a live request by more than the one background pass a lane
+    /// may be running. When `lanes x batch_cap` background images already wait, this waits
+    /// for room (it is never refused for being full). Background work has no deadline.
+    ///
+    /// # Errors
+    /// `ShuttingDown` when the batcher closes first; `Inference`.
+    pub async fn infer_background(&self, tensor: Vec<f32>) -> Result<Scored, BatchError> {
+        let _room = self.background_room.acquire().await.map_err(|_| BatchError::ShuttingDown)?;
+        if self.closed.load(Ordering::SeqCst) {
+            return Err(BatchError::ShuttingDown);
+        }
+        let (reply, answer) = oneshot::channel();
+        let now = Instant::now();
+        let job = Job { tensor, enqueued: now, deadline: now + NO_DEADLINE, reply };
+        // Holding a permit guarantees a free place: Full cannot happen.
+        self.background.try_send(job).map_err(|_| BatchError::ShuttingDown)?;
+        answer.await.unwrap_or(Err(BatchError::ShuttingDown))
+    }
+
+    /// Background images waiting now, and the most that may wait.
+    pub fn background_depth(&self) -> (usize, usize) {
+        (self.background.len(), self.background.capacity().unwrap_or(0))
+    }
 }
+
+/// The deadline of background work: none in practice (a day).
+const NO_DEADLINE: Duration = Duration::from_secs(24 * 3600);
 
 #[cfg(test)]
 mod tests {
@@ -303,9 +346,13 @@ mod tests {
 
     #[test]
     fn non_stacking_engine_never_waits() {
-        let g = Gather { cap: 8, window: Duration::from_micros(2000), stacks: false };
+        // A burst under way (3 taken, room for more, inside the window): a stacking engine
+        // waits for the rest until the window closes, one that does not stack never waits.
         let t0 = Instant::now();
-        assert_eq!(g.wait_until(t0, 1, t0), None);
+        let stacking = Gather { cap: 8, window: Duration::from_micros(2000), stacks: true };
+        assert_eq!(stacking.wait_until(t0, 3, at(t0, 100)), Some(at(t0, 2000)));
+        let single = Gather { stacks: false, ..stacking };
+        assert_eq!(single.wait_until(t0, 3, at(t0, 100)), None);
     }
 
     #[test]
@@ -338,14 +385,6 @@ mod tests {
         assert!(d >= Duration::from_millis(50) && d < Duration::from_secs(5), "{d:?}");
         c.stop(1);
         assert_eq!(c.longest(later), None);
-    }
-
-    #[test]
-    fn fault_plan_fires_once_on_the_counted_job() {
-        let f = FaultPlan::default();
-        assert!(!f.fire(), "0 never fires");
-        f.panic_countdown.store(2, Ordering::SeqCst);
-        assert_eq!([f.fire(), f.fire(), f.fire()], [false, true, false]);
     }
 
     #[test]

@@ -15,14 +15,24 @@ use std::time::Instant;
 
 use crossbeam_channel::{Receiver, RecvTimeoutError, TryRecvError, select};
 
-use super::{BatchError, BusyClock, FaultPlan, Gather, Job, Scored};
+use super::{BatchError, BusyClock, Gather, Job, Scored};
 use crate::metrics::ModelMetrics;
-use crate::model::{Model, RunError, Runner};
+use crate::model::{Model, RunError, Runner, StateWrap};
+
+/// The next unit of work a lane found.
+enum Next {
+    /// A live request: it starts a pass that may gather company.
+    Live(Job),
+    /// Background work: it starts a pass of what background work is queued.
+    Background(Job),
+}
 
 /// What connects a lane to its batcher.
 pub struct LaneEnds {
     /// The model's backlog.
     pub jobs: Receiver<Job>,
+    /// The model's background queue, taken from only when `jobs` is empty.
+    pub background: Receiver<Job>,
     /// Closes when the batcher's guard is dropped.
     pub stop: Receiver<()>,
     /// Where the lane marks its passes, for the stall check.
@@ -42,7 +52,8 @@ pub struct Lane {
     /// Threads of the lane's engine state (`lane_threads`), kept for a restart.
     threads: usize,
     metrics: ModelMetrics,
-    fault: FaultPlan,
+    /// Wraps the lane's engine state (tests only; kept for a restart).
+    wrap: Option<StateWrap>,
 }
 
 impl Lane {
@@ -56,34 +67,69 @@ impl Lane {
         gather: Gather,
         threads: usize,
         metrics: ModelMetrics,
-        fault: FaultPlan,
+        wrap: Option<StateWrap>,
     ) -> anyhow::Result<Lane> {
-        let runner = model.runner_with_threads(threads)?;
-        Ok(Lane { model, runner, ends, gather, threads, metrics, fault })
+        let runner = model.runner_wrapped(threads, wrap.as_ref())?;
+        Ok(Lane { model, runner, ends, gather, threads, metrics, wrap })
     }
 
     /// Serve until the stop channel closes, then answer what is left and return.
+    ///
+    /// Live jobs first: a background job is run only when no live job waits; one taken from
+    /// the queue while waiting for work is kept aside until the live queue is checked again.
     pub fn run(mut self) {
+        let mut set_aside: Option<Job> = None;
         loop {
             // Stop before taking more work once closed (select! picks among ready arms at random).
             if self.ends.closed.load(Ordering::SeqCst) {
                 break;
             }
-            let first = select! {
-                recv(self.ends.jobs) -> job => match job {
-                    Ok(job) => job,
-                    Err(_) => return, // every Batcher handle is gone
-                },
-                recv(self.ends.stop) -> _ => break,
+            let next = if let Ok(job) = self.ends.jobs.try_recv() {
+                Next::Live(job)
+            } else if let Some(job) = set_aside.take().or_else(|| self.ends.background.try_recv().ok()) {
+                Next::Background(job)
+            } else {
+                select! {
+                    recv(self.ends.jobs) -> job => match job {
+                        Ok(job) => Next::Live(job),
+                        Err(_) => return, // every Batcher handle is gone
+                    },
+                    recv(self.ends.background) -> job => match job {
+                        Ok(job) => {
+                            set_aside = Some(job);
+                            continue; // look at the live queue once more first
+                        }
+                        Err(_) => return,
+                    },
+                    recv(self.ends.stop) -> _ => break,
+                }
             };
-            let pass = self.form_pass(first);
-            self.metrics.backlog_depth.set(self.ends.jobs.len() as i64);
+            let (pass, live) = match next {
+                Next::Live(first) => (self.form_pass(first), true),
+                Next::Background(first) => (self.form_background_pass(first), false),
+            };
             self.ends.busy.start(self.ends.index);
-            self.run_pass(pass);
+            self.run_pass(pass, live);
             self.ends.busy.stop(self.ends.index);
+        }
+        if let Some(job) = set_aside {
+            let _ = job.reply.send(Err(BatchError::ShuttingDown));
         }
         // A job sent in the instant before the guard closed the batcher is answered here.
         super::refuse_queued(&self.ends.jobs);
+        super::refuse_queued(&self.ends.background);
+    }
+
+    /// A background pass: what is already queued, up to `batch_cap`, without waiting.
+    fn form_background_pass(&self, first: Job) -> Vec<Job> {
+        let mut pass = vec![first];
+        while pass.len() < self.gather.cap {
+            match self.ends.background.try_recv() {
+                Ok(job) => pass.push(job),
+                Err(_) => break,
+            }
+        }
+        pass
     }
 
     fn form_pass(&self, first: Job) -> Vec<Job> {
@@ -128,16 +174,22 @@ impl Lane {
         Some(job)
     }
 
-    fn run_pass(&mut self, pass: Vec<Job>) {
+    /// Run a formed pass; `live` passes feed the backlog's metrics, background ones are
+    /// counted apart.
+    fn run_pass(&mut self, pass: Vec<Job>, live: bool) {
         let started = Instant::now();
         let pass: Vec<Job> = pass.into_iter().filter_map(|j| self.admit(j, started)).collect();
         let size = pass.len();
         if size == 0 {
             return;
         }
-        self.metrics.pass_size.observe(size as f64);
+        if live {
+            self.metrics.pass_size.observe(size as f64);
+        } else {
+            self.metrics.background_frames.inc_by(size as u64);
+        }
         if self.runner.stacks() {
-            self.run_stacked(pass, started);
+            self.run_stacked(pass, started, live);
             return;
         }
         let mut last = None;
@@ -146,7 +198,9 @@ impl Lane {
             let Some(job) = (if i == 0 { Some(job) } else { self.admit(job, Instant::now()) }) else {
                 continue;
             };
-            self.metrics.backlog_wait.observe((Instant::now() - job.enqueued).as_secs_f64());
+            if live {
+                self.metrics.backlog_wait.observe((Instant::now() - job.enqueued).as_secs_f64());
+            }
             let answer = self.run_one(&job, started, size);
             if i + 1 == size {
                 last = Some((job, answer));
@@ -164,10 +218,10 @@ impl Lane {
 
     /// Run the admitted pass as one stacked tensor (engines that stack): every job gets the
     /// pass's time as its inference time, and one failure fails the pass.
-    fn run_stacked(&mut self, pass: Vec<Job>, started: Instant) {
+    fn run_stacked(&mut self, pass: Vec<Job>, started: Instant, live: bool) {
         let size = pass.len();
         let now = Instant::now();
-        for job in &pass {
+        for job in pass.iter().filter(|_| live) {
             self.metrics.backlog_wait.observe((now - job.enqueued).as_secs_f64());
         }
         let inputs: Vec<&[f32]> = pass.iter().map(|j| j.tensor.as_slice()).collect();
@@ -188,18 +242,11 @@ impl Lane {
         }
     }
 
-    /// Run `f` on the engine state under the fault plan; a failure is counted and logged, and
-    /// after a panic the engine state is replaced.
+    /// Run `f` on the engine state; a failure is counted and logged, and after a panic the
+    /// engine state is replaced.
     fn guarded<T>(&mut self, f: impl FnOnce(&mut Runner) -> Result<T, RunError>) -> Result<T, BatchError> {
-        let fault = &self.fault;
-        std::thread::sleep(fault.stall());
         let runner = &mut self.runner;
-        let result = catch_unwind(AssertUnwindSafe(|| {
-            if fault.fire() {
-                panic!("injected fault (FaultPlan)");
-            }
-            f(runner)
-        }));
+        let result = catch_unwind(AssertUnwindSafe(|| f(runner)));
         match result {
             Ok(Ok(v)) => Ok(v),
             Ok(Err(e)) => {
@@ -224,7 +271,7 @@ impl Lane {
     }
 
     fn replace_runner(&mut self) {
-        match self.model.runner_with_threads(self.threads) {
+        match self.model.runner_wrapped(self.threads, self.wrap.as_ref()) {
             Ok(r) => {
                 self.runner = r;
                 self.metrics.lane_restarts.inc();

@@ -13,9 +13,11 @@
 
 pub mod chart;
 pub mod child;
+pub mod drive;
 pub mod engine;
 pub mod load;
 pub mod report;
+pub mod verdict;
 
 use hdrhistogram::Histogram;
 use serde::Serialize;
@@ -71,12 +73,6 @@ pub fn summarize(samples_us: &[u64]) -> Latency {
         p999_ms: ms(h.value_at_quantile(0.999)),
         max_ms: ms(h.max()),
     }
-}
-
-/// The latency at each of `quantiles`, in milliseconds (for the slower-than chart).
-pub fn quantile_curve(samples_us: &[u64], quantiles: &[f64]) -> Vec<f64> {
-    let h = histogram(samples_us);
-    quantiles.iter().map(|&q| h.value_at_quantile(q) as f64 / 1e3).collect()
 }
 
 /// CPU seconds (user + system) a process has used: fields 14 and 15 of /proc/PID/stat, in

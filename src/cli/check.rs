@@ -17,8 +17,8 @@ use anyhow::Context as _;
 use crate::config::{Channels, Config, ModelConfig, Overrides, PreprocessConfig, ResizeMode, Source};
 use crate::model::report::Report;
 use crate::model::{BatchAxis, Contract, EngineKind, InputType, Model, ScoreTransform, Stacking, load};
-use crate::preprocess::Pipeline;
 use crate::selftest;
+use crate::served::{LoadOptions, Loaded};
 
 /// Arguments of `lineside check`.
 #[derive(Debug, clap::Args)]
@@ -117,14 +117,13 @@ pub fn run(args: CheckArgs) -> anyhow::Result<Outcome> {
                 "bgr" => Channels::Bgr,
                 _ => Channels::Rgb,
             });
-            let mut mc = ModelConfig::bare(path.clone(), args.width, args.height, channels);
-            if let Some(engine) = args.engine {
-                mc.engine = engine.require_built().map_err(|e| anyhow::anyhow!("--engine: {e}"))?;
-            }
+            let overrides = Overrides { engine: args.engine, ..super::base_overrides()? };
+            let mc = ModelConfig::bare(path.clone(), args.width, args.height, channels, &overrides);
+            mc.engine.require_built().map_err(|e| anyhow::anyhow!("engine: {e}"))?;
             (path.display().to_string(), vec![mc])
         }
         None => {
-            let overrides = Overrides { engine: args.engine, ..Overrides::default() };
+            let overrides = Overrides { engine: args.engine, ..super::base_overrides()? };
             let config = Config::load(args.config.config.as_deref(), &overrides)?;
             let models = match &args.model {
                 Some(name) => vec![config.named(name)?.clone()],
@@ -159,9 +158,8 @@ fn write_expected(mc: &ModelConfig) -> anyhow::Result<()> {
     let Source::File(dir) = &st.samples else {
         anyhow::bail!("model {:?}: the built-in samples are read-only; use a config file", mc.name);
     };
-    let model = load::load(mc)?;
-    let pipeline = Pipeline::new(mc.preprocess.clone(), &model.contract, u64::MAX);
-    let expected = selftest::expectations(&model, &pipeline, &selftest::Samples::images_only(st)?)?;
+    let loaded = Loaded::load(mc, &LoadOptions::single())?;
+    let expected = selftest::expectations(&loaded.model, &loaded.pipeline, &selftest::Samples::images_only(st)?)?;
     let path = dir.join("expected.json");
     std::fs::write(&path, serde_json::to_string_pretty(&expected)? + "\n")
         .with_context(|| format!("cannot write {}", path.display()))?;
@@ -170,20 +168,21 @@ fn write_expected(mc: &ModelConfig) -> anyhow::Result<()> {
 }
 
 fn check_one(mc: &ModelConfig) -> ModelCheck {
-    match load::load_with_report(mc) {
-        Ok((model, report)) => {
-            let selftest = mc.selftest.as_ref().map(|st| {
-                let pipeline = Pipeline::new(mc.preprocess.clone(), &model.contract, u64::MAX);
-                match selftest::Samples::read(st) {
-                    Ok(samples) => selftest::run(&model, &pipeline, &samples, st.tolerance),
-                    Err(e) => selftest::Outcome { samples: 0, failures: vec![format!("{e:#}")] },
-                }
-            });
+    match Loaded::load(mc, &LoadOptions { report: true, ..LoadOptions::single() }) {
+        Ok(mut loaded) => {
+            let selftest = loaded
+                .selftest()
+                .unwrap_or_else(|e| Some(selftest::Outcome { samples: 0, failures: vec![format!("{e:#}")] }));
+            let Some(report) = loaded.report.take() else {
+                let error = Some("internal: the layer report was not built".to_string());
+                return ModelCheck { name: mc.name.clone(), would_serve: false, error, details: None };
+            };
+            let model = &loaded.model;
             let passed = selftest.as_ref().is_none_or(selftest::Outcome::passed);
             let cap = mc.batching.batch_cap;
-            let single_ms = time_runs(&model, 1, 15).map(ms);
-            let pass_ms_per_image = time_runs(&model, cap, 5).map(|d| ms(d) / cap as f64);
-            let stacked_ms_per_image = match load::time_stacked(mc, &model, cap) {
+            let single_ms = time_runs(model, 1, 15).map(ms);
+            let pass_ms_per_image = time_runs(model, cap, 5).map(|d| ms(d) / cap as f64);
+            let stacked_ms_per_image = match load::time_stacked(&mc.spec(), model, cap) {
                 Ok(d) => d.map(ms),
                 Err(e) => {
                     tracing::warn!(model = %mc.name, cause = %format!("{e:#}"), "cannot time a stacked pass");
@@ -202,7 +201,7 @@ fn check_one(mc: &ModelConfig) -> ModelCheck {
                     stacking: model.stacking.clone(),
                     labels: model.labels.clone(),
                     contract: model.contract.clone(),
-                    preprocess: Pipeline::new(mc.preprocess.clone(), &model.contract, u64::MAX).config().clone(),
+                    preprocess: loaded.pipeline.config().clone(),
                     report,
                     load_ms: ms(model.load_time),
                     single_ms,
@@ -219,9 +218,7 @@ fn check_one(mc: &ModelConfig) -> ModelCheck {
     }
 }
 
-fn ms(d: Duration) -> f64 {
-    d.as_secs_f64() * 1e3
-}
+use crate::millis as ms;
 
 /// Median over `repeats` of running a pass of `images` images as a lane runs it (stacked or
 /// image by image, as the engine says), after the warm-up `load` already did.
@@ -286,11 +283,19 @@ pub fn render(c: &ModelCheck) -> String {
             writeln!(s, "\nmodel {:?}: WOULD NOT SERVE\n  {}", c.name, c.error.as_deref().unwrap_or("unknown error"));
         return s;
     };
-    let k = &d.contract;
     let verdict = if c.would_serve { "ok, would serve" } else { "WOULD NOT SERVE (self-test failed)" };
     let _ = writeln!(s, "\nmodel {:?}: {verdict}", c.name);
     let _ = writeln!(s, "  file        {}", d.file);
     let _ = writeln!(s, "  version     {} (SHA-256 prefix)", d.version);
+    render_contract(&mut s, d);
+    render_layers(&mut s, &d.report);
+    render_runs(&mut s, d);
+    s
+}
+
+/// Input, output, labels and preprocessing.
+fn render_contract(s: &mut String, d: &Details) {
+    let k = &d.contract;
     let batch = match &k.batch {
         BatchAxis::Dynamic(sym) => format!("dynamic ({sym})"),
         BatchAxis::Fixed(n) => format!("fixed at {n}"),
@@ -324,8 +329,10 @@ pub fn render(c: &ModelCheck) -> String {
     );
     let _ = writeln!(s, "  labels      {}", d.labels.join(", "));
     let _ = writeln!(s, "  preprocess  {}", preprocess_summary(&d.preprocess, k));
+}
 
-    let r = &d.report;
+/// The layer table and totals.
+fn render_layers(s: &mut String, r: &Report) {
     let _ = writeln!(
         s,
         "\n  {:>3}  {:<18} {:<20} {:<18} {:>11} {:>13} {:>5} {:>6}",
@@ -358,8 +365,12 @@ pub fn render(c: &ModelCheck) -> String {
         100.0 * r.fc_share(),
         r.model_bytes as f64 / 1e6
     );
+}
+
+/// Engine, load, self-test and inference times.
+fn render_runs(s: &mut String, d: &Details) {
     let how = if d.stacked_passes { "passes stacked into one tensor" } else { "passes run image by image" };
-    let why = match (d.stacking.decided_by, d.stacking.single_ms_per_image, d.stacking.stacked_ms_per_image) {
+    let why = match (d.stacking.decided_by.as_ref(), d.stacking.single_ms_per_image, d.stacking.stacked_ms_per_image) {
         ("calibrated", Some(one), Some(stacked)) => {
             format!("calibrated at load: {stacked:.3} ms per image stacked, {one:.3} one by one")
         }
@@ -404,7 +415,6 @@ pub fn render(c: &ModelCheck) -> String {
             stacked / pass
         );
     }
-    s
 }
 
 #[cfg(test)]

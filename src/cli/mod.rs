@@ -7,6 +7,28 @@ pub mod serve;
 
 use std::path::PathBuf;
 
+use crate::config::Overrides;
+use crate::model::EngineKind;
+
+/// Environment variable naming the engine of models without an `engine` key.
+pub const ENGINE_ENV: &str = "LINESIDE_ENGINE";
+/// Environment variable naming the onnxruntime library when the config names none.
+pub const ORT_LIBRARY_ENV: &str = "ORT_DYLIB_PATH";
+
+/// The overrides every subcommand starts from: what the environment says, read here once
+/// (`LINESIDE_ENGINE`, `ORT_DYLIB_PATH`); no other module reads the environment.
+///
+/// # Errors
+/// `LINESIDE_ENGINE` names no engine (the message lists the allowed ones).
+pub fn base_overrides() -> anyhow::Result<Overrides> {
+    let default_engine = match std::env::var(ENGINE_ENV) {
+        Ok(v) if !v.is_empty() => v.parse::<EngineKind>().map_err(|e| anyhow::anyhow!("{ENGINE_ENV}={v}: {e}"))?,
+        _ => EngineKind::Tract,
+    };
+    let onnxruntime_library = std::env::var_os(ORT_LIBRARY_ENV).filter(|v| !v.is_empty()).map(PathBuf::from);
+    Ok(Overrides { default_engine, onnxruntime_library, ..Overrides::default() })
+}
+
 /// lineside: serve a small ONNX image classifier on this CPU box.
 #[derive(Debug, clap::Parser)]
 #[command(name = "lineside", version, about, long_about = None)]

@@ -10,9 +10,10 @@ use std::path::PathBuf;
 use anyhow::Context as _;
 
 use super::{ConfigArg, Outcome};
-use crate::config::{Config, Overrides};
-use crate::model::{InputType, load};
-use crate::preprocess::{Pipeline, npy};
+use crate::config::Config;
+use crate::model::InputType;
+use crate::preprocess::npy;
+use crate::served::{LoadOptions, Loaded};
 
 /// Arguments of `lineside preprocess`.
 #[derive(Debug, clap::Args)]
@@ -41,7 +42,7 @@ pub struct PreprocessArgs {
 /// Config errors, an unknown model, a model whose contract fails, an unreadable or
 /// undecodable image (the message says what was wrong), an unwritable output.
 pub fn run(args: PreprocessArgs) -> anyhow::Result<Outcome> {
-    let config = Config::load(args.config.config.as_deref(), &Overrides::default())?;
+    let config = Config::load(args.config.config.as_deref(), &super::base_overrides()?)?;
     let mc = match (&args.model, config.models.as_slice()) {
         (Some(name), _) => config.named(name)?,
         (None, [only]) => only,
@@ -50,8 +51,9 @@ pub fn run(args: PreprocessArgs) -> anyhow::Result<Outcome> {
             anyhow::bail!("{} serves {} models ({names:?}): choose one with --model", config.origin, names.len())
         }
     };
-    let contract = load::contract(mc).with_context(|| format!("model {:?}", mc.name))?;
-    let pipeline = Pipeline::new(mc.preprocess.clone(), &contract, config.server.max_pixels);
+    let opts = LoadOptions { max_pixels: config.server.max_pixels, ..LoadOptions::single() };
+    let loaded = Loaded::load(mc, &opts)?;
+    let (contract, pipeline) = (&loaded.model.contract, &loaded.pipeline);
     let bytes = std::fs::read(&args.image).with_context(|| format!("cannot read {}", args.image.display()))?;
     let prepared = pipeline.run_with_canvas(&bytes).with_context(|| format!("{}", args.image.display()))?;
 
@@ -79,8 +81,8 @@ pub fn run(args: PreprocessArgs) -> anyhow::Result<Outcome> {
         args.image.display(),
         args.out.display(),
         contract.layout,
-        prepared.decode.as_secs_f64() * 1e3,
-        prepared.preprocess.as_secs_f64() * 1e3,
+        crate::millis(prepared.decode),
+        crate::millis(prepared.preprocess),
     );
     Ok(Outcome::Ok)
 }

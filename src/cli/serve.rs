@@ -69,6 +69,7 @@ pub fn run(args: ServeArgs) -> anyhow::Result<Outcome> {
             batching: args.batching.overrides(),
             engine: args.engine,
             http_threads: args.http_threads,
+            ..super::base_overrides()?
         },
     )?;
     // One HTTP thread by default: on a small box the lanes own the cores, and every extra

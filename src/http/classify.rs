@@ -124,9 +124,7 @@ pub struct MultiAnswer {
     pub results: Vec<PartResult>,
 }
 
-fn ms(d: Duration) -> f64 {
-    (d.as_secs_f64() * 1e6).round() / 1e3
-}
+use crate::millis as ms;
 
 /// Parse `?top=`: default 3, `all`, or a positive integer clamped to `labels`.
 pub fn parse_top(raw: Option<&str>, labels: usize) -> Result<usize, ApiError> {

@@ -120,5 +120,12 @@ pub async fn readyz(State(state): State<AppState>) -> Result<Json<Accepting>, Ap
 
 /// The registry in the Prometheus text format (version 0.0.4).
 pub async fn metrics(State(state): State<AppState>) -> impl IntoResponse {
+    // The backlog gauges are read from the backlogs at scrape time: set by the senders and
+    // the lanes, they raced (a sender's late write could leave a drained backlog at 1).
+    if let Ok(served) = state.readiness.borrow().served(true) {
+        for m in served.values() {
+            m.metrics.backlog_depth.set(m.batcher.depth().0 as i64);
+        }
+    }
     ([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], state.metrics.render())
 }

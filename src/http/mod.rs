@@ -91,7 +91,7 @@ async fn request_id(
         resp.headers_mut().insert(REQUEST_ID, v);
     }
     let status = resp.status().as_u16();
-    let ms = (started.elapsed().as_secs_f64() * 1e6).round() / 1e3;
+    let ms = crate::millis(started.elapsed());
     if matches!(path.as_str(), "/healthz" | "/readyz" | "/metrics") {
         tracing::debug!(request_id = %id, %method, %path, status, ms, "request");
     } else {

@@ -1,58 +1,155 @@
 //! `GET /models` and `GET /models/{model}`: each served model's contract, as an operator or
 //! a client library needs it: input shape, layout and type, preprocessing, labels, batching,
 //! engine, version, load time and self-test result.
+//!
+//! The answer is one typed [`ModelInfo`], which `lineside bench` reads back from a server
+//! with the same type.
 
 use axum::Json;
 use axum::extract::{Path, State};
-use serde_json::{Value, json};
+use serde::{Deserialize, Serialize};
 
 use super::error::ApiError;
 use super::state::{AppState, ServedModel, find};
+use crate::model::{InputType, Layout, ScoreTransform, Stacking};
+use crate::preprocess::PreprocessConfig;
+use crate::selftest::Outcome;
 
-fn describe(m: &ServedModel) -> Value {
-    let c = &m.model.contract;
-    let b = &m.batching;
-    json!({
-        "name": m.model.name,
-        "version": m.model.version,
-        "engine": m.model.engine().name(),
-        "stacked_passes": m.model.stacks(),
-        "stacking": m.model.stacking,
-        "file": m.model.file,
-        "load_ms": (m.model.load_time.as_secs_f64() * 1e3 * 1e3).round() / 1e3,
-        "input": {
-            "name": c.input_name,
-            "shape": c.input_shape,
-            "served_shape": c.input_shape(1),
-            "layout": c.layout,
-            "type": c.input_type,
-            "channels": c.channels,
-            "width": c.width,
-            "height": c.height,
-        },
-        "output": { "name": c.output_name, "shape": c.output_shape, "scores": c.scores },
-        "labels": m.model.labels,
-        "min_score": m.min_score,
-        "preprocess": m.pipeline.config(),
-        "batching": {
-            "batch_cap": b.batch_cap,
-            "gather_us": b.gather.as_micros() as u64,
-            "backlog": b.backlog,
-            "lanes": m.lanes,
-            "lane_threads": b.lane_threads,
-        },
-        "selftest": m.selftest,
-    })
+/// One served model, as `/models/{model}` answers.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelInfo {
+    /// The name in URLs.
+    pub name: String,
+    /// First 12 hex digits of the ONNX file's SHA-256.
+    pub version: String,
+    /// `tract` or `onnxruntime`.
+    pub engine: String,
+    /// Whether passes run as one stacked tensor.
+    pub stacked_passes: bool,
+    /// How that was decided.
+    pub stacking: Stacking,
+    /// The ONNX file.
+    pub file: String,
+    /// Time to load, check, plan and warm, in ms.
+    pub load_ms: f64,
+    /// The image input.
+    pub input: InputInfo,
+    /// The scores output.
+    pub output: OutputInfo,
+    /// Class names, in output order.
+    pub labels: Vec<String>,
+    /// `min_score`, if set.
+    pub min_score: Option<f32>,
+    /// The preprocessing in force (resolved against the model).
+    pub preprocess: PreprocessConfig,
+    /// Batching, with the lanes running.
+    pub batching: BatchingInfo,
+    /// The self-test's result at load.
+    pub selftest: Option<Outcome>,
+}
+
+/// The image input of [`ModelInfo`].
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct InputInfo {
+    /// Input name in the graph.
+    pub name: String,
+    /// Shape as the model declares it (symbols by name).
+    pub shape: Vec<String>,
+    /// The shape one image is served at.
+    pub served_shape: [usize; 4],
+    /// NCHW or NHWC.
+    pub layout: Layout,
+    /// Element type.
+    #[serde(rename = "type")]
+    pub input_type: InputType,
+    /// Channels (1 or 3).
+    pub channels: usize,
+    /// Width served.
+    pub width: u32,
+    /// Height served.
+    pub height: u32,
+}
+
+/// The scores output of [`ModelInfo`].
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct OutputInfo {
+    /// Output name in the graph.
+    pub name: String,
+    /// Shape as the model declares it.
+    pub shape: Vec<String>,
+    /// How outputs become scores.
+    pub scores: ScoreTransform,
+}
+
+/// The batching of [`ModelInfo`].
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct BatchingInfo {
+    /// Most requests one pass takes.
+    pub batch_cap: usize,
+    /// Gathering window, in microseconds.
+    pub gather_us: u64,
+    /// Requests waiting before 503 `overloaded`.
+    pub backlog: usize,
+    /// Lanes running (after `lanes = "auto"` is resolved).
+    pub lanes: usize,
+    /// Threads per lane.
+    pub lane_threads: usize,
+}
+
+impl ModelInfo {
+    /// Describe a served model.
+    pub fn of(m: &ServedModel) -> ModelInfo {
+        let c = &m.model.contract;
+        let b = &m.batching;
+        ModelInfo {
+            name: m.model.name.clone(),
+            version: m.model.version.clone(),
+            engine: m.model.engine().name().into(),
+            stacked_passes: m.model.stacks(),
+            stacking: m.model.stacking.clone(),
+            file: m.model.file.clone(),
+            load_ms: crate::millis(m.model.load_time),
+            input: InputInfo {
+                name: c.input_name.clone(),
+                shape: c.input_shape.clone(),
+                served_shape: c.input_shape(1),
+                layout: c.layout,
+                input_type: c.input_type,
+                channels: c.channels,
+                width: c.width,
+                height: c.height,
+            },
+            output: OutputInfo { name: c.output_name.clone(), shape: c.output_shape.clone(), scores: c.scores },
+            labels: m.model.labels.clone(),
+            min_score: m.min_score,
+            preprocess: m.pipeline.config().clone(),
+            batching: BatchingInfo {
+                batch_cap: b.batch_cap,
+                gather_us: b.gather.as_micros() as u64,
+                backlog: b.backlog,
+                lanes: m.lanes,
+                lane_threads: b.lane_threads,
+            },
+            selftest: m.selftest.clone(),
+        }
+    }
+}
+
+/// The answer of `GET /models`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelList {
+    /// Every served model, by name.
+    pub models: Vec<ModelInfo>,
 }
 
 /// Every served model.
-pub async fn list(State(state): State<AppState>) -> Result<Json<Value>, ApiError> {
+pub async fn list(State(state): State<AppState>) -> Result<Json<ModelList>, ApiError> {
     let s = state.readiness.borrow().served(true)?;
-    Ok(Json(json!({ "models": s.values().map(describe).collect::<Vec<_>>() })))
+    Ok(Json(ModelList { models: s.values().map(ModelInfo::of).collect() }))
 }
 
 /// One model.
-pub async fn one(State(state): State<AppState>, Path(name): Path<String>) -> Result<Json<Value>, ApiError> {
+pub async fn one(State(state): State<AppState>, Path(name): Path<String>) -> Result<Json<ModelInfo>, ApiError> {
     let s = state.readiness.borrow().served(true)?;
-    Ok(Json(describe(find(&s, &name)?)))
+    Ok(Json(ModelInfo::of(find(&s, &name)?)))
 }

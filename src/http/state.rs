@@ -12,31 +12,9 @@ use std::time::Duration;
 use tokio::sync::watch;
 
 use super::error::{ApiError, ErrorKind};
-use crate::batch::Batcher;
-use crate::metrics::{Metrics, ModelMetrics};
-use crate::model::Model;
-use crate::preprocess::Pipeline;
+use crate::metrics::Metrics;
 use crate::preprocess::pool::CpuPool;
-
-/// One model as the handlers see it.
-pub struct ServedModel {
-    /// The loaded model (contract, labels, version).
-    pub model: Arc<Model>,
-    /// Its preprocessing.
-    pub pipeline: Arc<Pipeline>,
-    /// Its backlog.
-    pub batcher: Batcher,
-    /// Its metric handles.
-    pub metrics: ModelMetrics,
-    /// `[[models]] min_score`: answers below it are marked not confident.
-    pub min_score: Option<f32>,
-    /// `[models.batching]` as configured.
-    pub batching: crate::config::BatchingConfig,
-    /// Lanes running (after `lanes = "auto"` is resolved).
-    pub lanes: usize,
-    /// The self-test's result at load, when the model has one.
-    pub selftest: Option<crate::selftest::Outcome>,
-}
+pub use crate::served::ServedModel;
 
 /// Every served model, by name.
 pub type Served = BTreeMap<String, ServedModel>;

@@ -9,7 +9,56 @@
 use serde::Serialize;
 use tract_onnx::prelude::*;
 
-use crate::config::{Layout, PreprocessConfig, ScoresMode};
+use serde::Deserialize;
+
+/// Memory layout of the input tensor.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Layout {
+    /// Batch, channels, height, width.
+    Nchw,
+    /// Batch, height, width, channels.
+    Nhwc,
+}
+
+impl std::fmt::Display for Layout {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(match self {
+            Layout::Nchw => "nchw",
+            Layout::Nhwc => "nhwc",
+        })
+    }
+}
+
+/// How a model's outputs become scores (`[[models]] scores`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum ScoresMode {
+    /// Use the outputs as they are when the graph ends in Softmax or Sigmoid, else softmax them.
+    Auto,
+    /// Apply softmax.
+    Softmax,
+    /// Apply the sigmoid to each output.
+    Sigmoid,
+    /// Use the outputs as they are.
+    None,
+}
+
+/// What the config asks of a model's input and output, checked against what the model
+/// declares (each `None`: whatever the model says).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Expect {
+    /// `preprocess.layout`.
+    pub layout: Option<Layout>,
+    /// The channel count the preprocessing gives, when the config fixes it.
+    pub channels: Option<usize>,
+    /// `preprocess.width`.
+    pub width: Option<u32>,
+    /// `preprocess.height`.
+    pub height: Option<u32>,
+    /// `scores`.
+    pub scores: ScoresMode,
+}
 
 /// What the model's batch axis allows.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize)]
@@ -22,7 +71,7 @@ pub enum BatchAxis {
 }
 
 /// Element type of the image input.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum InputType {
     /// Normalised floats: x = (pixel / divisor - mean) / std.
@@ -32,7 +81,7 @@ pub enum InputType {
 }
 
 /// How raw outputs become the answer's scores.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum ScoreTransform {
     /// Used as they are: the graph ends in Softmax or Sigmoid, or the config says `scores = "none"`.
@@ -108,13 +157,7 @@ fn fixed(d: &TDim) -> Option<usize> {
 ///
 /// # Errors
 /// A message naming `file` and the offending input or output, saying what was expected.
-pub fn contract(
-    model: &TypedModel,
-    file: &str,
-    pre: &PreprocessConfig,
-    labels: Option<usize>,
-    mode: ScoresMode,
-) -> Result<Contract, String> {
+pub fn contract(model: &TypedModel, file: &str, expect: &Expect, labels: Option<usize>) -> Result<Contract, String> {
     if model.inputs.len() != 1 {
         let names: Vec<&str> = model.inputs.iter().map(|o| model.node(o.node).name.as_str()).collect();
         return Err(format!(
@@ -128,10 +171,42 @@ pub fn contract(
             model.outputs.len()
         ));
     }
-    let input_name = model.node(model.inputs[0].node).name.clone();
-    let fact = model.input_fact(0).map_err(|e| format!("{file}: input {input_name:?}: {e}"))?;
+    let input = input_side(model, file, expect)?;
+    let output = output_side(model, file, expect.scores, labels)?;
+    Ok(Contract {
+        input_name: input.name,
+        input_shape: input.shape,
+        layout: input.layout,
+        channels: input.channels,
+        height: input.height,
+        width: input.width,
+        input_type: input.input_type,
+        batch: input.batch,
+        output_name: output.name,
+        output_shape: output.shape,
+        classes: output.classes,
+        scores: output.scores,
+        ends_in: output.ends_in,
+    })
+}
+
+/// The input half of a contract.
+struct InputSide {
+    name: String,
+    shape: Vec<String>,
+    layout: Layout,
+    channels: usize,
+    height: u32,
+    width: u32,
+    input_type: InputType,
+    batch: BatchAxis,
+}
+
+fn input_side(model: &TypedModel, file: &str, expect: &Expect) -> Result<InputSide, String> {
+    let name = model.node(model.inputs[0].node).name.clone();
+    let fact = model.input_fact(0).map_err(|e| format!("{file}: input {name:?}: {e}"))?;
     let shape = dims(&fact.shape);
-    let at = |what: &str| format!("{file}: input {input_name:?} (shape [{}])", shape.join(", ")) + what;
+    let at = |what: &str| format!("{file}: input {name:?} (shape [{}])", shape.join(", ")) + what;
     let input_type = if fact.datum_type == f32::datum_type() {
         InputType::Float32
     } else if fact.datum_type == u8::datum_type() {
@@ -143,81 +218,19 @@ pub fn contract(
         return Err(at(&format!(": rank {}, expected 4 ([N, C, H, W] or [N, H, W, C])", fact.rank())));
     }
     let d: Vec<&TDim> = fact.shape.iter().collect();
-    let is_chan = |x: &TDim| matches!(fixed(x), Some(1 | 3));
-    let detected = match (is_chan(d[1]), is_chan(d[3])) {
-        (true, false) => Some(Layout::Nchw),
-        (false, true) => Some(Layout::Nhwc),
-        (true, true) => None, // e.g. [N, 3, 3, 3]: ambiguous, the config decides
-        (false, false) => {
-            return Err(at(": no channel axis of size 1 or 3 at position 1 (NCHW) or 3 (NHWC); \
-                           lineside serves gray or colour image models"));
-        }
-    };
-    let layout = match (detected, pre.layout) {
-        (Some(found), Some(want)) if found != want => {
-            return Err(at(&format!(
-                ": the model is {found} but the config says layout = \"{want}\"; remove the key or set it to \"{found}\""
-            )));
-        }
-        (Some(found), _) => found,
-        (None, Some(want)) => want,
-        (None, None) => Layout::Nchw,
-    };
+    let layout = layout(&d, expect.layout).map_err(|e| at(&e))?;
     let (c, h, w) = match layout {
         Layout::Nchw => (d[1], d[2], d[3]),
         Layout::Nhwc => (d[3], d[1], d[2]),
     };
     let channels = fixed(c).unwrap_or(0);
-    if pre.channels_given && channels != pre.channels.count() {
+    if let Some(given) = expect.channels.filter(|&n| n != channels) {
         return Err(at(&format!(
-            ": takes {channels} channel(s) but preprocess.channels gives {}; use channels = {} (--channels for a bare file)",
-            pre.channels.count(),
+            ": takes {channels} channel(s) but preprocess.channels gives {given}; use channels = {} (--channels for a bare file)",
             if channels == 1 { "\"gray\"" } else { "\"rgb\" or \"bgr\"" }
         )));
     }
-    let mut size = [0u32; 2];
-    let mut missing = Vec::new();
-    for (i, (dim, want, key)) in [(h, pre.height, "height"), (w, pre.width, "width")].into_iter().enumerate() {
-        size[i] = match (fixed(dim), want) {
-            (Some(v), Some(want)) if v != want as usize => {
-                return Err(at(&format!(
-                    ": {key} is fixed at {v} but preprocess.{key} = {want}; set {key} = {v} or remove it"
-                )));
-            }
-            (Some(v), _) => u32::try_from(v).map_err(|_| at(&format!(": {key} {v} is too large")))?,
-            (None, Some(want)) => want,
-            (None, None) => {
-                missing.push(key);
-                0
-            }
-        };
-    }
-    if !missing.is_empty() {
-        let keys: Vec<String> = missing.iter().map(|k| format!("preprocess.{k}")).collect();
-        return Err(at(&format!(
-            ": {} dynamic in the model; set {} (--{} for a bare file)",
-            if missing.len() == 2 {
-                "height and width are"
-            } else if missing[0] == "height" {
-                "height is"
-            } else {
-                "width is"
-            },
-            keys.join(" and "),
-            missing.join(" and --")
-        )));
-    }
-    let [height, width] = size;
-    if pre.resize == crate::config::ResizeMode::Crop && height != width {
-        return Err(format!(
-            "{file}: input {width}x{height} (width x height) is not square, and preprocess.resize = \"crop\" \
-             (resize the short side, then crop the centre square) needs a square input; \
-             use resize = \"stretch\" or \"letterbox\""
-        ));
-    }
-    if let Some(s) = pre.short_side.filter(|&s| s < width) {
-        return Err(format!("{file}: {}", crate::config::short_side_below_crop(s, width)));
-    }
+    let [height, width] = size(h, w, expect).map_err(|e| at(&e))?;
     let batch = match fixed(d[0]) {
         Some(1) => BatchAxis::Fixed(1),
         Some(n) => {
@@ -227,12 +240,83 @@ pub fn contract(
         }
         None => BatchAxis::Dynamic(d[0].to_string()),
     };
+    Ok(InputSide { name, shape, layout, channels, height, width, input_type, batch })
+}
 
+/// The layout the input's dimensions show, or the config's where they do not decide it.
+fn layout(d: &[&TDim], want: Option<Layout>) -> Result<Layout, String> {
+    let is_chan = |x: &TDim| matches!(fixed(x), Some(1 | 3));
+    let detected = match (is_chan(d[1]), is_chan(d[3])) {
+        (true, false) => Some(Layout::Nchw),
+        (false, true) => Some(Layout::Nhwc),
+        (true, true) => None, // e.g. [N, 3, 3, 3]: ambiguous, the config decides
+        (false, false) => {
+            return Err(": no channel axis of size 1 or 3 at position 1 (NCHW) or 3 (NHWC); \
+                        lineside serves gray or colour image models"
+                .into());
+        }
+    };
+    match (detected, want) {
+        (Some(found), Some(want)) if found != want => Err(format!(
+            ": the model is {found} but the config says layout = \"{want}\"; remove the key or set it to \"{found}\""
+        )),
+        (Some(found), _) => Ok(found),
+        (None, Some(want)) => Ok(want),
+        (None, None) => Ok(Layout::Nchw),
+    }
+}
+
+/// The served [height, width]: the model's where it fixes them (the config must agree), else
+/// the config's.
+fn size(h: &TDim, w: &TDim, expect: &Expect) -> Result<[u32; 2], String> {
+    let mut size = [0u32; 2];
+    let mut missing = Vec::new();
+    for (i, (dim, want, key)) in [(h, expect.height, "height"), (w, expect.width, "width")].into_iter().enumerate() {
+        size[i] = match (fixed(dim), want) {
+            (Some(v), Some(want)) if v != want as usize => {
+                return Err(format!(
+                    ": {key} is fixed at {v} but preprocess.{key} = {want}; set {key} = {v} or remove it"
+                ));
+            }
+            (Some(v), _) => u32::try_from(v).map_err(|_| format!(": {key} {v} is too large"))?,
+            (None, Some(want)) => want,
+            (None, None) => {
+                missing.push(key);
+                0
+            }
+        };
+    }
+    if missing.is_empty() {
+        return Ok(size);
+    }
+    let keys: Vec<String> = missing.iter().map(|k| format!("preprocess.{k}")).collect();
+    let what = match missing.as_slice() {
+        [_, _] => "height and width are",
+        ["height"] => "height is",
+        _ => "width is",
+    };
+    Err(format!(
+        ": {what} dynamic in the model; set {} (--{} for a bare file)",
+        keys.join(" and "),
+        missing.join(" and --")
+    ))
+}
+
+/// The output half of a contract.
+struct OutputSide {
+    name: String,
+    shape: Vec<String>,
+    classes: usize,
+    scores: ScoreTransform,
+    ends_in: Option<String>,
+}
+
+fn output_side(model: &TypedModel, file: &str, mode: ScoresMode, labels: Option<usize>) -> Result<OutputSide, String> {
     let out_outlet = model.outputs[0];
-    let output_name = model.outlet_label(out_outlet).unwrap_or(&model.node(out_outlet.node).name).to_string();
-    let ofact = model.outlet_fact(out_outlet).map_err(|e| format!("{file}: output {output_name:?}: {e}"))?;
-    let output_shape = dims(&ofact.shape);
-    let oat = |what: &str| format!("{file}: output {output_name:?} (shape [{}])", output_shape.join(", ")) + what;
+    let name = model.outlet_label(out_outlet).unwrap_or(&model.node(out_outlet.node).name).to_string();
+    let ofact = model.outlet_fact(out_outlet).map_err(|e| format!("{file}: output {name:?}: {e}"))?;
+    let shape = dims(&ofact.shape);
+    let oat = |what: &str| format!("{file}: output {name:?} (shape [{}])", shape.join(", ")) + what;
     let od: Vec<&TDim> = ofact.shape.iter().collect();
     let trailing_ones = od.len() == 4 && fixed(od[2]) == Some(1) && fixed(od[3]) == Some(1);
     if !(od.len() == 2 || trailing_ones) {
@@ -249,20 +333,5 @@ pub fn contract(
         (ScoresMode::Auto, None) | (ScoresMode::Softmax, _) => ScoreTransform::Softmax,
         (ScoresMode::Sigmoid, _) => ScoreTransform::Sigmoid,
     };
-
-    Ok(Contract {
-        input_name,
-        input_shape: shape,
-        layout,
-        channels,
-        height,
-        width,
-        input_type,
-        batch,
-        output_name,
-        output_shape,
-        classes,
-        scores,
-        ends_in,
-    })
+    Ok(OutputSide { name, shape, classes, scores, ends_in })
 }

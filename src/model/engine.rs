@@ -96,6 +96,10 @@ pub trait Planned: Send + Sync {
     fn state(&self, threads: usize) -> Result<Box<dyn EngineState>, RunError>;
 }
 
+/// Wraps a lane's engine state in another (tests put a fault-injecting engine around the
+/// real one; nothing in production sets one).
+pub type StateWrap = std::sync::Arc<dyn Fn(Box<dyn EngineState>) -> Box<dyn EngineState> + Send + Sync>;
+
 /// One lane's engine state.
 pub trait EngineState: Send {
     /// Run `images` images stacked along the batch axis (`input` holds them back to back, in

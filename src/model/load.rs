@@ -16,8 +16,50 @@ use super::engine::{EngineKind, Planned};
 use super::report::{self, Report};
 use super::tract::{TractPlan, input_fact};
 use super::{Model, Stacking, check, labels};
-use crate::config::ModelConfig;
-use crate::config::StackMode;
+use crate::source::Source;
+
+/// What loading a model needs to know: its files, what the config expects of it, its engine
+/// and how its passes may run. The config builds one per model (`ModelConfig::spec`).
+#[derive(Debug, Clone)]
+pub struct Spec {
+    /// Name from the config (the URL segment).
+    pub name: String,
+    /// The ONNX file.
+    pub onnx: Source,
+    /// The labels file (`None`: classes named by index, `lineside check model.onnx`).
+    pub labels: Option<Source>,
+    /// What the config asks of the model's input and output.
+    pub expect: check::Expect,
+    /// The engine that runs it.
+    pub engine: EngineKind,
+    /// Where the onnxruntime library comes from, if configured.
+    pub onnxruntime_library: Option<Library>,
+    /// `[models.batching] stack`.
+    pub stack: StackMode,
+    /// `[models.batching] batch_cap`: the pass size stacking is calibrated at.
+    pub batch_cap: usize,
+}
+
+/// The onnxruntime shared library to load, and where its path came from (for messages).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Library {
+    /// The file.
+    pub path: std::path::PathBuf,
+    /// `"[onnxruntime] library"` or `"ORT_DYLIB_PATH"`.
+    pub from: &'static str,
+}
+
+/// `[models.batching] stack`: whether a formed pass runs as one stacked tensor.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum StackMode {
+    /// Decided at load: never on an engine or model that cannot stack, else by calibration.
+    Auto,
+    /// Always stack (`stack = true`); refused where the engine or model cannot.
+    Always,
+    /// Never stack (`stack = false`).
+    Never,
+}
 
 /// Load, check, plan and warm one model.
 ///
@@ -25,7 +67,7 @@ use crate::config::StackMode;
 /// Unreadable files, a file that is not ONNX, an operator tract cannot run, a contract
 /// lineside cannot serve, or a labels file that does not match: each message names the
 /// file and what to change.
-pub fn load(cfg: &ModelConfig) -> anyhow::Result<Model> {
+pub fn load(cfg: &Spec) -> anyhow::Result<Model> {
     load_inner(cfg, false).map(|(m, _)| m)
 }
 
@@ -33,7 +75,7 @@ pub fn load(cfg: &ModelConfig) -> anyhow::Result<Model> {
 ///
 /// # Errors
 /// As [`load`].
-pub fn load_with_report(cfg: &ModelConfig) -> anyhow::Result<(Model, Report)> {
+pub fn load_with_report(cfg: &Spec) -> anyhow::Result<(Model, Report)> {
     let (model, report) = load_inner(cfg, true)?;
     Ok((model, report.context("internal: the layer report was not built")?))
 }
@@ -49,7 +91,7 @@ struct Opened {
     contract: super::Contract,
 }
 
-fn open(cfg: &ModelConfig) -> anyhow::Result<Opened> {
+fn open(cfg: &Spec) -> anyhow::Result<Opened> {
     let file = cfg.onnx.display();
     let bytes = cfg.onnx.read()?;
     let version = sha12(&bytes);
@@ -67,8 +109,8 @@ fn open(cfg: &ModelConfig) -> anyhow::Result<Opened> {
         .into_typed()
         .and_then(|m| m.into_decluttered())
         .with_context(|| format!("{file}: tract cannot type this graph (an unsupported operator or shape)"))?;
-    let contract = check::contract(&typed, &file, &cfg.preprocess, labels.as_ref().map(Vec::len), cfg.scores)
-        .map_err(anyhow::Error::msg)?;
+    let contract =
+        check::contract(&typed, &file, &cfg.expect, labels.as_ref().map(Vec::len)).map_err(anyhow::Error::msg)?;
     Ok(Opened { file, version, bytes, labels, proto, inference, contract })
 }
 
@@ -76,11 +118,11 @@ fn open(cfg: &ModelConfig) -> anyhow::Result<Opened> {
 ///
 /// # Errors
 /// As [`load`], except planning and warm-up errors.
-pub fn contract(cfg: &ModelConfig) -> anyhow::Result<super::Contract> {
+pub fn contract(cfg: &Spec) -> anyhow::Result<super::Contract> {
     open(cfg).map(|o| o.contract)
 }
 
-fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Option<Report>)> {
+fn load_inner(cfg: &Spec, want_report: bool) -> anyhow::Result<(Model, Option<Report>)> {
     let start = Instant::now();
     let Opened { file, version, bytes, labels, proto, inference, contract } = open(cfg)?;
     // Without a labels file (`lineside check model.onnx`), classes are named by index.
@@ -118,9 +160,9 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
         .runner()
         .and_then(|mut r| r.run(&zeros))
         .with_context(|| format!("{}: warm-up inference failed", model.file))?;
-    model.stacking = decide_stacking(&model, cfg.batching.stack, cfg.batching.batch_cap)?;
+    model.stacking = decide_stacking(&model, cfg.stack, cfg.batch_cap)?;
     model.load_time = start.elapsed();
-    if model.contract.batch == super::BatchAxis::Fixed(1) && cfg.batching.batch_cap > 1 {
+    if model.contract.batch == super::BatchAxis::Fixed(1) && cfg.batch_cap > 1 {
         // Passes run as consecutive batch-1 runs, so gathering still works; only stacking
         // (which tract does not use here) would need a dynamic batch axis.
         tracing::warn!(
@@ -138,7 +180,7 @@ fn load_inner(cfg: &ModelConfig, want_report: bool) -> anyhow::Result<(Model, Op
 ///
 /// # Errors
 /// When tract cannot plan or run the stacked shape.
-pub fn time_stacked(cfg: &ModelConfig, model: &Model, batch: usize) -> anyhow::Result<Option<std::time::Duration>> {
+pub fn time_stacked(cfg: &Spec, model: &Model, batch: usize) -> anyhow::Result<Option<std::time::Duration>> {
     if model.contract.batch == super::BatchAxis::Fixed(1) || batch < 2 || model.engine() != EngineKind::Tract {
         return Ok(None);
     }
@@ -155,6 +197,17 @@ pub fn time_stacked(cfg: &ModelConfig, model: &Model, batch: usize) -> anyhow::R
 /// its first answer, so it must pay for itself). The two ways alternate after a warm-up of
 /// each, and each keeps its best round (2 to 5 rounds, about 1.5 s at most); one thread.
 fn decide_stacking(model: &Model, mode: StackMode, cap: usize) -> anyhow::Result<Stacking> {
+    decide_stacking_inner(model, mode, cap)
+}
+
+/// The calibration's rule: a stacked pass pays for the delay of its first answer when it
+/// takes at most 0.9x the time per image of single runs (a margin against the noise of a
+/// short measurement: common practice, not a measured constant).
+pub fn stacking_pays(single_ms_per_image: f64, stacked_ms_per_image: f64) -> bool {
+    stacked_ms_per_image <= 0.9 * single_ms_per_image
+}
+
+fn decide_stacking_inner(model: &Model, mode: StackMode, cap: usize) -> anyhow::Result<Stacking> {
     if !model.plan.can_stack() {
         anyhow::ensure!(
             mode != StackMode::Always,
@@ -204,8 +257,8 @@ fn decide_stacking(model: &Model, mode: StackMode, cap: usize) -> anyhow::Result
         stacked = stacked.min(time(true)?);
     }
     let decision = Stacking {
-        stacked: stacked <= 0.9 * single,
-        decided_by: "calibrated",
+        stacked: stacking_pays(single, stacked),
+        decided_by: "calibrated".into(),
         single_ms_per_image: Some(single),
         stacked_ms_per_image: Some(stacked),
     };
@@ -221,17 +274,17 @@ fn decide_stacking(model: &Model, mode: StackMode, cap: usize) -> anyhow::Result
 
 #[cfg(feature = "onnxruntime")]
 fn onnxruntime_plan(
-    cfg: &ModelConfig,
+    cfg: &Spec,
     bytes: &[u8],
     contract: &super::Contract,
     file: &str,
 ) -> anyhow::Result<Arc<dyn Planned>> {
-    Ok(Arc::new(super::onnxruntime::OrtPlan::build(bytes, contract, cfg.onnxruntime_library.as_deref(), file)?))
+    Ok(Arc::new(super::onnxruntime::OrtPlan::build(bytes, contract, cfg.onnxruntime_library.as_ref(), file)?))
 }
 
 #[cfg(not(feature = "onnxruntime"))]
 fn onnxruntime_plan(
-    cfg: &ModelConfig,
+    cfg: &Spec,
     _bytes: &[u8],
     _contract: &super::Contract,
     file: &str,
@@ -252,6 +305,14 @@ pub fn sha12(bytes: &[u8]) -> String {
 #[cfg(test)]
 mod tests {
     use super::sha12;
+
+    #[test]
+    fn stacking_pays_only_at_a_tenth_faster_per_image() {
+        assert!(super::stacking_pays(20.0, 18.0));
+        assert!(super::stacking_pays(20.0, 10.0));
+        assert!(!super::stacking_pays(20.0, 18.1));
+        assert!(!super::stacking_pays(20.0, 20.0));
+    }
 
     #[test]
     fn sha12_is_the_sha256_prefix() {

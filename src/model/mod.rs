@@ -20,8 +20,9 @@ pub mod tract;
 use std::sync::Arc;
 use std::time::Duration;
 
-pub use check::{BatchAxis, Contract, InputType, ScoreTransform};
-pub use engine::{EngineKind, EngineState, Input, Planned};
+pub use check::{BatchAxis, Contract, Expect, InputType, Layout, ScoreTransform, ScoresMode};
+pub use engine::{EngineKind, EngineState, Input, Planned, StateWrap};
+pub use load::{Library, Spec, StackMode};
 
 /// A loaded, checked and planned model, shared by every lane that serves it.
 pub struct Model {
@@ -44,13 +45,13 @@ pub struct Model {
 }
 
 /// Whether lanes stack a formed pass into one tensor, and why (decided at load).
-#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Stacking {
     /// Stacked (`true`) or image by image.
     pub stacked: bool,
     /// Why: `"engine"` (it cannot stack), `"model"` (the batch axis is fixed at 1),
     /// `"config"` (`stack = true | false`), `"calibrated"` (timed at load).
-    pub decided_by: &'static str,
+    pub decided_by: std::borrow::Cow<'static, str>,
     /// The calibration's time per image run one at a time, in ms.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub single_ms_per_image: Option<f64>,
@@ -62,7 +63,12 @@ pub struct Stacking {
 impl Stacking {
     /// Image by image, for `reason`.
     pub fn single(decided_by: &'static str) -> Stacking {
-        Stacking { stacked: false, decided_by, single_ms_per_image: None, stacked_ms_per_image: None }
+        Stacking {
+            stacked: false,
+            decided_by: decided_by.into(),
+            single_ms_per_image: None,
+            stacked_ms_per_image: None,
+        }
     }
 }
 
@@ -145,7 +151,20 @@ impl Model {
     /// # Errors
     /// When the engine cannot allocate the state or start its threads.
     pub fn runner_with_threads(&self, threads: usize) -> Result<Runner, RunError> {
+        self.runner_wrapped(threads, None)
+    }
+
+    /// As [`Model::runner_with_threads`], with the engine state wrapped by `wrap` if given
+    /// (a lane's state under a test's fault-injecting engine).
+    ///
+    /// # Errors
+    /// As [`Model::runner_with_threads`].
+    pub fn runner_wrapped(&self, threads: usize, wrap: Option<&StateWrap>) -> Result<Runner, RunError> {
         let state = self.plan.state(threads)?;
+        let state = match wrap {
+            Some(w) => w(state),
+            None => state,
+        };
         let c = &self.contract;
         Ok(Runner {
             state,
@@ -283,5 +302,38 @@ mod tests {
         assert_eq!(top_k(&[0.1, 0.5, 0.2, 0.5], 3), vec![1, 3, 2]);
         assert_eq!(top_k(&[0.1, 0.5], 9), vec![1, 0]);
         assert_eq!(top_k(&[f32::NAN, 0.5], 1).len(), 1);
+    }
+}
+
+#[cfg(test)]
+impl Model {
+    /// A model over a test engine `plan`: one float input of `input_len` values (1 x 1 x 1 x
+    /// `input_len`, NCHW), `classes` scores used as they are, stacked passes as `stacked` says.
+    pub(crate) fn stub(plan: Arc<dyn Planned>, input_len: u32, classes: usize, stacked: bool) -> Model {
+        let contract = Contract {
+            input_name: "x".into(),
+            input_shape: vec!["N".into(), "1".into(), "1".into(), input_len.to_string()],
+            layout: Layout::Nchw,
+            channels: 1,
+            height: 1,
+            width: input_len,
+            input_type: InputType::Float32,
+            batch: BatchAxis::Dynamic("N".into()),
+            output_name: "y".into(),
+            output_shape: vec!["N".into(), classes.to_string()],
+            classes,
+            scores: ScoreTransform::AsIs,
+            ends_in: None,
+        };
+        Model {
+            name: "stub".into(),
+            version: "0".into(),
+            labels: (0..classes).map(|i| i.to_string()).collect(),
+            contract,
+            file: "stub.onnx".into(),
+            load_time: Duration::ZERO,
+            stacking: Stacking { stacked, ..Stacking::single("config") },
+            plan,
+        }
     }
 }

@@ -2,14 +2,14 @@
 //! shared library loaded at run time.
 //!
 //! The library is found, in order: `[onnxruntime] library` in the config, the environment
-//! variable `ORT_DYLIB_PATH`, the system's `libonnxruntime.so`. It is loaded once per process
+//! variable `ORT_DYLIB_PATH` (read once, by the command line), the system's `libonnxruntime.so`. It is loaded once per process
 //! (the runtime allows one environment); every model using this engine shares it. Each lane
 //! builds its own session from the model's bytes with `intra_op_num_threads = lane_threads`
 //! (the runtime's default graph optimisations, as a Python `InferenceSession` gets). It can
 //! stack a pass along the batch axis; whether it does is calibrated at load (on the machine
-//! of the the engine table in docs/performance.md it gained nothing per core, so passes ran image by image).
+//! of the engine table in docs/performance.md it gained nothing per core, so passes ran image by image).
 
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 use std::sync::Arc;
 
 use anyhow::Context as _;
@@ -17,6 +17,7 @@ use ort::session::Session;
 use ort::value::TensorRef;
 
 use super::engine::{EngineKind, EngineState, Input, Planned};
+use super::load::Library;
 use super::{Contract, RunError};
 
 /// Where the runtime's shared library is looked for when neither the config nor the
@@ -36,7 +37,7 @@ impl OrtPlan {
     /// # Errors
     /// The library cannot be loaded (the message says where it looked and how to name it), or
     /// the runtime refuses the model.
-    pub fn build(bytes: &[u8], contract: &Contract, library: Option<&Path>, file: &str) -> anyhow::Result<OrtPlan> {
+    pub fn build(bytes: &[u8], contract: &Contract, library: Option<&Library>, file: &str) -> anyhow::Result<OrtPlan> {
         load_library(library)?;
         let plan = OrtPlan { bytes: bytes.into(), shape: contract.input_shape(1), file: file.to_string() };
         let session = plan.session(1).map_err(|e| anyhow::anyhow!("{file}: onnxruntime cannot load the model: {e}"))?;
@@ -99,12 +100,10 @@ impl EngineState for OrtState {
 }
 
 /// Load the runtime's library once; later calls (more models, more lanes) reuse it.
-fn load_library(configured: Option<&Path>) -> anyhow::Result<()> {
-    let from_env = std::env::var_os("ORT_DYLIB_PATH").filter(|v| !v.is_empty()).map(PathBuf::from);
-    let (path, source) = match (configured, from_env) {
-        (Some(p), _) => (p.to_path_buf(), "[onnxruntime] library"),
-        (None, Some(p)) => (p, "ORT_DYLIB_PATH"),
-        (None, None) => (PathBuf::from(SYSTEM_LIBRARY), "the system's library search path"),
+fn load_library(configured: Option<&Library>) -> anyhow::Result<()> {
+    let (path, source) = match configured {
+        Some(l) => (l.path.clone(), l.from),
+        None => (PathBuf::from(SYSTEM_LIBRARY), "the system's library search path"),
     };
     let builder = ort::init_from(&path).with_context(|| {
         format!(

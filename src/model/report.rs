@@ -101,18 +101,7 @@ struct Field {
 pub fn build(proto: &pb::ModelProto, typed: &TypedModel, model_bytes: u64) -> Report {
     let empty = pb::GraphProto::default();
     let graph = proto.graph.as_ref().unwrap_or(&empty);
-    // Constant tensors: initializers and Constant nodes.
-    let mut consts: HashMap<&str, Vec<u64>> = graph
-        .initializer
-        .iter()
-        .map(|t| (t.name.as_str(), t.dims.iter().map(|&d| d.max(0) as u64).collect()))
-        .collect();
-    for n in graph.node.iter().filter(|n| n.op_type == "Constant") {
-        if let (Some(out), Some(t)) = (n.output.first(), attr(n, "value").and_then(|a| a.t.as_ref())) {
-            consts.insert(out.as_str(), t.dims.iter().map(|&d| d.max(0) as u64).collect());
-        }
-    }
-    let numel = |name: &str| consts.get(name).map(|d| d.iter().product::<u64>());
+    let consts = constants(graph);
     let shape = |name: &str| -> Vec<usize> {
         typed
             .find_outlet_label(name)
@@ -131,7 +120,7 @@ pub fn build(proto: &pb::ModelProto, typed: &TypedModel, model_bytes: u64) -> Re
     for node in &graph.node {
         let Some(out_name) = node.output.first() else { continue };
         let out_shape = shape(out_name);
-        let data_in = node.input.first().map(String::as_str).unwrap_or("");
+        let in_shape = shape(node.input.first().map(String::as_str).unwrap_or(""));
         let incoming =
             node.input.iter().filter_map(|i| fields.get(i.as_str()).copied()).fold(None, |acc: Option<Field>, f| {
                 Some(match acc {
@@ -139,62 +128,18 @@ pub fn build(proto: &pb::ModelProto, typed: &TypedModel, model_bytes: u64) -> Re
                     Some(a) => Field { rf: a.rf.max(f.rf), jump: a.jump.max(f.jump) },
                 })
             });
-        let (mut p, mut m, mut is_fc) = (0u64, 0u64, false);
-        let mut field = incoming;
-        match node.op_type.as_str() {
-            "Conv" | "ConvTranspose" => {
-                let w = node.input.get(1).and_then(|n| consts.get(n.as_str())).cloned().unwrap_or_default();
-                p = w.iter().product::<u64>() + node.input.get(2).and_then(|b| numel(b)).unwrap_or(0);
-                let per_output: u64 = w.iter().skip(1).product();
-                let out_elems: u64 = out_shape.iter().skip(1).map(|&d| d as u64).product();
-                m = if node.op_type == "Conv" { out_elems * per_output } else { 0 };
-                let kernel = ints(node, "kernel_shape").unwrap_or_else(|| w.iter().skip(2).copied().collect());
-                field = incoming.map(|f| spatial(f, &kernel, ints(node, "strides"), ints(node, "dilations")));
-            }
-            "MaxPool" | "AveragePool" | "LpPool" => {
-                let kernel = ints(node, "kernel_shape").unwrap_or_default();
-                field = incoming.map(|f| spatial(f, &kernel, ints(node, "strides"), ints(node, "dilations")));
-            }
-            "GlobalAveragePool" | "GlobalMaxPool" => {
-                // The kernel is the whole input plane.
-                let kernel: Vec<u64> = shape(data_in).iter().skip(2).map(|&d| d as u64).collect();
-                field = incoming.map(|f| spatial(f, &kernel, Some(kernel.clone()), None));
-            }
-            "Gemm" => {
-                let b = node.input.get(1).and_then(|n| consts.get(n.as_str())).cloned().unwrap_or_default();
-                p = b.iter().product::<u64>() + node.input.get(2).and_then(|c| numel(c)).unwrap_or(0);
-                let k = if int(node, "transB", 0) != 0 { b.get(1) } else { b.first() }.copied().unwrap_or(0);
-                m = out_shape.iter().map(|&d| d as u64).product::<u64>() * k;
-                is_fc = true;
-            }
-            "MatMul" => {
-                if let Some(b) = node.input.get(1).and_then(|n| consts.get(n.as_str())) {
-                    p = b.iter().product();
-                    let k = b.len().checked_sub(2).and_then(|i| b.get(i)).copied().unwrap_or(0);
-                    m = out_shape.iter().map(|&d| d as u64).product::<u64>() * k;
-                    is_fc = true;
-                }
-            }
-            "BatchNormalization" => {
-                // Learned: scale and shift; the running mean and variance are statistics.
-                p = [1, 2].iter().filter_map(|&i| node.input.get(i)).filter_map(|n| numel(n)).sum();
-            }
-            "PRelu" => p = node.input.get(1).and_then(|n| numel(n)).unwrap_or(0),
-            _ => {}
-        }
+        let c = cost(node, &consts, &out_shape, &in_shape, incoming);
         // A tensor that is no longer an image (flattened, fully connected) has no field.
-        if out_shape.len() != 4 {
-            field = None;
-        }
+        let field = c.field.filter(|_| out_shape.len() == 4);
         if let Some(f) = field {
             for o in &node.output {
                 fields.insert(o.as_str(), f);
             }
         }
-        params += p;
-        macs_total += m;
-        if is_fc {
-            fc_params += p;
+        params += c.params;
+        macs_total += c.macs;
+        if c.fc {
+            fc_params += c.params;
         }
         if REPORTED.contains(&node.op_type.as_str()) {
             layers.push(Layer {
@@ -202,14 +147,92 @@ pub fn build(proto: &pb::ModelProto, typed: &TypedModel, model_bytes: u64) -> Re
                 name: if node.name.is_empty() { out_name.clone() } else { node.name.clone() },
                 op: node.op_type.clone(),
                 output_shape: out_shape,
-                params: p,
-                macs: m,
+                params: c.params,
+                macs: c.macs,
                 receptive_field: field.map(|f| f.rf),
                 stride: field.map(|f| f.jump),
             });
         }
     }
     Report { layers, params, macs_per_image: macs_total, fc_params, model_bytes }
+}
+
+/// The dimensions of the graph's constant tensors: initializers and Constant nodes.
+fn constants(graph: &pb::GraphProto) -> HashMap<&str, Vec<u64>> {
+    let mut consts: HashMap<&str, Vec<u64>> = graph
+        .initializer
+        .iter()
+        .map(|t| (t.name.as_str(), t.dims.iter().map(|&d| d.max(0) as u64).collect()))
+        .collect();
+    for n in graph.node.iter().filter(|n| n.op_type == "Constant") {
+        if let (Some(out), Some(t)) = (n.output.first(), attr(n, "value").and_then(|a| a.t.as_ref())) {
+            consts.insert(out.as_str(), t.dims.iter().map(|&d| d.max(0) as u64).collect());
+        }
+    }
+    consts
+}
+
+/// What one node costs and how it changes the receptive field.
+struct Cost {
+    params: u64,
+    macs: u64,
+    /// A fully connected layer (Gemm, MatMul by a constant).
+    fc: bool,
+    field: Option<Field>,
+}
+
+/// A node's learned parameters, its MACs per image and its field, from its weights' shapes
+/// (`consts`) and its input and output shapes.
+fn cost(
+    node: &pb::NodeProto,
+    consts: &HashMap<&str, Vec<u64>>,
+    out_shape: &[usize],
+    in_shape: &[usize],
+    incoming: Option<Field>,
+) -> Cost {
+    let numel = |name: &str| consts.get(name).map(|d| d.iter().product::<u64>());
+    let weights = || node.input.get(1).and_then(|n| consts.get(n.as_str())).cloned().unwrap_or_default();
+    let out_elems = |skip: usize| out_shape.iter().skip(skip).map(|&d| d as u64).product::<u64>();
+    let mut c = Cost { params: 0, macs: 0, fc: false, field: incoming };
+    match node.op_type.as_str() {
+        "Conv" | "ConvTranspose" => {
+            let w = weights();
+            c.params = w.iter().product::<u64>() + node.input.get(2).and_then(|b| numel(b)).unwrap_or(0);
+            let per_output: u64 = w.iter().skip(1).product();
+            c.macs = if node.op_type == "Conv" { out_elems(1) * per_output } else { 0 };
+            let kernel = ints(node, "kernel_shape").unwrap_or_else(|| w.iter().skip(2).copied().collect());
+            c.field = incoming.map(|f| spatial(f, &kernel, ints(node, "strides"), ints(node, "dilations")));
+        }
+        "MaxPool" | "AveragePool" | "LpPool" => {
+            let kernel = ints(node, "kernel_shape").unwrap_or_default();
+            c.field = incoming.map(|f| spatial(f, &kernel, ints(node, "strides"), ints(node, "dilations")));
+        }
+        "GlobalAveragePool" | "GlobalMaxPool" => {
+            // The kernel is the whole input plane.
+            let kernel: Vec<u64> = in_shape.iter().skip(2).map(|&d| d as u64).collect();
+            c.field = incoming.map(|f| spatial(f, &kernel, Some(kernel.clone()), None));
+        }
+        "Gemm" => {
+            let b = weights();
+            c.params = b.iter().product::<u64>() + node.input.get(2).and_then(|x| numel(x)).unwrap_or(0);
+            let k = if int(node, "transB", 0) != 0 { b.get(1) } else { b.first() }.copied().unwrap_or(0);
+            (c.macs, c.fc) = (out_elems(0) * k, true);
+        }
+        "MatMul" => {
+            if let Some(b) = node.input.get(1).and_then(|n| consts.get(n.as_str())) {
+                c.params = b.iter().product();
+                let k = b.len().checked_sub(2).and_then(|i| b.get(i)).copied().unwrap_or(0);
+                (c.macs, c.fc) = (out_elems(0) * k, true);
+            }
+        }
+        "BatchNormalization" => {
+            // Learned: scale and shift; the running mean and variance are statistics.
+            c.params = [1, 2].iter().filter_map(|&i| node.input.get(i)).filter_map(|n| numel(n)).sum();
+        }
+        "PRelu" => c.params = node.input.get(1).and_then(|n| numel(n)).unwrap_or(0),
+        _ => {}
+    }
+    c
 }
 
 /// One spatial stage: kernel `k` (per axis), strides, dilations. The report keeps the

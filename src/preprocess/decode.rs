@@ -15,9 +15,9 @@ use std::io::Cursor;
 
 use image::{DynamicImage, ImageDecoder, ImageError, ImageFormat, ImageReader, Limits};
 
+use super::Orientation;
 use super::resize::Plane;
 use super::{Frame, PreprocessError};
-use crate::config::Orientation;
 
 /// The limits a frame must meet, checked from its header.
 #[derive(Debug, Clone, Copy)]

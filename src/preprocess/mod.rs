@@ -14,11 +14,13 @@ pub mod normalize;
 pub mod npy;
 pub mod pool;
 pub mod resize;
+pub mod settings;
+
+pub use settings::{Channels, Filter, Orientation, PreprocessConfig, ResizeMode, Roi, short_side_below_crop};
 
 use std::time::{Duration, Instant};
 
-use crate::config::{Channels, Layout, PreprocessConfig, ResizeMode, Roi};
-use crate::model::{Contract, InputType};
+use crate::model::{Contract, InputType, Layout};
 use decode::FrameLimits;
 use resize::{Plane, Window};
 
@@ -201,15 +203,18 @@ pub struct Pipeline {
 impl Pipeline {
     /// A pipeline for a model with this config, at the size and in the layout its contract
     /// says. A uint8 model takes raw pixels: the normalisation keys do not apply to it.
-    /// (`resize = "crop"` needs a square input: the model check refuses any other.)
-    pub fn new(cfg: PreprocessConfig, contract: &Contract, max_pixels: u64) -> Pipeline {
+    ///
+    /// # Errors
+    /// Settings that do not fit the model ([`PreprocessConfig::fit`]).
+    pub fn new(cfg: PreprocessConfig, contract: &Contract, max_pixels: u64) -> Result<Pipeline, String> {
+        cfg.fit(contract)?;
         let mut cfg = cfg.follow_model(contract.channels);
         if contract.input_type == InputType::Uint8 {
             let n = cfg.channels.count();
             (cfg.divisor, cfg.mean, cfg.std) = (1.0, vec![0.0; n], vec![1.0; n]);
         }
         let limits = FrameLimits { max_pixels, min_side: cfg.min_side };
-        Pipeline { cfg, width: contract.width, height: contract.height, layout: contract.layout, limits }
+        Ok(Pipeline { cfg, width: contract.width, height: contract.height, layout: contract.layout, limits })
     }
 
     /// The preprocessing settings in force (after a uint8 model's override).

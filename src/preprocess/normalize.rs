@@ -2,7 +2,8 @@
 //! x = (pixel / divisor - mean\[c\]) / std\[c\], in the model's channel order and layout;
 //! and the channel conversions that come before resizing (luma for gray models).
 
-use crate::config::{Channels, Layout};
+use super::Channels;
+use crate::model::Layout;
 
 /// BT.601 luma with Pillow's integer rounding: L = (R*19595 + G*38470 + B*7471 + 0x8000) >> 16
 /// (weights 0.299, 0.587, 0.114 in 16-bit fixed point; the formula is recalled from Pillow's

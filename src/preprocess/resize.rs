@@ -14,8 +14,8 @@
 //! Only the output window a crop keeps is computed (every output pixel depends only on its
 //! own weights, so the kept pixels are the same as a full resize followed by a crop).
 
+use super::Filter;
 use super::PreprocessError;
-use crate::config::Filter;
 
 /// Fractional bits of the 8-bit path's weights: 32 - 8 - 2, as Pillow uses (two bits of
 /// headroom for kernels with negative lobes).

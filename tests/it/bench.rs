@@ -204,7 +204,7 @@ print(json.dumps([float(x) for x in np.percentile(v, [50, 90, 99, 99.9], method=
 async fn the_open_loop_shows_a_stall_that_the_closed_loop_hides() {
     let mut slow = Vec::new();
     for mode in [["--concurrency", "1"], ["--rate", "100/s"]] {
-        let fault = lineside::batch::FaultPlan::default();
+        let fault = crate::fault::FaultPlan::default();
         let config = washer_config_with(&[("lanes = \"auto\"", "lanes = 1")]);
         let server = TestServer::start_with_fault(config, fault.clone()).await;
         let dir = temp_dir("bench-stall");

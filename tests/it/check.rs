@@ -17,11 +17,11 @@ fn fixture(case: &str) -> PathBuf {
 }
 
 fn bare(case: &str, side: u32, channels: Channels) -> ModelConfig {
-    ModelConfig::bare(fixture(case), Some(side), Some(side), Some(channels))
+    ModelConfig::bare(fixture(case), Some(side), Some(side), Some(channels), &lineside::cli::base_overrides().unwrap())
 }
 
 fn report(case: &str, side: u32, channels: Channels) -> Report {
-    load::load_with_report(&bare(case, side, channels)).unwrap_or_else(|e| panic!("{case}: {e:#}")).1
+    load::load_with_report(&bare(case, side, channels).spec()).unwrap_or_else(|e| panic!("{case}: {e:#}")).1
 }
 
 fn row_shapes(r: &Report, op: &str) -> Vec<Vec<usize>> {
@@ -91,7 +91,7 @@ fn fixtures_match_onnxruntime_on_the_same_input() {
             &std::fs::read(root().join("tests/fixtures").join(case).join("reference.json")).unwrap(),
         )
         .unwrap();
-        let model = load::load(&bare(case, side, channels)).unwrap_or_else(|e| panic!("{case}: {e:#}"));
+        let model = load::load(&bare(case, side, channels).spec()).unwrap_or_else(|e| panic!("{case}: {e:#}"));
         let n = model.input_len();
         let x: Vec<f32> = if model.contract.input_type == lineside::model::InputType::Uint8 {
             (0..n as u64).map(|i| ((i * 7919) % 256) as f32).collect()
@@ -117,7 +117,7 @@ fn stacking_is_decided_at_load_by_engine_model_config_or_calibration() {
     let with = |case: &str, side: u32, stack: StackMode| {
         let mut mc = bare(case, side, Channels::Rgb);
         mc.batching.stack = stack;
-        load::load(&mc)
+        load::load(&mc.spec())
     };
     let auto = with("arith", 32, StackMode::Auto).unwrap();
     let forced = with("arith", 32, StackMode::Always);
@@ -127,7 +127,7 @@ fn stacking_is_decided_at_load_by_engine_model_config_or_calibration() {
     assert!(!never.stacks());
     match engine {
         EngineKind::Tract => {
-            assert_eq!((auto.stacks(), auto.stacking.decided_by), (false, "engine"));
+            assert_eq!((auto.stacks(), auto.stacking.decided_by.as_ref()), (false, "engine"));
             assert_eq!(never.stacking.decided_by, "engine");
             let e = forced.unwrap_err();
             assert!(format!("{e:#}").contains("tract engine runs passes image by image"), "{e:#}");
@@ -137,10 +137,11 @@ fn stacking_is_decided_at_load_by_engine_model_config_or_calibration() {
             assert_eq!(never.stacking.decided_by, "config");
             let (one, stacked) =
                 (auto.stacking.single_ms_per_image.unwrap(), auto.stacking.stacked_ms_per_image.unwrap());
-            assert!(one > 0.0 && stacked > 0.0);
-            assert_eq!(auto.stacks(), stacked <= 0.9 * one, "the 0.9 rule");
+            // The rule itself is unit-tested with fixed numbers (load::stacking_pays); here the
+            // calibration must have measured both ways and reported them.
+            assert!(one.is_finite() && one > 0.0 && stacked.is_finite() && stacked > 0.0, "{one} {stacked}");
             let forced = forced.unwrap();
-            assert_eq!((forced.stacks(), forced.stacking.decided_by), (true, "config"));
+            assert_eq!((forced.stacks(), forced.stacking.decided_by.as_ref()), (true, "config"));
             assert!(format!("{fixed:#}").contains("fixes its batch axis at 1"), "{fixed:#}");
         }
     }
@@ -150,21 +151,21 @@ fn stacking_is_decided_at_load_by_engine_model_config_or_calibration() {
 fn layouts_batch_axes_and_softmax_are_detected() {
     use lineside::config::Layout;
     use lineside::model::{BatchAxis, ScoreTransform};
-    let nhwc = load::load(&bare("nhwc", 64, Channels::Rgb)).unwrap();
+    let nhwc = load::load(&bare("nhwc", 64, Channels::Rgb).spec()).unwrap();
     assert_eq!(nhwc.contract.layout, Layout::Nhwc);
-    let b1 = load::load(&bare("batch1", 32, Channels::Rgb)).unwrap();
+    let b1 = load::load(&bare("batch1", 32, Channels::Rgb).spec()).unwrap();
     assert_eq!(b1.contract.batch, BatchAxis::Fixed(1));
-    let sm = load::load(&bare("softmax", 32, Channels::Rgb)).unwrap();
+    let sm = load::load(&bare("softmax", 32, Channels::Rgb).spec()).unwrap();
     assert_eq!(sm.contract.scores, ScoreTransform::AsIs);
     assert_eq!(sm.contract.ends_in.as_deref(), Some("Softmax"));
-    let sg = load::load(&bare("sigmoid", 32, Channels::Rgb)).unwrap();
+    let sg = load::load(&bare("sigmoid", 32, Channels::Rgb).spec()).unwrap();
     assert_eq!((sg.contract.scores, sg.contract.ends_in.as_deref()), (ScoreTransform::AsIs, Some("Sigmoid")));
     let mut forced = bare("arith", 32, Channels::Rgb);
     forced.scores = lineside::config::ScoresMode::Sigmoid;
-    assert_eq!(load::load(&forced).unwrap().contract.scores, ScoreTransform::Sigmoid);
-    let u8m = load::load(&bare("uint8", 32, Channels::Rgb)).unwrap();
+    assert_eq!(load::load(&forced.spec()).unwrap().contract.scores, ScoreTransform::Sigmoid);
+    let u8m = load::load(&bare("uint8", 32, Channels::Rgb).spec()).unwrap();
     assert_eq!(u8m.contract.input_type, lineside::model::InputType::Uint8);
-    let arith = load::load(&bare("arith", 32, Channels::Rgb)).unwrap();
+    let arith = load::load(&bare("arith", 32, Channels::Rgb).spec()).unwrap();
     assert_eq!(arith.contract.scores, ScoreTransform::Softmax);
 }
 
@@ -185,8 +186,14 @@ fn broken_models_are_refused_with_a_message_naming_file_and_cause() {
     for (case, side, ch, needles) in cases {
         // side 0: no size configured
         let size = (*side > 0).then_some(*side);
-        let err =
-            format!("{:#}", load::load(&ModelConfig::bare(fixture(case), size, size, Some(*ch))).expect_err(case));
+        let err = format!(
+            "{:#}",
+            load::load(
+                &ModelConfig::bare(fixture(case), size, size, Some(*ch), &lineside::cli::base_overrides().unwrap())
+                    .spec()
+            )
+            .expect_err(case)
+        );
         for n in *needles {
             assert!(err.contains(n), "{case}: {n:?} not in: {err}");
         }
@@ -198,10 +205,10 @@ fn a_layout_that_contradicts_the_model_is_refused() {
     use lineside::config::Layout;
     let mut mc = bare("nhwc", 64, Channels::Rgb);
     mc.preprocess.layout = Some(Layout::Nchw);
-    let err = format!("{:#}", load::load(&mc).unwrap_err());
+    let err = format!("{:#}", load::load(&mc.spec()).unwrap_err());
     assert!(err.contains("the model is nhwc but the config says layout = \"nchw\""), "{err}");
     mc.preprocess.layout = Some(Layout::Nhwc);
-    assert_eq!(load::load(&mc).unwrap().contract.layout, Layout::Nhwc, "a matching layout is accepted");
+    assert_eq!(load::load(&mc.spec()).unwrap().contract.layout, Layout::Nhwc, "a matching layout is accepted");
 }
 
 #[test]
@@ -372,8 +379,14 @@ fn paper_architectures_match_their_published_totals_and_onnxruntime() {
         ("vgg_small", VGG_SMALL_MACS, VGG_SMALL_PARAMS, 0.0),
     ];
     for (name, macs, params, params_tol) in cases {
-        let mc = ModelConfig::bare(dir.join(format!("{name}.onnx")), None, None, Some(Channels::Rgb));
-        let (model, r) = load::load_with_report(&mc).unwrap_or_else(|e| panic!("{name}: {e:#}"));
+        let mc = ModelConfig::bare(
+            dir.join(format!("{name}.onnx")),
+            None,
+            None,
+            Some(Channels::Rgb),
+            &lineside::cli::base_overrides().unwrap(),
+        );
+        let (model, r) = load::load_with_report(&mc.spec()).unwrap_or_else(|e| panic!("{name}: {e:#}"));
         let mac_err = (r.macs_per_image as f64 - macs).abs() / macs;
         let mac_tol = if name == "vgg_small" { 0.0 } else { 0.01 };
         assert!(mac_err <= mac_tol, "{name}: {} MACs vs published {macs:e}", r.macs_per_image);

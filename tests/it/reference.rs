@@ -35,7 +35,7 @@ fn pillow_pixels(name: &str) -> image::RgbImage {
 #[test]
 fn engine_matches_onnxruntime_on_the_same_tensor() {
     let cfg = washer_config();
-    let model = load::load(&cfg.models[0]).unwrap();
+    let model = load::load(&cfg.models[0].spec()).unwrap();
     let mut runner = model.runner().unwrap();
     let r = reference();
     let mut worst = 0.0f64;
@@ -63,9 +63,9 @@ fn engine_matches_onnxruntime_on_the_same_tensor() {
 fn preprocessing_matches_pillow_bilinear_exactly() {
     let cfg = washer_config();
     let m = &cfg.models[0];
-    let model = load::load(m).unwrap();
+    let model = load::load(&m.spec()).unwrap();
     assert_eq!(model.contract.layout, Layout::Nchw);
-    let pipeline = Pipeline::new(m.preprocess.clone(), &model.contract, cfg.server.max_pixels);
+    let pipeline = Pipeline::new(m.preprocess.clone(), &model.contract, cfg.server.max_pixels).unwrap();
     let (mut worst, mut total, mut count) = (0i32, 0i64, 0i64);
     for s in samples() {
         let ours = pipeline.run(&s.bytes).unwrap().tensor;
@@ -129,29 +129,37 @@ async fn served_scores_match_onnxruntime_with(config: lineside::config::Config) 
 
 /// Requests gathered into one pass each get their own image's scores back, whether the pass
 /// is stacked into one tensor (onnxruntime with `stack = true`) or run image by image (tract):
-/// the 15 samples posted at once to one lane that waits up to 300 ms for company.
+/// the 15 samples posted at once to one lane. The lane is held at the engine on the first
+/// until the other 14 wait in the backlog, so the passes that follow are formed from a full
+/// backlog however fast this machine is: 1 + ceil(14 / batch_cap 8) = 3 passes.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn gathered_passes_answer_each_image_with_its_own_scores() {
     let stacking = engine_under_test() == lineside::model::EngineKind::Onnxruntime;
     let stack = if stacking { "stack = true  " } else { "stack = \"auto\"" };
-    let config = washer_config_with(&[
-        ("lanes = \"auto\"", "lanes = 1"),
-        ("gather_us = 2000 ", "gather_us = 300000 "),
-        ("stack = \"auto\"", stack),
-    ]);
-    let server = TestServer::start(config).await;
+    let config = washer_config_with(&[("lanes = \"auto\"", "lanes = 1"), ("stack = \"auto\"", stack)]);
+    let fault = crate::fault::FaultPlan::default();
+    let server = TestServer::start_with_fault(config, fault.clone()).await;
     let c = reqwest::Client::new();
     let r = reference();
     let labels: Vec<String> = r["labels"].as_array().unwrap().iter().map(|l| l.as_str().unwrap().into()).collect();
-    let answers = futures_util::future::join_all(samples().into_iter().map(|s| {
+    let post = |s: crate::util::Sample| {
         let c = c.clone();
         let url = server.url("/classify/washers?top=all");
-        async move {
+        tokio::spawn(async move {
             let v: Value = c.post(url).body(s.bytes.clone()).send().await.unwrap().json().await.unwrap();
             (s.name, v)
-        }
-    }))
-    .await;
+        })
+    };
+    // The first alone into the held lane, then the other 14 into the backlog.
+    fault.hold();
+    let mut all = samples().into_iter();
+    let mut posts = vec![post(all.next().unwrap())];
+    fault.wait_entered(1).await;
+    posts.extend(all.map(post));
+    server.wait_backlog("washers", 14).await;
+    fault.release();
+    let answers: Vec<(String, Value)> =
+        futures_util::future::join_all(posts).await.into_iter().map(Result::unwrap).collect();
     let mut worst = 0.0f64;
     for (name, v) in &answers {
         assert_eq!(v["label"], r["samples"][name]["label"], "{name}: top-1 differs from onnxruntime: {v}");
@@ -169,11 +177,7 @@ async fn gathered_passes_answer_each_image_with_its_own_scores() {
         metric(&m, r#"lineside_pass_size_requests_count{model="washers"}"#),
     );
     assert_eq!(sum, 15.0, "every image ran exactly once");
-    if stacking {
-        // A stacking lane waits for company once it sees a burst: 15 requests posted together
-        // share passes.
-        assert!(count < 15.0, "{count} passes for 15 images: the stacking engine formed no multi-image pass");
-    }
+    assert_eq!(count, 3.0, "passes for 15 images: the held one, then 8 and 6 from the backlog");
     server.stop().await.unwrap();
 }
 

@@ -3,7 +3,7 @@
 use std::sync::atomic::Ordering;
 use std::time::{Duration, Instant};
 
-use lineside::batch::FaultPlan;
+use crate::fault::FaultPlan;
 use serde_json::Value;
 use sha2::{Digest, Sha256};
 use tokio::io::AsyncWriteExt;
@@ -43,9 +43,11 @@ async fn every_sample_gets_its_expected_label() {
         let scores: Vec<f64> = top.iter().map(|t| t["score"].as_f64().unwrap()).collect();
         assert!(scores.windows(2).all(|w| w[0] >= w[1]), "best first: {scores:?}");
         assert!(scores.iter().sum::<f64>() <= 1.0 + 1e-5);
-        for k in ["decode", "preprocess", "wait", "infer", "total"] {
-            assert!(v["timing_ms"][k].as_f64().unwrap() >= 0.0, "timing_ms.{k}: {v}");
-        }
+        // The stages are disjoint intervals inside the request, so they add up to at most
+        // the total (each rounded to the microsecond: 4 us of slack).
+        let t = |k: &str| v["timing_ms"][k].as_f64().unwrap_or_else(|| panic!("timing_ms.{k}: {v}"));
+        let parts = t("decode") + t("preprocess") + t("wait") + t("infer");
+        assert!(parts <= t("total") + 0.004, "stages {parts} ms > total {} ms: {v}", t("total"));
     }
     server.stop().await.unwrap();
 }
@@ -72,7 +74,8 @@ async fn readyz_is_503_until_the_models_are_loaded() {
     assert_eq!(v["models"][0]["accepting"], true, "{v}");
     let alive: Value = c.get(server.url("/healthz")).send().await.unwrap().json().await.unwrap();
     assert_eq!(alive["alive"], true, "{alive}");
-    assert!(alive["lanes"].as_u64().is_some_and(|n| n >= 1), "{alive}");
+    let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap();
+    assert_eq!(alive["lanes"].as_u64(), Some(lineside::served::share_lanes(cores, 1, 1) as u64), "{alive}");
     let r = c.post(server.url("/classify/washers")).body(sample.bytes.clone()).send().await.unwrap();
     assert_eq!(r.status(), 200);
     server.stop().await.unwrap();
@@ -284,12 +287,14 @@ async fn metrics_parse_and_count_every_request() {
     assert_eq!(metric(&m, r#"lineside_http_requests_total{route="/classify/{model}",status="400"}"#), 2.0);
     // every image that reached a lane is in exactly one pass
     assert_eq!(metric(&m, r#"lineside_pass_size_requests_sum{model="washers"}"#), n);
+    // One at a time: each request found the lanes idle and ran alone.
     let passes = metric(&m, r#"lineside_pass_size_requests_count{model="washers"}"#);
-    assert!(passes >= 1.0 && passes <= n);
+    assert_eq!(passes, n);
     assert_eq!(metric(&m, r#"lineside_inference_duration_seconds_count{model="washers"}"#), passes);
     assert_eq!(metric(&m, r#"lineside_preprocess_duration_seconds_count{model="washers"}"#), n);
     assert_eq!(metric(&m, r#"lineside_backlog_depth{model="washers"}"#), 0.0);
-    assert!(metric(&m, r#"lineside_lanes{model="washers"}"#) >= 1.0);
+    let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap();
+    assert_eq!(metric(&m, r#"lineside_lanes{model="washers"}"#), lineside::served::share_lanes(cores, 1, 1) as f64);
     server.stop().await.unwrap();
 }
 
@@ -328,13 +333,6 @@ async fn shutdown_answers_requests_in_flight_and_is_not_held_by_a_half_sent_requ
 /// Washer config edits for a server with one lane, so that one stalled job holds the rest.
 const ONE_LANE: (&str, &str) = ("lanes = \"auto\"", "lanes = 1");
 
-/// A fault plan whose next job stalls its lane for `ms`.
-fn stall_once(ms: u64) -> FaultPlan {
-    let f = FaultPlan::default();
-    f.stall_once_ms.store(ms, Ordering::SeqCst);
-    f
-}
-
 /// Passes run so far (`lineside_pass_size_requests_count`).
 async fn passes(c: &reqwest::Client, server: &TestServer) -> f64 {
     let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
@@ -343,28 +341,31 @@ async fn passes(c: &reqwest::Client, server: &TestServer) -> f64 {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_request_past_its_deadline_gets_504_and_never_reaches_the_engine() {
-    let fault = stall_once(600);
+    let fault = FaultPlan::default();
     let server = TestServer::start_with_fault(washer_config_with(&[ONE_LANE]), fault.clone()).await;
     let c = client();
     let s = &samples()[0];
     let before = passes(&c, &server).await;
-    // The first request stalls the only lane for 600 ms (it still gets its answer) ...
+    // The first request holds the only lane at the engine (it still gets its answer) ...
+    fault.hold();
     let first = tokio::spawn(c.post(server.url("/classify/washers")).body(s.bytes.clone()).send());
-    tokio::time::sleep(Duration::from_millis(100)).await;
-    // ... so one asking for 150 ms waits in the backlog past its deadline (the lane, when it
-    // gets to it, answers without running it; the handler has answered at the deadline).
-    let t = Instant::now();
+    fault.wait_entered(1).await;
+    // ... so one asking for 150 ms waits in the backlog past its deadline. Its 504 arrives
+    // while the lane is still held: the handler answered at the deadline, not the lane.
     let r = c.post(server.url("/classify/washers")).header("X-Deadline-Ms", "150").body(s.bytes.clone()).send();
     let msg = expect_error(r.await.unwrap(), 504, "deadline").await;
     assert!(msg.contains("150"), "{msg}");
-    // Answered at its deadline, not when the lane got to it (generous bound for a slow CI box).
-    assert!(t.elapsed() < Duration::from_millis(550), "504 after {:?}", t.elapsed());
+    assert_eq!(fault.entered(), 1, "nothing else reached the engine meanwhile");
+    fault.release();
     assert_eq!(first.await.unwrap().unwrap().status(), 200);
-    // The stalled pass is the only one that ran: the expired job was never run.
-    tokio::time::sleep(Duration::from_millis(100)).await;
+    // One more request through the only lane, which takes its backlog in order: by its
+    // answer, the expired job has been taken and dropped without running.
+    let r = c.post(server.url("/classify/washers")).body(s.bytes.clone()).send().await.unwrap();
+    assert_eq!(r.status(), 200);
     let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
-    assert_eq!(metric(&m, r#"lineside_pass_size_requests_count{model="washers"}"#), before + 1.0, "passes");
-    assert_eq!(metric(&m, r#"lineside_pass_size_requests_sum{model="washers"}"#), before + 1.0, "jobs run");
+    assert_eq!(metric(&m, r#"lineside_pass_size_requests_count{model="washers"}"#), before + 2.0, "passes");
+    assert_eq!(metric(&m, r#"lineside_pass_size_requests_sum{model="washers"}"#), before + 2.0, "jobs run");
+    assert_eq!(fault.entered(), 2, "the expired job never reached the engine");
     assert_eq!(washer_requests(&m, "deadline"), 1.0);
     // A deadline header may only shorten: a huge one is accepted and the server's applies.
     let r = c.post(server.url("/classify/washers")).header("X-Deadline-Ms", "86400000").body(s.bytes.clone());
@@ -467,18 +468,23 @@ async fn multipart_answers_every_part_in_order_good_and_bad() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn shutdown_drains_answers_in_flight_and_refuses_new_requests_with_draining() {
-    let fault = stall_once(700);
-    let mut server = TestServer::start_with_fault(washer_config_with(&[ONE_LANE]), fault).await;
+    let fault = FaultPlan::default();
+    let mut server = TestServer::start_with_fault(washer_config_with(&[ONE_LANE]), fault.clone()).await;
     let c = client();
     let s = samples();
-    // Four requests in flight: the first stalls the lane, the others wait in the backlog.
+    // Four requests in flight: the first held at the engine, the others in the backlog.
+    // (The first alone, so that the lane's pass holds it only.)
+    fault.hold();
     let mut in_flight = Vec::new();
-    for x in s.iter().take(4) {
+    for (i, x) in s.iter().take(4).enumerate() {
         in_flight.push(tokio::spawn(c.post(server.url("/classify/washers")).body(x.bytes.clone()).send()));
+        if i == 0 {
+            fault.wait_entered(1).await;
+        }
     }
-    tokio::time::sleep(Duration::from_millis(150)).await;
+    server.wait_backlog("washers", 3).await;
     server.trigger_shutdown();
-    tokio::time::sleep(Duration::from_millis(100)).await;
+    server.wait_draining().await;
     // While draining: the listener still answers, new work is refused, readiness is off.
     let msg = expect_error(
         c.post(server.url("/classify/washers")).body(s[0].bytes.clone()).send().await.unwrap(),
@@ -491,6 +497,7 @@ async fn shutdown_drains_answers_in_flight_and_refuses_new_requests_with_drainin
     assert!(r.headers().contains_key("retry-after"));
     expect_error(r, 503, "draining").await;
     assert_eq!(c.get(server.url("/healthz")).send().await.unwrap().status(), 200, "still alive while draining");
+    fault.release();
     for (i, h) in in_flight.into_iter().enumerate() {
         assert_eq!(h.await.unwrap().unwrap().status(), 200, "request {i} accepted before the signal is answered");
     }
@@ -499,21 +506,22 @@ async fn shutdown_drains_answers_in_flight_and_refuses_new_requests_with_drainin
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn after_drain_ms_whatever_still_waits_is_answered_draining() {
-    let fault = stall_once(1500);
-    let mut server =
-        TestServer::start_with_fault(washer_config_with(&[ONE_LANE, ("drain_ms = 10000", "drain_ms = 300")]), fault)
-            .await;
+    let fault = FaultPlan::default();
+    let config = washer_config_with(&[ONE_LANE, ("drain_ms = 10000", "drain_ms = 300")]);
+    let mut server = TestServer::start_with_fault(config, fault.clone()).await;
     let c = client();
     let s = samples();
+    fault.hold();
     let stalled = tokio::spawn(c.post(server.url("/classify/washers")).body(s[0].bytes.clone()).send());
-    tokio::time::sleep(Duration::from_millis(100)).await;
+    fault.wait_entered(1).await;
     let waiting = tokio::spawn(c.post(server.url("/classify/washers")).body(s[1].bytes.clone()).send());
-    tokio::time::sleep(Duration::from_millis(100)).await;
+    server.wait_backlog("washers", 1).await;
     server.trigger_shutdown();
-    // The queued request is answered when drain_ms passes, long before the lane frees up.
+    // The queued request is answered when drain_ms passes, while the lane is still held.
     let r = waiting.await.unwrap().unwrap();
     expect_error(r, 503, "draining").await;
     // The pass already running completes and is answered.
+    fault.release();
     assert_eq!(stalled.await.unwrap().unwrap().status(), 200);
     server.join().await.unwrap();
 }
@@ -539,33 +547,42 @@ async fn a_client_that_trickles_its_body_gets_408_body_timeout() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn healthz_fails_while_a_lane_is_stuck_and_readyz_while_the_backlog_is_nearly_full() {
-    let fault = stall_once(1200);
+    let fault = FaultPlan::default();
     let config = washer_config_with(&[
         ONE_LANE,
         ("backlog = 64", "backlog = 4"),
         ("drain_ms = 10000", "drain_ms = 10000\nstall_ms = 300\nready_backlog = 0.5"),
     ]);
-    let server = TestServer::start_with_fault(config, fault).await;
+    let server = TestServer::start_with_fault(config, fault.clone()).await;
     let c = client();
     let s = samples();
+    fault.hold();
     let mut reqs = Vec::new();
-    for x in s.iter().take(4) {
+    for (i, x) in s.iter().take(4).enumerate() {
         reqs.push(tokio::spawn(c.post(server.url("/classify/washers")).body(x.bytes.clone()).send()));
-        tokio::time::sleep(Duration::from_millis(20)).await;
+        if i == 0 {
+            fault.wait_entered(1).await; // the first alone in the lane's pass
+        }
     }
-    tokio::time::sleep(Duration::from_millis(150)).await;
-    // Three wait behind the stalled one: 3 of 4 >= 0.5.
+    server.wait_backlog("washers", 3).await;
+    // Three wait behind the held one: 3 of 4 >= 0.5.
     let r = c.get(server.url("/readyz")).send().await.unwrap();
     let body: Value = r.json().await.unwrap();
     assert_eq!(body["error"]["kind"], "not_ready", "{body}");
     assert_eq!(body["error"]["details"]["models"][0]["name"], "washers", "{body}");
     assert_eq!(body["error"]["details"]["models"][0]["accepting"], false, "{body}");
-    // Past stall_ms the lane counts as stuck.
-    tokio::time::sleep(Duration::from_millis(300)).await;
-    let r = c.get(server.url("/healthz")).send().await.unwrap();
-    let body: Value = r.json().await.unwrap();
+    // Past stall_ms the lane counts as stuck (polled: the lane is held until released).
+    let mut body = Value::Null;
+    for _ in 0..300 {
+        body = c.get(server.url("/healthz")).send().await.unwrap().json().await.unwrap();
+        if body["error"]["kind"] == "stalled" {
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
     assert_eq!(body["error"]["kind"], "stalled", "{body}");
     assert_eq!(body["error"]["details"]["stalled"][0]["model"], "washers", "{body}");
+    fault.release();
     for h in reqs {
         assert_eq!(h.await.unwrap().unwrap().status(), 200);
     }
@@ -635,8 +652,27 @@ async fn two_models_are_served_side_by_side_each_with_its_own_backlog() {
         .replace("backlog = 64", "backlog = 3")
         .replace("resize = \"stretch\"", "resize = \"letterbox\"");
     let text = format!("{base}\n{}", crate::util::without_selftest(&second));
-    let server = TestServer::start(crate::util::config_from_text(&text)).await;
+    let fault = FaultPlan::default();
+    let server = TestServer::start_with_fault(crate::util::config_from_text(&text), fault.clone()).await;
     let c = client();
+    // Fill washers_side's backlog behind its one held lane: its next request is refused,
+    // while washers still takes frames.
+    fault.hold();
+    let post = |name: &str| {
+        tokio::spawn(c.post(server.url(&format!("/classify/{name}"))).body(samples()[0].bytes.clone()).send())
+    };
+    let mut held = vec![post("washers_side")];
+    fault.wait_entered(1).await;
+    held.extend((0..3).map(|_| post("washers_side")));
+    server.wait_backlog("washers_side", 3).await;
+    let r = c.post(server.url("/classify/washers_side")).body(samples()[0].bytes.clone()).send().await.unwrap();
+    expect_error(r, 503, "overloaded").await;
+    held.push(post("washers"));
+    fault.wait_entered(2).await;
+    fault.release();
+    for h in held {
+        assert_eq!(h.await.unwrap().unwrap().status(), 200);
+    }
     let v: Value = c.get(server.url("/models")).send().await.unwrap().json().await.unwrap();
     let names: Vec<&str> = v["models"].as_array().unwrap().iter().map(|m| m["name"].as_str().unwrap()).collect();
     assert_eq!(names, ["washers", "washers_side"]);
@@ -653,7 +689,8 @@ async fn two_models_are_served_side_by_side_each_with_its_own_backlog() {
     let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
     for name in ["washers", "washers_side"] {
         let key = format!(r#"lineside_request_duration_seconds_count{{model="{name}",outcome="ok"}}"#);
-        assert_eq!(metric(&m, &key), 4.0, "{name}");
+        let before = if name == "washers" { 1.0 } else { 4.0 };
+        assert_eq!(metric(&m, &key), 4.0 + before, "{name}");
     }
     assert_eq!(metric(&m, r#"lineside_lanes{model="washers_side"}"#), 1.0);
     server.stop().await.unwrap();

@@ -16,7 +16,7 @@ use tokio::task::JoinHandle;
 /// The engine the suite runs against: `LINESIDE_ENGINE` (models without an `engine` key use
 /// it), else tract. tools/test runs the whole suite once per engine the build includes.
 pub(crate) fn engine_under_test() -> lineside::model::EngineKind {
-    lineside::config::default_engine().expect("LINESIDE_ENGINE names an engine")
+    lineside::cli::base_overrides().expect("LINESIDE_ENGINE names an engine").default_engine
 }
 
 pub(crate) fn root() -> PathBuf {
@@ -76,7 +76,7 @@ pub(crate) fn config_from_text(text: &str) -> Config {
         text,
         "test config",
         &|p: &Path| lineside::config::Source::File(base.join(p)),
-        &Overrides { listen: Some("127.0.0.1:0".into()), ..Default::default() },
+        &Overrides { listen: Some("127.0.0.1:0".into()), ..lineside::cli::base_overrides().unwrap() },
     )
     .expect("test config is valid")
 }
@@ -100,8 +100,8 @@ impl TestServer {
     }
 
     /// Start with a fault injected into the lanes, and wait until ready.
-    pub(crate) async fn start_with_fault(config: Config, fault: lineside::batch::FaultPlan) -> TestServer {
-        let mut s = Self::spawn(config, fault).await;
+    pub(crate) async fn start_with_fault(config: Config, fault: crate::fault::FaultPlan) -> TestServer {
+        let mut s = Self::spawn(config, Some(fault.wrap())).await;
         s.release_load();
         s.wait_ready().await;
         s
@@ -109,10 +109,10 @@ impl TestServer {
 
     /// Start with model loading held until [`TestServer::release_load`].
     pub(crate) async fn start_gated(config: Config) -> TestServer {
-        Self::spawn(config, Default::default()).await
+        Self::spawn(config, None).await
     }
 
-    async fn spawn(config: Config, fault: lineside::batch::FaultPlan) -> TestServer {
+    async fn spawn(config: Config, wrap_lanes: Option<lineside::model::StateWrap>) -> TestServer {
         let listener = tokio::net::TcpListener::bind(config.server.listen).await.unwrap();
         let addr = listener.local_addr().unwrap();
         let (stop_tx, stop_rx) = oneshot::channel::<()>();
@@ -120,8 +120,37 @@ impl TestServer {
         let shutdown = async move {
             let _ = stop_rx.await;
         };
-        let handle = tokio::spawn(run(config, listener, shutdown, RunOptions { load_gate: Some(gate_rx), fault }));
+        let handle = tokio::spawn(run(config, listener, shutdown, RunOptions { load_gate: Some(gate_rx), wrap_lanes }));
         TestServer { addr, shutdown: Some(stop_tx), gate: Some(gate_tx), handle }
+    }
+
+    /// Wait (polling `/readyz`, bounded at 30 s so that a broken test fails instead of
+    /// hanging) until `n` requests wait in `model`'s backlog.
+    pub(crate) async fn wait_backlog(&self, model: &str, n: usize) {
+        let mut last = serde_json::Value::Null;
+        for _ in 0..3000 {
+            last = reqwest::get(self.url("/readyz")).await.unwrap().json().await.unwrap();
+            let models = last["models"].as_array().or_else(|| last["error"]["details"]["models"].as_array());
+            let depth =
+                models.and_then(|ms| ms.iter().find(|m| m["name"] == model)).and_then(|m| m["backlog"].as_u64());
+            if depth == Some(n as u64) {
+                return;
+            }
+            tokio::time::sleep(Duration::from_millis(10)).await;
+        }
+        panic!("{model}'s backlog never reached {n}: last /readyz {last}");
+    }
+
+    /// Wait (polling `/readyz`, bounded at 30 s) until the server says it is draining.
+    pub(crate) async fn wait_draining(&self) {
+        for _ in 0..3000 {
+            let v: serde_json::Value = reqwest::get(self.url("/readyz")).await.unwrap().json().await.unwrap();
+            if v["error"]["kind"] == "draining" {
+                return;
+            }
+            tokio::time::sleep(Duration::from_millis(10)).await;
+        }
+        panic!("the server never started draining");
     }
 
     /// Let the models load.
