@@ -81,9 +81,10 @@ fn draw_slower_than(run: &Run, area: &DrawingArea<SVGBackend<'_>, plotters::coor
             .label(format!("{name}{late}"))
             .legend(move |(x, y)| PathElement::new([(x, y), (x + 16, y)], color));
     }
-    // Bottom left: the curves fall towards the bottom right, where the late frames are.
+    // Upper right: the curves start at the upper left and their tails (the late frames) run
+    // along the bottom; the upper right is the one corner they leave empty.
     c.configure_series_labels()
-        .position(SeriesLabelPosition::LowerLeft)
+        .position(SeriesLabelPosition::UpperRight)
         .border_style(BLACK)
         .background_style(WHITE.mix(0.9))
         .draw()?;

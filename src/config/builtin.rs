@@ -16,7 +16,10 @@ const EMBEDDED: &[(&str, &[u8])] = &[
 ];
 
 /// Folders the built-in config refers to (the self-test samples), embedded file by file.
-const EMBEDDED_DIRS: &[(&str, &[(&str, &[u8])])] = &[("../models/washers/samples", WASHER_SAMPLES)];
+const EMBEDDED_DIRS: &[(&str, Files)] = &[("../models/washers/samples", WASHER_SAMPLES)];
+
+/// File names and their bytes.
+type Files = &'static [(&'static str, &'static [u8])];
 
 macro_rules! washer_samples {
     ($($f:literal),* $(,)?) => { &[$(($f, include_bytes!(concat!("../../models/washers/samples/", $f)))),*] };

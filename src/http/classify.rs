@@ -24,7 +24,6 @@ use super::error::{ApiError, ErrorKind};
 use super::multipart;
 use super::state::{AppState, ServedModel, find};
 use crate::model::top_k;
-use crate::preprocess::decode;
 use crate::preprocess::pool::CpuPool;
 
 /// The request header that may shorten the server's deadline, in milliseconds.
@@ -269,14 +268,19 @@ async fn classify_one(
     until: Instant,
     may_decode_here: bool,
 ) -> Result<Classified, ApiError> {
-    // A small single frame is decoded here: handing it to a pool thread and back would cost
+    // A single frame's header is read here, once (under the same panic guard as a decode): a
+    // frame the limits refuse never takes a decode thread, and its size decides where it is
+    // decoded. A small one is decoded here: handing it to a pool thread and back would cost
     // more CPU (two thread wake-ups) than the decode itself. Larger ones go to the pool, so
-    // that a big JPEG never holds an HTTP thread.
-    let small =
-        may_decode_here && decode::header_pixels(&image).is_some_and(|p| p <= state.limits.decode_inline_pixels);
-    let prepared = if small {
+    // that a big JPEG never holds an HTTP thread. A burst's parts all go to the pool as they are.
+    let probe = if may_decode_here { Some(CpuPool::run_here(|| m.pipeline.probe(&image))??) } else { None };
+    let prepared = if let Some(p) = probe.filter(|p| p.pixels() <= state.limits.decode_inline_pixels) {
         m.metrics.decoded_inline.inc();
-        CpuPool::run_here(|| m.pipeline.run(&image))??
+        CpuPool::run_here(|| m.pipeline.run_probed(&image, &p))??
+    } else if let Some(p) = probe {
+        m.metrics.decoded_pool.inc();
+        let pipeline = m.pipeline.clone();
+        state.pool.run(move || pipeline.run_probed(&image, &p)).await??
     } else {
         m.metrics.decoded_pool.inc();
         let pipeline = m.pipeline.clone();

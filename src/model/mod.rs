@@ -270,6 +270,39 @@ pub fn top_k(scores: &[f32], k: usize) -> Vec<usize> {
 }
 
 #[cfg(test)]
+impl Model {
+    /// A model over a test engine `plan`: one float input of `input_len` values (1 x 1 x 1 x
+    /// `input_len`, NCHW), `classes` scores used as they are, stacked passes as `stacked` says.
+    pub(crate) fn stub(plan: Arc<dyn Planned>, input_len: u32, classes: usize, stacked: bool) -> Model {
+        let contract = Contract {
+            input_name: "x".into(),
+            input_shape: vec!["N".into(), "1".into(), "1".into(), input_len.to_string()],
+            layout: Layout::Nchw,
+            channels: 1,
+            height: 1,
+            width: input_len,
+            input_type: InputType::Float32,
+            batch: BatchAxis::Dynamic("N".into()),
+            output_name: "y".into(),
+            output_shape: vec!["N".into(), classes.to_string()],
+            classes,
+            scores: ScoreTransform::AsIs,
+            ends_in: None,
+        };
+        Model {
+            name: "stub".into(),
+            version: "0".into(),
+            labels: (0..classes).map(|i| i.to_string()).collect(),
+            contract,
+            file: "stub.onnx".into(),
+            load_time: Duration::ZERO,
+            stacking: Stacking { stacked, ..Stacking::single("config") },
+            plan,
+        }
+    }
+}
+
+#[cfg(test)]
 mod tests {
     use super::*;
 
@@ -302,38 +335,5 @@ mod tests {
         assert_eq!(top_k(&[0.1, 0.5, 0.2, 0.5], 3), vec![1, 3, 2]);
         assert_eq!(top_k(&[0.1, 0.5], 9), vec![1, 0]);
         assert_eq!(top_k(&[f32::NAN, 0.5], 1).len(), 1);
-    }
-}
-
-#[cfg(test)]
-impl Model {
-    /// A model over a test engine `plan`: one float input of `input_len` values (1 x 1 x 1 x
-    /// `input_len`, NCHW), `classes` scores used as they are, stacked passes as `stacked` says.
-    pub(crate) fn stub(plan: Arc<dyn Planned>, input_len: u32, classes: usize, stacked: bool) -> Model {
-        let contract = Contract {
-            input_name: "x".into(),
-            input_shape: vec!["N".into(), "1".into(), "1".into(), input_len.to_string()],
-            layout: Layout::Nchw,
-            channels: 1,
-            height: 1,
-            width: input_len,
-            input_type: InputType::Float32,
-            batch: BatchAxis::Dynamic("N".into()),
-            output_name: "y".into(),
-            output_shape: vec!["N".into(), classes.to_string()],
-            classes,
-            scores: ScoreTransform::AsIs,
-            ends_in: None,
-        };
-        Model {
-            name: "stub".into(),
-            version: "0".into(),
-            labels: (0..classes).map(|i| i.to_string()).collect(),
-            contract,
-            file: "stub.onnx".into(),
-            load_time: Duration::ZERO,
-            stacking: Stacking { stacked, ..Stacking::single("config") },
-            plan,
-        }
     }
 }

@@ -28,55 +28,65 @@ pub struct FrameLimits {
     pub min_side: u32,
 }
 
-/// The pixel count (width x height) the image's header declares, read without decoding any
-/// pixels; `None` when the bytes are not an image this build reads, or the header is
-/// broken (the full decode then says what is wrong).
-pub fn header_pixels(bytes: &[u8]) -> Option<u64> {
-    let reader = ImageReader::new(Cursor::new(bytes)).with_guessed_format().ok()?;
-    reader.format()?;
-    let (w, h) = reader.into_dimensions().ok()?;
-    Some(u64::from(w) * u64::from(h))
+/// What a frame's header says, read once per frame before any pixel is decoded: the format
+/// (sniffed from the bytes) and the size, with the format's own refusals (a truncated or
+/// YCCK JPEG) and the size limits already applied. The HTTP side decides from it where the
+/// frame is decoded; [`decode`] then uses its format instead of sniffing again.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Probe {
+    /// The sniffed format.
+    pub format: ImageFormat,
+    /// Width as stored (before EXIF orientation).
+    pub width: u32,
+    /// Height as stored.
+    pub height: u32,
 }
 
-/// Decode `bytes`, applying EXIF orientation when asked and dropping alpha.
+impl Probe {
+    /// Width x height.
+    pub fn pixels(&self) -> u64 {
+        u64::from(self.width) * u64::from(self.height)
+    }
+}
+
+/// Read and check a frame's header.
 ///
 /// # Errors
-/// `Empty`, `BadImage` (not an image, truncated, corrupt), `Unsupported` (a recognised format
-/// this build cannot decode), `TooLarge` (more than `max_pixels` pixels) or `TooSmall`.
-pub fn decode(bytes: &[u8], limits: FrameLimits, orientation: Orientation) -> Result<Frame, PreprocessError> {
-    let max_pixels = limits.max_pixels;
+/// `Empty`, `BadImage` (not an image, a broken header, a truncated JPEG), `Unsupported` (a
+/// YCCK JPEG, or a recognised format this build cannot decode), `TooLarge`, `TooSmall`.
+pub fn probe(bytes: &[u8], limits: FrameLimits) -> Result<Probe, PreprocessError> {
     if bytes.is_empty() {
         return Err(PreprocessError::Empty);
     }
-    // A Cursor over memory cannot fail to read; an error here is still answered, not unwrapped.
-    let mut reader = ImageReader::new(Cursor::new(bytes))
-        .with_guessed_format()
-        .map_err(|e| PreprocessError::BadImage(e.to_string()))?;
-    match reader.format() {
-        None => {
+    let format = image::guess_format(bytes).map_err(|_| {
+        PreprocessError::BadImage("not a recognised image format (expected JPEG, PNG, BMP, TIFF or WebP)".into())
+    })?;
+    if format == ImageFormat::Jpeg {
+        // The JPEG decoder fills a truncated scan with grey and reports success; a cut-off
+        // frame (a dropped camera connection) must not be classified as if it were whole.
+        if !ends_with_eoi(bytes) {
             return Err(PreprocessError::BadImage(
-                "not a recognised image format (expected JPEG, PNG, BMP, TIFF or WebP)".into(),
+                "truncated JPEG: the data does not end with the end-of-image marker (FF D9)".into(),
             ));
         }
-        Some(ImageFormat::Jpeg) => {
-            // The JPEG decoder fills a truncated scan with grey and reports success; a cut-off
-            // frame (a dropped camera connection) must not be classified as if it were whole.
-            if !ends_with_eoi(bytes) {
-                return Err(PreprocessError::BadImage(
-                    "truncated JPEG: the data does not end with the end-of-image marker (FF D9)".into(),
-                ));
-            }
-            if is_adobe_ycck(bytes) {
-                return Err(PreprocessError::Unsupported(
-                    "Adobe YCCK JPEG (4-channel YCbCr + K): this build's JPEG decoder inverts its colours \
-                     (a known upstream bug), so it is refused rather than classified wrongly; \
-                     send RGB, grayscale or plain CMYK JPEG, or PNG/TIFF"
-                        .into(),
-                ));
-            }
+        if is_adobe_ycck(bytes) {
+            return Err(PreprocessError::Unsupported(
+                "Adobe YCCK JPEG (4-channel YCbCr + K): this build's JPEG decoder inverts its colours \
+                 (a known upstream bug), so it is refused rather than classified wrongly; \
+                 send RGB, grayscale or plain CMYK JPEG, or PNG/TIFF"
+                    .into(),
+            ));
         }
-        Some(_) => {}
     }
+    let (width, height) =
+        reader(bytes, format, limits.max_pixels).into_dimensions().map_err(|e| classify(e, limits.max_pixels))?;
+    check_size(width, height, limits)?;
+    Ok(Probe { format, width, height })
+}
+
+/// A reader of `format` over `bytes`, with the allocation limits every decode runs under.
+fn reader(bytes: &[u8], format: ImageFormat, max_pixels: u64) -> ImageReader<Cursor<&[u8]>> {
+    let mut reader = ImageReader::with_format(Cursor::new(bytes), format);
     let side = u32::try_from(max_pixels).unwrap_or(u32::MAX);
     let mut lim = Limits::default();
     lim.max_image_width = Some(side);
@@ -84,10 +94,24 @@ pub fn decode(bytes: &[u8], limits: FrameLimits, orientation: Orientation) -> Re
     // 16-bit RGBA is the widest decode target: 8 bytes a pixel, plus decoder scratch.
     lim.max_alloc = Some(max_pixels.saturating_mul(8).saturating_add(64 << 20));
     reader.limits(lim);
+    reader
+}
 
-    let mut decoder = reader.into_decoder().map_err(|e| classify(e, max_pixels))?;
-    let (w, h) = decoder.dimensions();
-    check_size(w, h, limits)?;
+/// Decode `bytes`, whose header [`probe`] read, applying EXIF orientation when asked and
+/// dropping alpha.
+///
+/// # Errors
+/// `BadImage` (corrupt data), `Unsupported`, `TooLarge` (the decoder's allocation limit).
+pub fn decode(
+    bytes: &[u8],
+    probe: &Probe,
+    max_pixels: u64,
+    orientation: Orientation,
+) -> Result<Frame, PreprocessError> {
+    let mut decoder = reader(bytes, probe.format, max_pixels).into_decoder().map_err(|e| classify(e, max_pixels))?;
+    if decoder.dimensions() != (probe.width, probe.height) {
+        return Err(PreprocessError::BadImage("the header's size changed between reads".into()));
+    }
     let exif = match orientation {
         Orientation::Exif => Some(decoder.orientation().map_err(|e| classify(e, max_pixels))?),
         Orientation::Ignore => None,
@@ -189,6 +213,12 @@ mod tests {
         }
     }
 
+    /// Probe, then decode: the two reads every frame gets.
+    fn decode(bytes: &[u8], limits: FrameLimits, o: Orientation) -> Result<Frame, PreprocessError> {
+        let p = probe(bytes, limits)?;
+        super::decode(bytes, &p, limits.max_pixels, o)
+    }
+
     fn png(w: u32, h: u32) -> Vec<u8> {
         let img = RgbImage::from_fn(w, h, |x, y| image::Rgb([x as u8, y as u8, 7]));
         let mut out = Vec::new();
@@ -238,23 +268,24 @@ mod tests {
     }
 
     #[test]
-    fn header_pixels_reads_the_declared_size_only() {
-        assert_eq!(header_pixels(&png(40, 30)), Some(1200));
+    fn the_probe_reads_format_and_size_from_the_header_only() {
+        let p = probe(&png(40, 30), lim(1200)).unwrap();
+        assert_eq!((p.format, p.width, p.height, p.pixels()), (ImageFormat::Png, 40, 30, 1200));
         let img = RgbImage::from_fn(64, 48, |x, y| image::Rgb([x as u8, y as u8, 7]));
         let mut jpeg = Vec::new();
         img.write_to(&mut Cursor::new(&mut jpeg), ImageFormat::Jpeg).unwrap();
-        assert_eq!(header_pixels(&jpeg), Some(64 * 48));
-        // A header claiming 60000 x 60000 is read, not decoded: the caller sends it to the pool,
-        // where the full decode refuses it.
+        assert_eq!(probe(&jpeg, lim(1 << 20)).unwrap().pixels(), 64 * 48);
+        // A header claiming 60000 x 60000 is refused from the header: no pixel is decoded and
+        // no decode thread is used for it.
         let mut p = png(1, 1);
         p[16..20].copy_from_slice(&60000u32.to_be_bytes());
         p[20..24].copy_from_slice(&60000u32.to_be_bytes());
         let crc = crc32(&p[12..29]);
         p[29..33].copy_from_slice(&crc.to_be_bytes());
-        assert_eq!(header_pixels(&p), Some(3_600_000_000));
-        assert_eq!(header_pixels(b"not an image"), None);
-        assert_eq!(header_pixels(&png(40, 30)[..12]), None);
-        assert_eq!(header_pixels(&[]), None);
+        assert!(matches!(probe(&p, lim(40_000_000)), Err(PreprocessError::TooLarge { .. })), "{:?}", probe(&p, lim(1)));
+        assert!(matches!(probe(b"not an image", lim(1000)), Err(PreprocessError::BadImage(_))));
+        assert!(matches!(probe(&png(40, 30)[..12], lim(1000)), Err(PreprocessError::BadImage(_))));
+        assert!(matches!(probe(&[], lim(1000)), Err(PreprocessError::Empty)));
     }
 
     #[test]

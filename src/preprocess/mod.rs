@@ -239,9 +239,36 @@ impl Pipeline {
         self.run_inner(bytes, true)
     }
 
+    /// Read and check a frame's header (format, size, limits) without decoding it.
+    ///
+    /// # Errors
+    /// See [`decode::probe`].
+    pub fn probe(&self, bytes: &[u8]) -> Result<decode::Probe, PreprocessError> {
+        decode::probe(bytes, self.limits)
+    }
+
+    /// As [`Pipeline::run`], for a frame whose header `probe` already read.
+    ///
+    /// # Errors
+    /// See [`PreprocessError`].
+    pub fn run_probed(&self, bytes: &[u8], probe: &decode::Probe) -> Result<Prepared, PreprocessError> {
+        self.prepare(bytes, probe, false, Instant::now())
+    }
+
     fn run_inner(&self, bytes: &[u8], keep_canvas: bool) -> Result<Prepared, PreprocessError> {
         let t0 = Instant::now();
-        let frame = decode::decode(bytes, self.limits, self.cfg.orientation)?;
+        let probe = decode::probe(bytes, self.limits)?;
+        self.prepare(bytes, &probe, keep_canvas, t0)
+    }
+
+    fn prepare(
+        &self,
+        bytes: &[u8],
+        probe: &decode::Probe,
+        keep_canvas: bool,
+        t0: Instant,
+    ) -> Result<Prepared, PreprocessError> {
+        let frame = decode::decode(bytes, probe, self.limits.max_pixels, self.cfg.orientation)?;
         let t1 = Instant::now();
         let source_size = frame.size();
         let (tensor, canvas) = match frame {

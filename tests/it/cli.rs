@@ -71,10 +71,10 @@ fn serve_from_any_folder_answers_and_exits_0_on_sigterm() {
     rt.block_on(async {
         let c = reqwest::Client::new();
         for _ in 0..600 {
-            if let Ok(r) = c.get(format!("{base}/readyz")).send().await {
-                if r.status() == 200 {
-                    break;
-                }
+            if let Ok(r) = c.get(format!("{base}/readyz")).send().await
+                && r.status() == 200
+            {
+                break;
             }
             tokio::time::sleep(Duration::from_millis(100)).await;
         }

@@ -169,10 +169,10 @@ impl TestServer {
     pub(crate) async fn wait_ready(&self) {
         let client = reqwest::Client::new();
         for _ in 0..600 {
-            if let Ok(r) = client.get(self.url("/readyz")).send().await {
-                if r.status() == 200 {
-                    return;
-                }
+            if let Ok(r) = client.get(self.url("/readyz")).send().await
+                && r.status() == 200
+            {
+                return;
             }
             tokio::time::sleep(Duration::from_millis(100)).await;
         }
