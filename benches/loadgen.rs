@@ -101,7 +101,8 @@ fn main() {
 
     let loaded = Loaded::load(m, &LoadOptions::single()).unwrap();
     let (model, lanes) = (Arc::clone(&loaded.model), loaded.lanes);
-    let tensors: Vec<Vec<f32>> = frames.iter().map(|f| loaded.pipeline.run(&f.1).unwrap().tensor).collect();
+    let tensors: Vec<lineside::model::Tensor> =
+        frames.iter().map(|f| loaded.pipeline.run(&f.1).unwrap().tensor).collect();
     let e = engine::run(
         &model,
         &tensors,

@@ -61,7 +61,7 @@ struct Bundle {
     size: u32,
     config: PathBuf,
     png: Vec<u8>,
-    tensor: Vec<f32>,
+    tensor: lineside::model::Tensor,
 }
 
 /// A config for `onnx` at `size`, with `lanes` lanes of `threads` threads and `batch_cap`.

@@ -9,7 +9,7 @@ use std::time::{Duration, Instant};
 
 use super::{BatchError, Batcher, BatcherGuard, BatchingConfig, Lanes};
 use crate::metrics::Metrics;
-use crate::model::{EngineKind, EngineState, Input, Model, Planned, RunError, StackMode};
+use crate::model::{EngineKind, EngineState, Input, Model, Planned, RunError, StackMode, Tensor};
 
 const LEN: u32 = 4;
 const CAP: usize = 8;
@@ -83,10 +83,10 @@ fn start(stub: &Arc<Stub>) -> (Batcher, BatcherGuard, Metrics) {
     (b, g, metrics)
 }
 
-fn image(id: u32) -> Vec<f32> {
+fn image(id: u32) -> Tensor {
     let mut x = vec![0.0; LEN as usize];
     x[0] = id as f32;
-    x
+    Tensor::F32(x)
 }
 
 fn later() -> Instant {

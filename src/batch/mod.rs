@@ -34,7 +34,7 @@ use crossbeam_channel::{Receiver, Sender, TrySendError, bounded};
 use tokio::sync::oneshot;
 
 use crate::metrics::ModelMetrics;
-use crate::model::{Model, StackMode, StateWrap};
+use crate::model::{Model, StackMode, StateWrap, Tensor};
 
 /// How many inference lanes a model gets.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -88,8 +88,8 @@ pub enum BatchError {
 
 /// One image waiting for inference.
 pub struct Job {
-    /// Input tensor, in the model's layout.
-    pub tensor: Vec<f32>,
+    /// Input tensor, in the model's layout and element type.
+    pub tensor: Tensor,
     /// When it joined the backlog.
     pub enqueued: Instant,
     /// Past this instant it is answered `DeadlineExpired` instead of run.
@@ -290,7 +290,7 @@ impl Batcher {
     /// # Errors
     /// `QueueFull` at once when the backlog is full; `ShuttingDown`; `DeadlineExpired`;
     /// `Inference`.
-    pub async fn infer(&self, tensor: Vec<f32>, deadline: Instant) -> Result<Scored, BatchError> {
+    pub async fn infer(&self, tensor: Tensor, deadline: Instant) -> Result<Scored, BatchError> {
         if self.closed.load(Ordering::SeqCst) {
             return Err(BatchError::ShuttingDown);
         }
@@ -314,7 +314,7 @@ impl Batcher {
     ///
     /// # Errors
     /// `ShuttingDown` when the batcher closes first; `Inference`.
-    pub async fn infer_background(&self, tensor: Vec<f32>) -> Result<Scored, BatchError> {
+    pub async fn infer_background(&self, tensor: Tensor) -> Result<Scored, BatchError> {
         let _room = self.background_room.acquire().await.map_err(|_| BatchError::ShuttingDown)?;
         if self.closed.load(Ordering::SeqCst) {
             return Err(BatchError::ShuttingDown);

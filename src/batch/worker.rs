@@ -224,7 +224,7 @@ impl Lane {
         for job in pass.iter().filter(|_| live) {
             self.metrics.backlog_wait.observe((now - job.enqueued).as_secs_f64());
         }
-        let inputs: Vec<&[f32]> = pass.iter().map(|j| j.tensor.as_slice()).collect();
+        let inputs: Vec<_> = pass.iter().map(|j| j.tensor.input()).collect();
         let result = self.guarded(|runner| runner.run_pass(&inputs));
         let infer = now.elapsed();
         self.metrics.inference_duration.observe(started.elapsed().as_secs_f64());

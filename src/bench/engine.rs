@@ -5,7 +5,7 @@ use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
-use crate::model::Model;
+use crate::model::{Model, Tensor};
 
 /// What the engine did in the measured window.
 #[derive(Debug, Clone)]
@@ -31,7 +31,7 @@ impl EngineRun {
 /// When an engine state or a lane's thread pool cannot be made, or a run fails.
 pub fn run(
     model: &Arc<Model>,
-    tensors: &[Vec<f32>],
+    tensors: &[Tensor],
     lanes: usize,
     threads: usize,
     pass: usize,
@@ -52,7 +52,7 @@ pub fn run(
                 let size = if runner.stacks() { pass.max(1) } else { 1 };
                 let mut n = i;
                 while !stop.load(Ordering::Relaxed) {
-                    let inputs: Vec<&[f32]> = (n..n + size).map(|k| tensors[k % tensors.len()].as_slice()).collect();
+                    let inputs: Vec<_> = (n..n + size).map(|k| tensors[k % tensors.len()].input()).collect();
                     let t = Instant::now();
                     std::hint::black_box(runner.run_pass(&inputs)?);
                     let done = Instant::now();

@@ -224,8 +224,8 @@ use crate::millis as ms;
 /// image by image, as the engine says), after the warm-up `load` already did.
 fn time_runs(model: &Model, images: usize, repeats: usize) -> Option<Duration> {
     let mut runner = model.runner().ok()?;
-    let input = vec![0.5f32; model.input_len()];
-    let pass = vec![input.as_slice(); images];
+    let input = model.constant_input(0.5);
+    let pass = vec![input.input(); images];
     let mut times = Vec::with_capacity(repeats);
     for _ in 0..repeats {
         let t = Instant::now();

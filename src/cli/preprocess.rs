@@ -58,11 +58,11 @@ pub fn run(args: PreprocessArgs) -> anyhow::Result<Outcome> {
     let prepared = pipeline.run_with_canvas(&bytes).with_context(|| format!("{}", args.image.display()))?;
 
     let shape = contract.input_shape(1);
-    let (dtype, type_name) = match contract.input_type {
-        InputType::Float32 => (npy::Dtype::F32, "float32"),
-        InputType::Uint8 => (npy::Dtype::U8, "uint8"),
+    let type_name = match contract.input_type {
+        InputType::Float32 => "float32",
+        InputType::Uint8 => "uint8",
     };
-    std::fs::write(&args.out, npy::encode(&shape, &prepared.tensor, dtype))
+    std::fs::write(&args.out, npy::encode(&shape, &prepared.tensor))
         .with_context(|| format!("cannot write {}", args.out.display()))?;
     if let Some(path) = &args.preview {
         let img =
@@ -70,7 +70,7 @@ pub fn run(args: PreprocessArgs) -> anyhow::Result<Outcome> {
         img.save_with_format(path, image::ImageFormat::Png)
             .with_context(|| format!("cannot write the preview {}", path.display()))?;
     }
-    let t = &prepared.tensor;
+    let t = prepared.tensor.to_f32();
     let (lo, hi) = t.iter().fold((f32::INFINITY, f32::NEG_INFINITY), |(a, b), &v| (a.min(v), b.max(v)));
     let mean = t.iter().map(|&v| f64::from(v)).sum::<f64>() / t.len() as f64;
     let (sw, sh) = prepared.source_size;

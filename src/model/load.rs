@@ -155,7 +155,7 @@ fn load_inner(cfg: &Spec, want_report: bool) -> anyhow::Result<(Model, Option<Re
         plan,
     };
     // Warm the plan once (first runs allocate scratch space) and prove it runs.
-    let zeros = vec![0.0f32; model.input_len()];
+    let zeros = model.constant_input(0.0);
     model
         .runner()
         .and_then(|mut r| r.run(&zeros))
@@ -233,8 +233,8 @@ fn decide_stacking_inner(model: &Model, mode: StackMode, cap: usize) -> anyhow::
         StackMode::Auto => {}
     }
     let mut runner = model.runner()?;
-    let input = vec![0.5f32; model.input_len()];
-    let pass = vec![input.as_slice(); cap];
+    let input = model.constant_input(0.5);
+    let pass = vec![input.input(); cap];
     let mut time = |stacked: bool| -> anyhow::Result<f64> {
         let t = Instant::now();
         runner.run_pass_as(&pass, stacked).with_context(|| {

@@ -21,7 +21,7 @@ use std::sync::Arc;
 use std::time::Duration;
 
 pub use check::{BatchAxis, Contract, Expect, InputType, Layout, ScoreTransform, ScoresMode};
-pub use engine::{EngineKind, EngineState, Input, Planned, StateWrap};
+pub use engine::{EngineKind, EngineState, Input, Planned, StateWrap, Tensor};
 pub use load::{Library, Spec, StackMode};
 
 /// A loaded, checked and planned model, shared by every lane that serves it.
@@ -103,6 +103,12 @@ pub enum RunError {
         /// Values given.
         found: usize,
     },
+    /// The input's element type is not the model's (a bug upstream of the engine).
+    #[error("the model takes {expected} input")]
+    InputType {
+        /// The model's element type.
+        expected: &'static str,
+    },
     /// The engine failed.
     #[error("engine: {0}")]
     Engine(String),
@@ -127,6 +133,15 @@ impl Model {
     /// Whether the engine and the model's batch axis allow stacking at all.
     pub fn can_stack(&self) -> bool {
         self.plan.can_stack() && self.contract.batch != BatchAxis::Fixed(1)
+    }
+
+    /// One image's input with every value `level` on the 0..1 scale of a normalised float
+    /// input (a uint8 model gets `level x 255` as bytes): for warm-ups and timings.
+    pub fn constant_input(&self, level: f32) -> Tensor {
+        match self.contract.input_type {
+            InputType::Float32 => Tensor::F32(vec![level; self.input_len()]),
+            InputType::Uint8 => Tensor::U8(vec![(level * 255.0).round().clamp(0.0, 255.0) as u8; self.input_len()]),
+        }
     }
 
     /// A fresh single-threaded engine state over the shared plan.
@@ -182,7 +197,7 @@ impl Runner {
     ///
     /// # Errors
     /// A wrong input length, or an engine failure.
-    pub fn run(&mut self, input: &[f32]) -> Result<Vec<f32>, RunError> {
+    pub fn run<'a>(&mut self, input: impl Into<Input<'a>>) -> Result<Vec<f32>, RunError> {
         self.run_raw(input).map(|raw| self.transform.apply(&raw))
     }
 
@@ -190,8 +205,8 @@ impl Runner {
     ///
     /// # Errors
     /// A wrong input length, or an engine failure.
-    pub fn run_raw(&mut self, input: &[f32]) -> Result<Vec<f32>, RunError> {
-        self.run_stacked_raw(&[input]).map(|mut v| v.swap_remove(0))
+    pub fn run_raw<'a>(&mut self, input: impl Into<Input<'a>>) -> Result<Vec<f32>, RunError> {
+        self.run_stacked_raw(&[input.into()]).map(|mut v| v.swap_remove(0))
     }
 
     /// Run several images as one stacked tensor when the model's passes are stacked, else
@@ -199,7 +214,7 @@ impl Runner {
     ///
     /// # Errors
     /// A wrong input length, or an engine failure (for the whole pass).
-    pub fn run_pass(&mut self, inputs: &[&[f32]]) -> Result<Vec<Vec<f32>>, RunError> {
+    pub fn run_pass(&mut self, inputs: &[Input<'_>]) -> Result<Vec<Vec<f32>>, RunError> {
         self.run_pass_as(inputs, self.stacks)
     }
 
@@ -208,13 +223,13 @@ impl Runner {
     ///
     /// # Errors
     /// As [`Runner::run_pass`].
-    pub fn run_pass_as(&mut self, inputs: &[&[f32]], stacked: bool) -> Result<Vec<Vec<f32>>, RunError> {
+    pub fn run_pass_as(&mut self, inputs: &[Input<'_>], stacked: bool) -> Result<Vec<Vec<f32>>, RunError> {
         let raw = if stacked {
             self.run_stacked_raw(inputs)?
         } else {
             let mut out = Vec::with_capacity(inputs.len());
             for x in inputs {
-                out.push(self.run_stacked_raw(&[x])?.swap_remove(0));
+                out.push(self.run_stacked_raw(std::slice::from_ref(x))?.swap_remove(0));
             }
             out
         };
@@ -226,19 +241,22 @@ impl Runner {
         self.stacks
     }
 
-    fn run_stacked_raw(&mut self, inputs: &[&[f32]]) -> Result<Vec<Vec<f32>>, RunError> {
+    fn run_stacked_raw(&mut self, inputs: &[Input<'_>]) -> Result<Vec<Vec<f32>>, RunError> {
         let n = inputs.len();
         if let Some(bad) = inputs.iter().find(|x| x.len() != self.image_len) {
             return Err(RunError::InputSize { expected: self.image_len, found: bad.len() });
         }
-        let raw = match self.input_type {
-            InputType::Float32 if n == 1 => self.state.run(Input::F32(inputs[0]), 1)?,
-            InputType::Float32 => self.state.run(Input::F32(&inputs.concat()), n)?,
-            // The pipeline gives raw pixel values (exact integers 0..=255) for uint8 models.
-            InputType::Uint8 => {
-                let bytes: Vec<u8> =
-                    inputs.iter().flat_map(|x| x.iter()).map(|&v| v.round().clamp(0.0, 255.0) as u8).collect();
-                self.state.run(Input::U8(&bytes), n)?
+        let raw = match (self.input_type, inputs) {
+            (_, [one]) if one.matches(self.input_type) => self.state.run(*one, 1)?,
+            (InputType::Float32, _) => {
+                let all: Option<Vec<&[f32]>> =
+                    inputs.iter().map(|x| if let Input::F32(v) = x { Some(*v) } else { None }).collect();
+                self.state.run(Input::F32(&all.ok_or(RunError::InputType { expected: "float32" })?.concat()), n)?
+            }
+            (InputType::Uint8, _) => {
+                let all: Option<Vec<&[u8]>> =
+                    inputs.iter().map(|x| if let Input::U8(v) = x { Some(*v) } else { None }).collect();
+                self.state.run(Input::U8(&all.ok_or(RunError::InputType { expected: "uint8" })?.concat()), n)?
             }
         };
         if raw.len() != n * self.classes {

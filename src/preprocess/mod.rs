@@ -20,7 +20,7 @@ pub use settings::{Channels, Filter, Orientation, PreprocessConfig, ResizeMode, 
 
 use std::time::{Duration, Instant};
 
-use crate::model::{Contract, InputType, Layout};
+use crate::model::{Contract, InputType, Layout, Tensor};
 use decode::FrameLimits;
 use resize::{Plane, Window};
 
@@ -118,8 +118,8 @@ pub enum PreprocessError {
 /// One image, ready for the engine.
 #[derive(Debug)]
 pub struct Prepared {
-    /// The input tensor for one image, in the model's layout.
-    pub tensor: Vec<f32>,
+    /// The input tensor for one image, in the model's layout and element type.
+    pub tensor: Tensor,
     /// Width and height of the decoded frame (after orientation).
     pub source_size: (u32, u32),
     /// Time spent decoding.
@@ -197,6 +197,7 @@ pub struct Pipeline {
     width: u32,
     height: u32,
     layout: Layout,
+    input_type: InputType,
     limits: FrameLimits,
 }
 
@@ -214,7 +215,9 @@ impl Pipeline {
             (cfg.divisor, cfg.mean, cfg.std) = (1.0, vec![0.0; n], vec![1.0; n]);
         }
         let limits = FrameLimits { max_pixels, min_side: cfg.min_side };
-        Ok(Pipeline { cfg, width: contract.width, height: contract.height, layout: contract.layout, limits })
+        let (width, height, layout, input_type) =
+            (contract.width, contract.height, contract.layout, contract.input_type);
+        Ok(Pipeline { cfg, width, height, layout, input_type, limits })
     }
 
     /// The preprocessing settings in force (after a uint8 model's override).
@@ -328,9 +331,20 @@ impl Pipeline {
         Ok(out)
     }
 
-    fn normalise<T: normalize::Level>(&self, canvas: &Plane<T>) -> Vec<f32> {
+    fn normalise<T: normalize::Level>(&self, canvas: &Plane<T>) -> Tensor {
         let c = &self.cfg;
-        normalize::to_tensor(
+        if self.input_type == InputType::Uint8 {
+            let (data, channels) = (&canvas.data, canvas.channels);
+            return Tensor::U8(normalize::to_bytes(
+                data,
+                channels,
+                canvas.width,
+                canvas.height,
+                c.channels,
+                self.layout,
+            ));
+        }
+        Tensor::F32(normalize::to_tensor(
             &canvas.data,
             canvas.channels,
             canvas.width,
@@ -340,7 +354,7 @@ impl Pipeline {
             c.divisor,
             &c.mean,
             &c.std,
-        )
+        ))
     }
 }
 

@@ -23,16 +23,68 @@ pub fn luma_f32(rgb: &[f32]) -> Vec<f32> {
 pub trait Level: Copy {
     /// The level as a float.
     fn level(self) -> f32;
+    /// The level as a byte (a uint8 model's input): 8-bit samples as they are, float levels
+    /// (16-bit frames) rounded and clamped.
+    fn byte(self) -> u8;
 }
 impl Level for u8 {
     fn level(self) -> f32 {
         f32::from(self)
+    }
+    fn byte(self) -> u8 {
+        self
     }
 }
 impl Level for f32 {
     fn level(self) -> f32 {
         self
     }
+    fn byte(self) -> u8 {
+        self.round().clamp(0.0, 255.0) as u8
+    }
+}
+
+/// Source sample for each model channel: a gray source feeds every channel, BGR swaps.
+fn channel_order(channels: Channels, src_channels: usize) -> [usize; 3] {
+    match (channels, src_channels) {
+        (_, 1) => [0, 0, 0],
+        (Channels::Bgr, _) => [2, 1, 0],
+        _ => [0, 1, 2],
+    }
+}
+
+/// A uint8 model's tensor for one image: the pixels as bytes, only reordered into the
+/// model's channel order and layout (no normalisation: the model does its own).
+pub fn to_bytes<T: Level>(
+    pixels: &[T],
+    src_channels: usize,
+    width: u32,
+    height: u32,
+    channels: Channels,
+    layout: Layout,
+) -> Vec<u8> {
+    let n = channels.count();
+    let plane = width as usize * height as usize;
+    let order = channel_order(channels, src_channels);
+    let mut out = vec![0u8; plane * n];
+    match layout {
+        Layout::Nchw => {
+            for c in 0..n {
+                let dst = &mut out[c * plane..(c + 1) * plane];
+                for (v, px) in dst.iter_mut().zip(pixels.chunks_exact(src_channels)) {
+                    *v = px[order[c]].byte();
+                }
+            }
+        }
+        Layout::Nhwc => {
+            for (dst, px) in out.chunks_exact_mut(n).zip(pixels.chunks_exact(src_channels)) {
+                for c in 0..n {
+                    dst[c] = px[order[c]].byte();
+                }
+            }
+        }
+    }
+    out
 }
 
 /// Build the tensor for one image from interleaved pixels with `src_channels` samples each
@@ -54,12 +106,7 @@ pub fn to_tensor<T: Level>(
 ) -> Vec<f32> {
     let n = channels.count();
     let plane = width as usize * height as usize;
-    // Source sample for each model channel.
-    let order: [usize; 3] = match (channels, src_channels) {
-        (_, 1) => [0, 0, 0],
-        (Channels::Bgr, _) => [2, 1, 0],
-        _ => [0, 1, 2],
-    };
+    let order = channel_order(channels, src_channels);
     // (p / divisor - mean) / std == p * scale + offset, computed once per channel.
     let scale: Vec<f32> = std.iter().map(|s| 1.0 / (divisor * s)).collect();
     let offset: Vec<f32> = mean.iter().zip(std).map(|(m, s)| -m / s).collect();
@@ -112,6 +159,16 @@ mod tests {
         assert_eq!(to_tensor(&px, 3, 2, 1, Channels::Rgb, Layout::Nhwc, 1.0, &id, &one), [1., 2., 3., 4., 5., 6.]);
         assert_eq!(to_tensor(&px, 3, 2, 1, Channels::Bgr, Layout::Nchw, 1.0, &id, &one), [3., 6., 2., 5., 1., 4.]);
         assert_eq!(to_tensor(&px, 3, 2, 1, Channels::Bgr, Layout::Nhwc, 1.0, &id, &one), [3., 2., 1., 6., 5., 4.]);
+    }
+
+    #[test]
+    fn a_uint8_models_bytes_are_only_reordered() {
+        let px = [1u8, 2, 3, 4, 5, 6];
+        assert_eq!(to_bytes(&px, 3, 2, 1, Channels::Rgb, Layout::Nchw), [1, 4, 2, 5, 3, 6]);
+        assert_eq!(to_bytes(&px, 3, 2, 1, Channels::Bgr, Layout::Nhwc), [3, 2, 1, 6, 5, 4]);
+        assert_eq!(to_bytes(&[9u8, 8], 1, 2, 1, Channels::Rgb, Layout::Nhwc), [9, 9, 9, 8, 8, 8]);
+        // Float levels (16-bit frames) are rounded and clamped once.
+        assert_eq!(to_bytes(&[254.6f32, -3.0, 300.0], 1, 3, 1, Channels::Gray, Layout::Nchw), [255, 0, 255]);
     }
 
     #[test]

@@ -5,25 +5,17 @@
 //! `fortran_order` and `shape`, padded with spaces and ended by `\n` so that the data starts
 //! on a 64-byte boundary; then the C-order data.
 
-/// The element types lineside writes.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Dtype {
-    /// Little-endian float32 (`<f4`).
-    F32,
-    /// Unsigned bytes (`|u1`).
-    U8,
-}
+use crate::model::Tensor;
 
-/// Encode `values` with `shape` as `.npy` bytes. Values are converted to `dtype` (for `U8`,
-/// rounded and clamped to 0..255).
+/// Encode one tensor with `shape` as `.npy` bytes: `<f4` for floats, `|u1` for bytes.
 ///
 /// # Panics
-/// Never for a shape whose product is `values.len()`; a mismatch is a caller bug and asserted.
-pub fn encode(shape: &[usize], values: &[f32], dtype: Dtype) -> Vec<u8> {
-    assert_eq!(shape.iter().product::<usize>(), values.len(), "npy: shape does not match the data");
-    let descr = match dtype {
-        Dtype::F32 => "<f4",
-        Dtype::U8 => "|u1",
+/// Never for a shape whose product is the tensor's length; a mismatch is a caller bug and asserted.
+pub fn encode(shape: &[usize], tensor: &Tensor) -> Vec<u8> {
+    assert_eq!(shape.iter().product::<usize>(), tensor.len(), "npy: shape does not match the data");
+    let descr = match tensor {
+        Tensor::F32(_) => "<f4",
+        Tensor::U8(_) => "|u1",
     };
     let dims: Vec<String> = shape.iter().map(usize::to_string).collect();
     // A one-element tuple needs its trailing comma in Python syntax.
@@ -33,14 +25,14 @@ pub fn encode(shape: &[usize], values: &[f32], dtype: Dtype) -> Vec<u8> {
     let unpadded = 10 + header.len() + 1;
     header.push_str(&" ".repeat((64 - unpadded % 64) % 64));
     header.push('\n');
-    let mut out = Vec::with_capacity(10 + header.len() + values.len() * 4);
+    let mut out = Vec::with_capacity(10 + header.len() + tensor.len() * 4);
     out.extend_from_slice(b"\x93NUMPY\x01\x00");
     // The header of a 4-d shape is far below u16::MAX.
     out.extend_from_slice(&(header.len() as u16).to_le_bytes());
     out.extend_from_slice(header.as_bytes());
-    match dtype {
-        Dtype::F32 => values.iter().for_each(|v| out.extend_from_slice(&v.to_le_bytes())),
-        Dtype::U8 => out.extend(values.iter().map(|v| v.round().clamp(0.0, 255.0) as u8)),
+    match tensor {
+        Tensor::F32(values) => values.iter().for_each(|v| out.extend_from_slice(&v.to_le_bytes())),
+        Tensor::U8(values) => out.extend_from_slice(values),
     }
     out
 }
@@ -51,7 +43,7 @@ mod tests {
 
     #[test]
     fn header_is_aligned_and_readable() {
-        let b = encode(&[1, 3, 2, 2], &[0.5; 12], Dtype::F32);
+        let b = encode(&[1, 3, 2, 2], &Tensor::F32(vec![0.5; 12]));
         assert_eq!(&b[..8], b"\x93NUMPY\x01\x00");
         let len = usize::from(u16::from_le_bytes([b[8], b[9]]));
         assert_eq!((10 + len) % 64, 0);
@@ -60,7 +52,8 @@ mod tests {
         assert!(header.ends_with('\n'));
         assert_eq!(b.len(), 10 + len + 12 * 4);
         assert_eq!(&b[10 + len..10 + len + 4], &0.5f32.to_le_bytes());
-        let u = encode(&[2], &[254.6, -3.0], Dtype::U8);
+        let u = encode(&[2], &Tensor::U8(vec![255, 0]));
+        assert!(String::from_utf8_lossy(&u).contains("{'descr': '|u1', 'fortran_order': False, 'shape': (2,), }"));
         assert_eq!(&u[u.len() - 2..], &[255, 0]);
     }
 }

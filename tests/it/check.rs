@@ -93,10 +93,10 @@ fn fixtures_match_onnxruntime_on_the_same_input() {
         .unwrap();
         let model = load::load(&bare(case, side, channels).spec()).unwrap_or_else(|e| panic!("{case}: {e:#}"));
         let n = model.input_len();
-        let x: Vec<f32> = if model.contract.input_type == lineside::model::InputType::Uint8 {
-            (0..n as u64).map(|i| ((i * 7919) % 256) as f32).collect()
+        let x = if model.contract.input_type == lineside::model::InputType::Uint8 {
+            lineside::model::Tensor::U8((0..n as u64).map(|i| ((i * 7919) % 256) as u8).collect())
         } else {
-            (0..n as u64).map(|i| ((i * 7919) % 1000) as f32 / 1000.0).collect()
+            lineside::model::Tensor::F32((0..n as u64).map(|i| ((i * 7919) % 1000) as f32 / 1000.0).collect())
         };
         let ours = model.runner().unwrap().run_raw(&x).unwrap();
         let theirs: Vec<f64> = r["outputs"].as_array().unwrap().iter().map(|v| v.as_f64().unwrap()).collect();

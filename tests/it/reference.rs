@@ -68,7 +68,7 @@ fn preprocessing_matches_pillow_bilinear_exactly() {
     let pipeline = Pipeline::new(m.preprocess.clone(), &model.contract, cfg.server.max_pixels).unwrap();
     let (mut worst, mut total, mut count) = (0i32, 0i64, 0i64);
     for s in samples() {
-        let ours = pipeline.run(&s.bytes).unwrap().tensor;
+        let ours = pipeline.run(&s.bytes).unwrap().tensor.to_f32();
         let px = pillow_pixels(&s.name);
         for (i, p) in px.pixels().enumerate() {
             for c in 0..3 {
