@@ -225,6 +225,22 @@ fn announce(ready_tx: &watch::Sender<Readiness>, served: Arc<Served>, selftest_f
     }
 }
 
+/// The app with every model loaded, self-tested and ready, without a socket or an accept
+/// loop: tests drive it with `tower::ServiceExt::oneshot` where a socket adds nothing.
+/// Dropping the guards stops the lanes.
+///
+/// # Errors
+/// A model that fails to load or its self-test; the decode pool cannot start.
+pub fn ready_app(config: &Config, wrap: Option<&StateWrap>) -> anyhow::Result<(axum::Router, Vec<BatcherGuard>)> {
+    let metrics = Metrics::new();
+    let loaded = load_all(config, &metrics, wrap)?;
+    anyhow::ensure!(loaded.selftest_failures.is_empty(), "self-test failed: {}", loaded.selftest_failures.join("; "));
+    // The sender may go: the receiver keeps the last value, and nothing changes it again.
+    let (_ready_tx, ready_rx) = watch::channel(Readiness::Ready(loaded.served));
+    let state = app_state(config, ready_rx, metrics)?;
+    Ok((crate::http::router(state), loaded.guards))
+}
+
 /// How often the drain looks at the in-flight count.
 const POLL: std::time::Duration = std::time::Duration::from_millis(5);
 /// Longest wait for the last answers and idle connections after the lanes stop.

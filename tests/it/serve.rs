@@ -1,4 +1,6 @@
-//! The HTTP contract of `lineside serve`, against the real server on a loopback port.
+//! The HTTP contract of `lineside serve`: handler behaviour through the router without a
+//! socket (`TestApp`), and what needs a connection (drain, timeouts, shutdown, load gating)
+//! against the real server on a loopback port (`TestServer`).
 
 use std::sync::atomic::Ordering;
 use std::time::{Duration, Instant};
@@ -9,7 +11,7 @@ use sha2::{Digest, Sha256};
 use tokio::io::AsyncWriteExt;
 
 use crate::util::{
-    TestServer, engine_under_test, expect_error, metric, parse_metrics, root, samples, washer_config,
+    TestApp, TestServer, engine_under_test, expect_error, metric, parse_metrics, root, samples, washer_config,
     washer_config_with, washer_config_without_selftest, washer_requests,
 };
 
@@ -91,12 +93,10 @@ fn sample_jpeg() -> Vec<u8> {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn bad_bodies_get_400_with_a_json_error_and_the_server_keeps_serving() {
-    let server = TestServer::start(washer_config()).await;
-    let c = client();
+    let app = TestApp::start(washer_config()).await;
     let jpeg = sample_jpeg();
     // The whole JPEG is fine...
-    let r = c.post(server.url("/classify/washers")).body(jpeg.clone()).send().await.unwrap();
-    assert_eq!(r.status(), 200, "a JPEG of a sample decodes");
+    assert_eq!(app.post("/classify/washers", jpeg.clone()).await.status, 200, "a JPEG of a sample decodes");
     // deterministic "random" bytes (xorshift64), not an image
     let mut x = 0x9e37_79b9_7f4a_7c15u64;
     let noise: Vec<u8> = (0..4096)
@@ -115,59 +115,54 @@ async fn bad_bodies_get_400_with_a_json_error_and_the_server_keeps_serving() {
         ("text", b"{\"image\": \"washer.png\"}".to_vec()),
     ];
     for (what, body) in bodies {
-        let r = c.post(server.url("/classify/washers")).body(body).send().await.unwrap();
-        let msg = expect_error(r, 400, "bad_image").await;
+        let msg = app.post("/classify/washers", body).await.error(400, "bad_image");
         assert!(msg.contains("decode") || msg.contains("empty"), "{what}: {msg}");
     }
     // still serving
     for s in samples().iter().take(3) {
-        let r = c.post(server.url("/classify/washers")).body(s.bytes.clone()).send().await.unwrap();
-        assert_eq!(r.status(), 200);
+        assert_eq!(app.post("/classify/washers", s.bytes.clone()).await.status, 200);
     }
-    assert_eq!(c.get(server.url("/healthz")).send().await.unwrap().status(), 200);
-    server.stop().await.unwrap();
+    assert_eq!(app.get("/healthz").await.status, 200);
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn request_errors_have_precise_statuses() {
-    let server = TestServer::start(washer_config_with(&[
+    let app = TestApp::start(washer_config_with(&[
         ("body_limit_bytes = 16777216", "body_limit_bytes = 1000000"),
         ("max_pixels = 40000000", "max_pixels = 100000"),
     ]))
     .await;
-    let c = client();
     let s = &samples()[0];
-    let post = |path: &str, body: Vec<u8>| c.post(server.url(path)).body(body).send();
+    let post = |path: &'static str, body: Vec<u8>| app.post(path, body);
 
-    let msg = expect_error(post("/classify/bolts", s.bytes.clone()).await.unwrap(), 404, "unknown_model").await;
+    let msg = post("/classify/bolts", s.bytes.clone()).await.error(404, "unknown_model");
     assert!(msg.contains("bolts") && msg.contains("washers"), "{msg}");
-    let msg = expect_error(post("/classify/washers?top=0", s.bytes.clone()).await.unwrap(), 400, "bad_request").await;
+    let msg = post("/classify/washers?top=0", s.bytes.clone()).await.error(400, "bad_request");
     assert!(msg.contains("top"), "{msg}");
-    expect_error(post("/classify/washers?top=x", s.bytes.clone()).await.unwrap(), 400, "bad_request").await;
-    expect_error(post("/classify/washers?topp=2", s.bytes.clone()).await.unwrap(), 400, "bad_request").await;
+    post("/classify/washers?top=x", s.bytes.clone()).await.error(400, "bad_request");
+    post("/classify/washers?topp=2", s.bytes.clone()).await.error(400, "bad_request");
 
-    let v: Value = post("/classify/washers?top=99", s.bytes.clone()).await.unwrap().json().await.unwrap();
+    let v = post("/classify/washers?top=99", s.bytes.clone()).await.json();
     assert_eq!(v["top"].as_array().unwrap().len(), 5, "top above the label count is clamped: {v}");
-    let v: Value = post("/classify/washers?top=all", s.bytes.clone()).await.unwrap().json().await.unwrap();
+    let v = post("/classify/washers?top=all", s.bytes.clone()).await.json();
     let total: f64 = v["top"].as_array().unwrap().iter().map(|t| t["score"].as_f64().unwrap()).sum();
     assert!((total - 1.0).abs() < 1e-4, "probabilities over all labels sum to 1: {total}");
 
     // body over body_limit_bytes
-    let msg = expect_error(post("/classify/washers", vec![0u8; 1_000_001]).await.unwrap(), 413, "too_large").await;
+    let msg = post("/classify/washers", vec![0u8; 1_000_001]).await.error(413, "too_large");
     assert!(msg.contains("body_limit_bytes = 1000000"), "{msg}");
     // 400x300 = 120000 pixels > max_pixels = 100000, read from the header
     let big = image::RgbImage::new(400, 300);
     let mut png = Vec::new();
     big.write_to(&mut std::io::Cursor::new(&mut png), image::ImageFormat::Png).unwrap();
-    let msg = expect_error(post("/classify/washers", png).await.unwrap(), 413, "too_large").await;
+    let msg = post("/classify/washers", png).await.error(413, "too_large");
     assert!(msg.contains("400x300") && msg.contains("max_pixels = 100000"), "{msg}");
     // a recognised but unsupported format (GIF header)
     let gif = b"GIF89a\x01\x00\x01\x00\x80\x00\x00\xff\xff\xff\x00\x00\x00!\xf9\x04\x01\x00\x00\x00\x00,\x00\x00\x00\x00\x01\x00\x01\x00\x00\x02\x02D\x01\x00;".to_vec();
-    expect_error(post("/classify/washers", gif).await.unwrap(), 415, "unsupported_format").await;
+    post("/classify/washers", gif).await.error(415, "unsupported_format");
 
-    expect_error(c.get(server.url("/classify/washers")).send().await.unwrap(), 405, "method_not_allowed").await;
-    expect_error(c.get(server.url("/nowhere")).send().await.unwrap(), 404, "not_found").await;
-    server.stop().await.unwrap();
+    app.get("/classify/washers").await.error(405, "method_not_allowed");
+    app.get("/nowhere").await.error(404, "not_found");
 }
 
 /// A PNG of `w` x `h` mid-gray pixels.
@@ -181,21 +176,20 @@ fn gray_png(w: u32, h: u32) -> Vec<u8> {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn frames_too_small_outside_the_roi_or_ycck_get_their_own_statuses() {
-    let server = TestServer::start(washer_config_without_selftest(&[(
+    let app = TestApp::start(washer_config_without_selftest(&[(
         "resize = \"stretch\"",
         "resize = \"stretch\"\nroi = [10, 10, 200, 150]\nmin_side = 16",
     )]))
     .await;
-    let c = client();
-    let post = |body: Vec<u8>| c.post(server.url("/classify/washers")).body(body).send();
+    let post = |body: Vec<u8>| app.post("/classify/washers", body);
     // 40x12: the short side is below min_side = 16, known from the header.
-    let msg = expect_error(post(gray_png(40, 12)).await.unwrap(), 422, "too_small").await;
+    let msg = post(gray_png(40, 12)).await.error(422, "too_small");
     assert!(msg.contains("40x12") && msg.contains("min_side = 16"), "{msg}");
     // 100x100 frame: the ROI reaches (210, 160).
-    let msg = expect_error(post(gray_png(100, 100)).await.unwrap(), 422, "roi_outside").await;
+    let msg = post(gray_png(100, 100)).await.error(422, "roi_outside");
     assert!(msg.contains("[10, 10, 200, 150]") && msg.contains("(210, 160)") && msg.contains("100x100"), "{msg}");
     // A frame the ROI fits is served (a gray frame feeds the RGB model replicated).
-    assert_eq!(post(gray_png(320, 240)).await.unwrap().status(), 200);
+    assert_eq!(post(gray_png(320, 240)).await.status, 200);
     // A JPEG whose Adobe APP14 segment says YCCK (transform byte 2): refused, not miscoloured.
     let mut jpeg = Vec::new();
     let frame = image::RgbImage::from_pixel(32, 32, image::Rgb([200, 100, 50]));
@@ -203,9 +197,8 @@ async fn frames_too_small_outside_the_roi_or_ycck_get_their_own_statuses() {
     let mut app14 = vec![0xff, 0xee, 0x00, 0x0e];
     app14.extend_from_slice(b"Adobe\x00\x64\x00\x00\x00\x00\x02");
     jpeg.splice(2..2, app14);
-    let msg = expect_error(post(jpeg).await.unwrap(), 415, "unsupported_format").await;
+    let msg = post(jpeg).await.error(415, "unsupported_format");
     assert!(msg.contains("YCCK"), "{msg}");
-    server.stop().await.unwrap();
 }
 
 /// Small frames are decoded on the HTTP thread that received them, large ones on the decode

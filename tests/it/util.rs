@@ -279,3 +279,65 @@ pub(crate) async fn expect_error(resp: reqwest::Response, status: u16, kind: &st
     assert!(!msg.is_empty());
     msg
 }
+
+/// The app without a socket (`server::ready_app`), driven with `tower::ServiceExt::oneshot`:
+/// for handler tests where a real connection adds nothing.
+pub(crate) struct TestApp {
+    router: axum::Router,
+    _guards: Vec<lineside::batch::BatcherGuard>,
+}
+
+/// One answer from a [`TestApp`].
+pub(crate) struct Answer {
+    pub(crate) status: u16,
+    pub(crate) headers: axum::http::HeaderMap,
+    pub(crate) body: axum::body::Bytes,
+}
+
+impl Answer {
+    /// The body as JSON.
+    pub(crate) fn json(&self) -> serde_json::Value {
+        serde_json::from_slice(&self.body).unwrap_or_else(|e| panic!("not JSON ({e}): {:?}", self.body))
+    }
+
+    /// Assert the error status and kind; the message.
+    pub(crate) fn error(&self, status: u16, kind: &str) -> String {
+        let ct = self.headers.get("content-type").and_then(|v| v.to_str().ok()).unwrap_or("");
+        assert!(ct.starts_with("application/json"), "an error's content type is JSON, not {ct:?}");
+        let body = self.json();
+        assert_eq!(self.status, status, "status for kind {kind}: {body}");
+        assert_eq!(body["error"]["kind"], kind, "{body}");
+        let msg = body["error"]["message"].as_str().expect("error.message is a string").to_string();
+        assert!(!msg.is_empty());
+        msg
+    }
+}
+
+impl TestApp {
+    /// Load `config`'s models and build the app.
+    pub(crate) async fn start(config: Config) -> TestApp {
+        let (router, guards) =
+            tokio::task::spawn_blocking(move || lineside::server::ready_app(&config, None)).await.unwrap().unwrap();
+        TestApp { router, _guards: guards }
+    }
+
+    /// Send one request.
+    pub(crate) async fn send(&self, method: &str, path: &str, body: Vec<u8>) -> Answer {
+        use http_body_util::BodyExt as _;
+        use tower::ServiceExt as _;
+        let req = axum::http::Request::builder().method(method).uri(path).body(axum::body::Body::from(body)).unwrap();
+        let resp = self.router.clone().oneshot(req).await.unwrap();
+        let (parts, body) = resp.into_parts();
+        Answer { status: parts.status.as_u16(), headers: parts.headers, body: body.collect().await.unwrap().to_bytes() }
+    }
+
+    /// POST `body` to `path`.
+    pub(crate) async fn post(&self, path: &str, body: Vec<u8>) -> Answer {
+        self.send("POST", path, body).await
+    }
+
+    /// GET `path`.
+    pub(crate) async fn get(&self, path: &str) -> Answer {
+        self.send("GET", path, Vec::new()).await
+    }
+}
