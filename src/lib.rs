@@ -11,11 +11,14 @@
 //!
 //! | module | stage |
 //! |---|---|
-//! | [`config`] | TOML + flags, validated once into typed settings |
+//! | [`config`] | TOML + flags, validated once into each stage's settings (no stage imports it) |
+//! | [`source`] | a file the config names, on disk or embedded |
 //! | [`model`] | load the ONNX file, check its contract, plan and run it on its engine (engine types stay here) |
 //! | [`preprocess`] | decode, ROI, convert, resize (Pillow's arithmetic), normalise; the bounded decode pool |
 //! | [`batch`] | per-model backlog, inference lanes, pass formation, deadlines at the lane |
 //! | [`selftest`] | sample images through the serving path at load, against expectations |
+//! | [`served`] | the one loading path every command uses; a served model's lanes |
+//! | [`verify`] | what `check` finds out about a model, as JSON or text |
 //! | [`http`] | router, handlers, request ids, multipart, the OpenAPI document, the one error type |
 //! | [`metrics`] | the registry and the response-counting middleware |
 //! | [`server`] | bind, load, serve, drain |
@@ -38,6 +41,7 @@ pub mod served;
 pub mod server;
 pub mod shutdown;
 pub mod source;
+pub mod verify;
 
 /// Whether this CPU has the instruction-set extensions the binary was compiled for (a build
 /// with `-C target-cpu=x86-64-v3` or higher would otherwise die of an illegal instruction on

@@ -58,6 +58,7 @@ pub struct Metrics {
     model_info: IntGaugeVec,
     http_requests: IntCounterVec,
     frames_decoded: IntCounterVec,
+    in_flight: prometheus::IntGauge,
 }
 
 /// One model's handles, cloned into its lanes and handlers.
@@ -216,11 +217,24 @@ impl Metrics {
                  them) or \"pool\" (the decode pool).",
                 &["model", "thread"],
             ),
+            in_flight: {
+                let g = must(prometheus::IntGauge::new(
+                    "requests_in_flight",
+                    "Classify requests accepted and not yet answered (read when scraped); shutdown drains them.",
+                ));
+                must(r.register(Box::new(g.clone())));
+                g
+            },
             registry: r.clone(),
         };
         let build = gauge(&r, "build_info", "Always 1: lineside's version.", &["version"]);
         build.with_label_values(&[env!("CARGO_PKG_VERSION")]).set(1);
         m
+    }
+
+    /// Set the in-flight gauge (the HTTP side reads its count when scraped).
+    pub fn set_in_flight(&self, n: usize) {
+        self.in_flight.set(n as i64);
     }
 
     /// Handles for one model, with its expected series created at zero (one prediction

@@ -85,37 +85,7 @@ pub async fn run(
         "listening"
     );
 
-    // Serve until shutdown (or a failed load); the models arrive while serving.
-    let mut guards: Vec<BatcherGuard> = Vec::new();
-    let mut served: Option<Arc<Served>> = None;
-    let mut load_pending = true;
-    let mut failure: Option<anyhow::Error> = None;
-    tokio::pin!(shutdown);
-    loop {
-        tokio::select! {
-            conn = listener.accept() => match conn {
-                Ok((stream, _)) => accept(stream),
-                Err(e) => backoff(e).await,
-            },
-            loaded = &mut loaded_rx, if load_pending => {
-                load_pending = false;
-                match loaded.unwrap_or_else(|_| Err(anyhow::anyhow!("model loader vanished"))) {
-                    Ok(loaded) => {
-                        served = Some(loaded.served.clone());
-                        guards = loaded.guards;
-                        announce(&ready_tx, loaded.served, &loaded.selftest_failures);
-                    }
-                    Err(e) => {
-                        tracing::error!(cause = %format!("{e:#}"), "model loading failed");
-                        let _ = ready_tx.send(Readiness::Failed(format!("model loading failed: {e:#}")));
-                        failure = Some(e);
-                        break;
-                    }
-                }
-            }
-            () = &mut shutdown => break,
-        }
-    }
+    let Ended { served, guards, failure } = serve_until(&listener, &accept, &mut loaded_rx, &ready_tx, shutdown).await;
 
     // Drain: not ready at once, new classify requests refused with `draining`, the listener
     // still open, until every accepted request is answered or drain_ms passes.
@@ -139,6 +109,54 @@ pub async fn run(
         None => {
             tracing::info!("stopped");
             Ok(())
+        }
+    }
+}
+
+/// How the serving loop ended.
+struct Ended {
+    /// The models, if they loaded.
+    served: Option<Arc<Served>>,
+    /// Their lanes' guards.
+    guards: Vec<BatcherGuard>,
+    /// A failed load ends serving at once.
+    failure: Option<anyhow::Error>,
+}
+
+/// Accept connections until `shutdown` (or a failed load); the models arrive meanwhile.
+async fn serve_until(
+    listener: &TcpListener,
+    accept: &impl Fn(tokio::net::TcpStream),
+    loaded_rx: &mut oneshot::Receiver<anyhow::Result<Loaded>>,
+    ready_tx: &watch::Sender<Readiness>,
+    shutdown: impl Future<Output = ()>,
+) -> Ended {
+    let mut ended = Ended { served: None, guards: Vec::new(), failure: None };
+    let mut load_pending = true;
+    tokio::pin!(shutdown);
+    loop {
+        tokio::select! {
+            conn = listener.accept() => match conn {
+                Ok((stream, _)) => accept(stream),
+                Err(e) => backoff(e).await,
+            },
+            loaded = &mut *loaded_rx, if load_pending => {
+                load_pending = false;
+                match loaded.unwrap_or_else(|_| Err(anyhow::anyhow!("model loader vanished"))) {
+                    Ok(loaded) => {
+                        ended.served = Some(loaded.served.clone());
+                        ended.guards = loaded.guards;
+                        announce(ready_tx, loaded.served, &loaded.selftest_failures);
+                    }
+                    Err(e) => {
+                        tracing::error!(cause = %format!("{e:#}"), "model loading failed");
+                        let _ = ready_tx.send(Readiness::Failed(format!("model loading failed: {e:#}")));
+                        ended.failure = Some(e);
+                        return ended;
+                    }
+                }
+            }
+            () = &mut shutdown => return ended,
         }
     }
 }

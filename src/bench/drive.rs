@@ -47,21 +47,6 @@ impl Drive<'_> {
         engine.chain(http_threads.or(self.http_threads).map(|n| format!("--http-threads={n}"))).collect()
     }
 
-    /// One step, with a progress bar, the CPU time of both processes and the late frames.
-    pub fn measure(
-        &self,
-        target: &Target,
-        mode: Mode,
-        server: Option<&ChildServer>,
-        settings: Option<Settings>,
-    ) -> Step {
-        let mut step = self.measure_once(target, mode, server, settings);
-        if let Some(b) = self.budget_ms {
-            step.count_late(b);
-        }
-        step
-    }
-
     /// The line's steps: frames due at the line's rate, then at each larger multiple of it
     /// ([`LINE_MULTIPLES`]) until one breaks the budget.
     pub fn line_steps(
@@ -85,7 +70,8 @@ impl Drive<'_> {
         steps
     }
 
-    fn measure_once(
+    /// One step, with a progress bar, the CPU time of both processes and the late frames.
+    pub fn measure(
         &self,
         target: &Target,
         mode: Mode,
@@ -114,7 +100,7 @@ impl Drive<'_> {
             Mode::Closed(c) => (Some(c), None),
             Mode::Open(r) => (None, Some(r)),
         };
-        Step {
+        let mut step = Step {
             mode: if concurrency.is_some() { "closed" } else { "open" }.into(),
             concurrency,
             rate,
@@ -130,7 +116,11 @@ impl Drive<'_> {
             client_cpu_cores: cores(cli0, cli1),
             errors: m.errors,
             samples_us: m.samples_us,
+        };
+        if let Some(b) = self.budget_ms {
+            step.count_late(b);
         }
+        step
     }
 
     /// The arrangements `--try-settings` measures: (lanes x lane_threads) {cores x 1, 1 x

@@ -122,6 +122,7 @@ pub async fn readyz(State(state): State<AppState>) -> Result<Json<Accepting>, Ap
 pub async fn metrics(State(state): State<AppState>) -> impl IntoResponse {
     // The backlog gauges are read from the backlogs at scrape time: set by the senders and
     // the lanes, they raced (a sender's late write could leave a drained backlog at 1).
+    state.metrics.set_in_flight(state.in_flight.count());
     if let Ok(served) = state.readiness.borrow().served(true) {
         for m in served.values() {
             m.metrics.backlog_depth.set(m.batcher.depth().0 as i64);

@@ -63,28 +63,7 @@ pub fn to_bytes<T: Level>(
     channels: Channels,
     layout: Layout,
 ) -> Vec<u8> {
-    let n = channels.count();
-    let plane = width as usize * height as usize;
-    let order = channel_order(channels, src_channels);
-    let mut out = vec![0u8; plane * n];
-    match layout {
-        Layout::Nchw => {
-            for c in 0..n {
-                let dst = &mut out[c * plane..(c + 1) * plane];
-                for (v, px) in dst.iter_mut().zip(pixels.chunks_exact(src_channels)) {
-                    *v = px[order[c]].byte();
-                }
-            }
-        }
-        Layout::Nhwc => {
-            for (dst, px) in out.chunks_exact_mut(n).zip(pixels.chunks_exact(src_channels)) {
-                for c in 0..n {
-                    dst[c] = px[order[c]].byte();
-                }
-            }
-        }
-    }
-    out
+    arrange(pixels, src_channels, width, height, channels, layout, |_, px| px.byte())
 }
 
 /// Build the tensor for one image from interleaved pixels with `src_channels` samples each
@@ -104,27 +83,40 @@ pub fn to_tensor<T: Level>(
     mean: &[f32],
     std: &[f32],
 ) -> Vec<f32> {
-    let n = channels.count();
-    let plane = width as usize * height as usize;
-    let order = channel_order(channels, src_channels);
     // (p / divisor - mean) / std == p * scale + offset, computed once per channel.
     let scale: Vec<f32> = std.iter().map(|s| 1.0 / (divisor * s)).collect();
     let offset: Vec<f32> = mean.iter().zip(std).map(|(m, s)| -m / s).collect();
-    let mut out = vec![0.0f32; plane * n];
+    arrange(pixels, src_channels, width, height, channels, layout, |c, px| px.level() * scale[c] + offset[c])
+}
+
+/// Lay interleaved pixels out in the model's channel order and layout, each sample mapped by
+/// `value(model channel, source sample)`.
+fn arrange<T: Level, O: Copy + Default>(
+    pixels: &[T],
+    src_channels: usize,
+    width: u32,
+    height: u32,
+    channels: Channels,
+    layout: Layout,
+    value: impl Fn(usize, T) -> O,
+) -> Vec<O> {
+    let n = channels.count();
+    let plane = width as usize * height as usize;
+    let order = channel_order(channels, src_channels);
+    let mut out = vec![O::default(); plane * n];
     match layout {
         Layout::Nchw => {
             for c in 0..n {
-                let (src_c, sc, off) = (order[c], scale[c], offset[c]);
                 let dst = &mut out[c * plane..(c + 1) * plane];
                 for (v, px) in dst.iter_mut().zip(pixels.chunks_exact(src_channels)) {
-                    *v = px[src_c].level() * sc + off;
+                    *v = value(c, px[order[c]]);
                 }
             }
         }
         Layout::Nhwc => {
             for (dst, px) in out.chunks_exact_mut(n).zip(pixels.chunks_exact(src_channels)) {
                 for c in 0..n {
-                    dst[c] = px[order[c]].level() * scale[c] + offset[c];
+                    dst[c] = value(c, px[order[c]]);
                 }
             }
         }

@@ -141,6 +141,22 @@ impl TestServer {
         panic!("{model}'s backlog never reached {n}: last /readyz {last}");
     }
 
+    /// Wait (polling `/metrics`, bounded at 300 polls) until `n` classify requests are in
+    /// flight.
+    pub(crate) async fn wait_in_flight(&self, n: usize) {
+        let key = "lineside_requests_in_flight{}";
+        let mut last = f64::NAN;
+        for _ in 0..300 {
+            let text = reqwest::get(self.url("/metrics")).await.unwrap().text().await.unwrap();
+            last = metric(&parse_metrics(&text), key);
+            if last == n as f64 {
+                return;
+            }
+            tokio::time::sleep(Duration::from_millis(10)).await;
+        }
+        panic!("{key} never reached {n} (last {last})");
+    }
+
     /// Wait (polling `/readyz`, bounded at 30 s) until the server says it is draining.
     pub(crate) async fn wait_draining(&self) {
         for _ in 0..3000 {
