@@ -108,6 +108,16 @@ impl ModelMetrics {
 }
 
 // Metric construction only fails for invalid names or label sets, which are constants here.
+const REQUEST_HELP: &str = "Time from a classify request's arrival to its answer, by model and outcome.";
+const BACKGROUND_HELP: &str =
+    "Frames run as background work in the lanes' spare time (evaluation, maps, trials, warm-ups).";
+const MODEL_INFO_HELP: &str = "Always 1: the served model's version and engine.";
+const HTTP_HELP: &str = "HTTP responses, by matched route and status.";
+const DECODED_HELP: &str = "Frames decoded and preprocessed, by thread: \"http\" (small frames, on the thread that \
+     received them) or \"pool\" (the decode pool).";
+const IN_FLIGHT_HELP: &str =
+    "Classify requests accepted and not yet answered (read when scraped); shutdown drains them.";
+
 /// A histogram family, registered.
 fn hist(r: &Registry, name: &str, help: &str, labels: &[&str], buckets: Vec<f64>) -> HistogramVec {
     let h = must(HistogramVec::new(HistogramOpts::new(name, help).buckets(buckets), labels));
@@ -137,93 +147,34 @@ impl Metrics {
     /// A fresh registry with every lineside metric registered.
     pub fn new() -> Metrics {
         let r = must(Registry::new_custom(Some("lineside".into()), None));
-        let latency = || LATENCY_BUCKETS.to_vec();
         let model = &["model"];
+        // Most families are per model: latency histograms, gauges and counters.
+        let h = |name: &str, help: &str| hist(&r, name, help, model, LATENCY_BUCKETS.to_vec());
+        let g = |name: &str, help: &str| gauge(&r, name, help, model);
+        let c = |name: &str, help: &str| counter(&r, name, help, model);
+        let outcome = &["model", "outcome"];
+        let passes = vec![1.0, 2.0, 3.0, 4.0, 6.0, 8.0, 12.0, 16.0, 32.0, 64.0];
         let m = Metrics {
-            request_duration: hist(
-                &r,
-                "request_duration_seconds",
-                "Time from a classify request's arrival to its answer, by model and outcome.",
-                &["model", "outcome"],
-                latency(),
-            ),
-            preprocess_duration: hist(
-                &r,
-                "preprocess_duration_seconds",
-                "Time to decode and preprocess one image.",
-                model,
-                latency(),
-            ),
-            inference_duration: hist(
-                &r,
-                "inference_duration_seconds",
-                "Engine wall time of one inference pass.",
-                model,
-                latency(),
-            ),
-            pass_size: hist(
-                &r,
-                "pass_size_requests",
-                "Requests in one inference pass.",
-                model,
-                vec![1.0, 2.0, 3.0, 4.0, 6.0, 8.0, 12.0, 16.0, 32.0, 64.0],
-            ),
-            backlog_depth: gauge(&r, "backlog_depth", "Requests waiting in the model's backlog.", model),
-            lanes: gauge(&r, "lanes", "Inference lanes serving the model.", model),
-            lane_failures: counter(&r, "lane_failures_total", "Inference errors and panics inside a lane.", model),
-            lane_restarts: counter(&r, "lane_restarts_total", "Lane engine states replaced after a panic.", model),
-            abandoned: counter(
-                &r,
-                "abandoned_total",
-                "Requests dropped before inference because the client disconnected.",
-                model,
-            ),
-            background_frames: counter(
-                &r,
-                "background_frames_total",
-                "Frames run as background work in the lanes' spare time (evaluation, maps, trials, warm-ups).",
-                model,
-            ),
-            backlog_wait: hist(
-                &r,
-                "backlog_wait_seconds",
-                "Time a request waited in the backlog for an inference lane.",
-                model,
-                latency(),
-            ),
+            request_duration: hist(&r, "request_duration_seconds", REQUEST_HELP, outcome, LATENCY_BUCKETS.to_vec()),
+            preprocess_duration: h("preprocess_duration_seconds", "Time to decode and preprocess one image."),
+            inference_duration: h("inference_duration_seconds", "Engine wall time of one inference pass."),
+            pass_size: hist(&r, "pass_size_requests", "Requests in one inference pass.", model, passes),
+            backlog_depth: g("backlog_depth", "Requests waiting in the model's backlog."),
+            lanes: g("lanes", "Inference lanes serving the model."),
+            lane_failures: c("lane_failures_total", "Inference errors and panics inside a lane."),
+            lane_restarts: c("lane_restarts_total", "Lane engine states replaced after a panic."),
+            abandoned: c("abandoned_total", "Requests dropped before inference because the client disconnected."),
+            background_frames: c("background_frames_total", BACKGROUND_HELP),
+            backlog_wait: h("backlog_wait_seconds", "Time a request waited in the backlog for an inference lane."),
             predictions: counter(&r, "predictions_total", "Answers by model and top-1 label.", &["model", "label"]),
-            low_confidence: counter(
-                &r,
-                "low_confidence_total",
-                "Answers whose top score is below the model's min_score.",
-                model,
-            ),
-            model_info: gauge(
-                &r,
-                "model_info",
-                "Always 1: the served model's version and engine.",
-                &["model", "version", "engine"],
-            ),
-            http_requests: counter(
-                &r,
-                "http_requests_total",
-                "HTTP responses, by matched route and status.",
-                &["route", "status"],
-            ),
-            frames_decoded: counter(
-                &r,
-                "frames_decoded_total",
-                "Frames decoded and preprocessed, by thread: \"http\" (small frames, on the thread that received \
-                 them) or \"pool\" (the decode pool).",
-                &["model", "thread"],
-            ),
+            low_confidence: c("low_confidence_total", "Answers whose top score is below the model's min_score."),
+            model_info: gauge(&r, "model_info", MODEL_INFO_HELP, &["model", "version", "engine"]),
+            http_requests: counter(&r, "http_requests_total", HTTP_HELP, &["route", "status"]),
+            frames_decoded: counter(&r, "frames_decoded_total", DECODED_HELP, &["model", "thread"]),
             in_flight: {
-                let g = must(prometheus::IntGauge::new(
-                    "requests_in_flight",
-                    "Classify requests accepted and not yet answered (read when scraped); shutdown drains them.",
-                ));
-                must(r.register(Box::new(g.clone())));
-                g
+                let gauge = must(prometheus::IntGauge::new("requests_in_flight", IN_FLIGHT_HELP));
+                must(r.register(Box::new(gauge.clone())));
+                gauge
             },
             registry: r.clone(),
         };
