@@ -21,20 +21,15 @@ fn client() -> reqwest::Client {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn every_sample_gets_its_expected_label() {
-    let server = TestServer::start(washer_config()).await;
-    let c = client();
+    let app = TestApp::start(washer_config()).await;
     let onnx = std::fs::read(root().join("models/washers/classifier.onnx")).unwrap();
     let version: String = Sha256::digest(&onnx).iter().take(6).map(|b| format!("{b:02x}")).collect();
     for s in samples() {
-        let resp = c
-            .post(server.url("/classify/washers"))
-            .header("content-type", "application/x-whatever") // sniffed from bytes, not trusted
-            .body(s.bytes.clone())
-            .send()
-            .await
-            .unwrap();
-        assert_eq!(resp.status(), 200, "{}", s.name);
-        let v: Value = resp.json().await.unwrap();
+        // The format is sniffed from the bytes; the content type is not trusted.
+        let ct = [("content-type", "application/x-whatever")];
+        let resp = app.send_with("POST", "/classify/washers", &ct, s.bytes.clone()).await;
+        assert_eq!(resp.status, 200, "{}", s.name);
+        let v = resp.json();
         assert_eq!(v["label"], s.label.as_str(), "{}: {v}", s.name);
         assert_eq!(v["model"], "washers");
         assert_eq!(v["version"], version.as_str());
@@ -51,7 +46,6 @@ async fn every_sample_gets_its_expected_label() {
         let parts = t("decode") + t("preprocess") + t("wait") + t("infer");
         assert!(parts <= t("total") + 0.004, "stages {parts} ms > total {} ms: {v}", t("total"));
     }
-    server.stop().await.unwrap();
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -260,19 +254,17 @@ async fn small_frames_decode_on_the_http_thread_with_the_same_answer() {
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn metrics_parse_and_count_every_request() {
-    let server = TestServer::start(washer_config()).await;
-    let c = client();
+    let app = TestApp::start(washer_config()).await;
     let all = samples();
     for s in &all {
-        assert_eq!(c.post(server.url("/classify/washers")).body(s.bytes.clone()).send().await.unwrap().status(), 200);
+        assert_eq!(app.post("/classify/washers", s.bytes.clone()).await.status, 200);
     }
     for _ in 0..2 {
-        let r = c.post(server.url("/classify/washers")).body("not an image").send().await.unwrap();
-        assert_eq!(r.status(), 400);
+        assert_eq!(app.post("/classify/washers", b"not an image".to_vec()).await.status, 400);
     }
-    let r = c.get(server.url("/metrics")).send().await.unwrap();
-    assert!(r.headers()["content-type"].to_str().unwrap().starts_with("text/plain; version=0.0.4"));
-    let m = parse_metrics(&r.text().await.unwrap());
+    let r = app.get("/metrics").await;
+    assert!(r.headers["content-type"].to_str().unwrap().starts_with("text/plain; version=0.0.4"));
+    let m = parse_metrics(&r.text());
     let n = all.len() as f64;
     assert_eq!(washer_requests(&m, "ok"), n);
     assert_eq!(washer_requests(&m, "bad_image"), 2.0);
@@ -288,7 +280,6 @@ async fn metrics_parse_and_count_every_request() {
     assert_eq!(metric(&m, r#"lineside_backlog_depth{model="washers"}"#), 0.0);
     let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap();
     assert_eq!(metric(&m, r#"lineside_lanes{model="washers"}"#), lineside::served::share_lanes(cores, 1, 1) as f64);
-    server.stop().await.unwrap();
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -590,10 +581,8 @@ async fn healthz_fails_while_a_lane_is_stuck_and_readyz_while_the_backlog_is_nea
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn models_request_ids_and_low_confidence() {
-    let server =
-        TestServer::start(washer_config_with(&[("scores = \"auto\"", "scores = \"auto\"\nmin_score = 0.99")])).await;
-    let c = client();
-    let v: Value = c.get(server.url("/models")).send().await.unwrap().json().await.unwrap();
+    let app = TestApp::start(washer_config_with(&[("scores = \"auto\"", "scores = \"auto\"\nmin_score = 0.99")])).await;
+    let v = app.get("/models").await.json();
     let m = &v["models"][0];
     assert_eq!(m["name"], "washers");
     assert_eq!(m["input"]["served_shape"], serde_json::json!([1, 3, 96, 96]));
@@ -606,28 +595,28 @@ async fn models_request_ids_and_low_confidence() {
     let decided_by = if engine == lineside::model::EngineKind::Tract { "engine" } else { "calibrated" };
     assert_eq!(m["stacking"]["decided_by"], decided_by);
     assert_eq!(m["selftest"]["samples"], 15);
-    assert!(m["batching"]["lanes"].as_u64().unwrap() >= 1);
-    let one: Value = c.get(server.url("/models/washers")).send().await.unwrap().json().await.unwrap();
+    let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap();
+    assert_eq!(m["batching"]["lanes"].as_u64(), Some(lineside::served::share_lanes(cores, 1, 1) as u64));
+    let one = app.get("/models/washers").await.json();
     assert_eq!(&one, m);
-    expect_error(c.get(server.url("/models/bolts")).send().await.unwrap(), 404, "unknown_model").await;
+    app.get("/models/bolts").await.error(404, "unknown_model");
     // Request ids: the client's echoed, otherwise generated and unique.
-    let r = c.get(server.url("/healthz")).header("X-Request-Id", "station-4/frame-77").send().await.unwrap();
-    assert_eq!(r.headers()["x-request-id"], "station-4/frame-77");
-    let a = c.get(server.url("/healthz")).send().await.unwrap().headers()["x-request-id"].clone();
-    let b = c.get(server.url("/healthz")).send().await.unwrap().headers()["x-request-id"].clone();
+    let r = app.send_with("GET", "/healthz", &[("X-Request-Id", "station-4/frame-77")], vec![]).await;
+    assert_eq!(r.headers["x-request-id"], "station-4/frame-77");
+    let a = app.get("/healthz").await.headers["x-request-id"].clone();
+    let b = app.get("/healthz").await.headers["x-request-id"].clone();
     assert_ne!(a, b);
-    let r = c.get(server.url("/healthz")).header("X-Request-Id", "a b").send().await.unwrap();
-    assert_ne!(r.headers()["x-request-id"], "a b", "an id with a space is replaced");
+    let r = app.send_with("GET", "/healthz", &[("X-Request-Id", "a b")], vec![]).await;
+    assert_ne!(r.headers["x-request-id"], "a b", "an id with a space is replaced");
     // min_score = 0.99: every answer says whether it reaches it, and the misses are counted.
     let mut low = 0.0;
     for s in samples() {
-        let v: Value =
-            c.post(server.url("/classify/washers")).body(s.bytes).send().await.unwrap().json().await.unwrap();
+        let v = app.post("/classify/washers", s.bytes).await.json();
         let confident = v["score"].as_f64().unwrap() >= 0.99;
         assert_eq!(v["confident"], confident, "{v}");
         low += f64::from(u8::from(!confident));
     }
-    let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
+    let m = parse_metrics(&app.get("/metrics").await.text());
     assert_eq!(metric(&m, r#"lineside_low_confidence_total{model="washers"}"#), low);
     assert!(low > 0.0, "some sample scores below 0.99 (cracked-03 is near 0.5)");
     let predicted: f64 = ["good", "cracked", "burr", "no_hole", "empty"]
@@ -635,7 +624,6 @@ async fn models_request_ids_and_low_confidence() {
         .map(|l| metric(&m, &format!(r#"lineside_predictions_total{{label="{l}",model="washers"}}"#)))
         .sum();
     assert_eq!(predicted, 15.0);
-    server.stop().await.unwrap();
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]

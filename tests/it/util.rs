@@ -311,6 +311,11 @@ pub(crate) struct Answer {
 }
 
 impl Answer {
+    /// The body as text.
+    pub(crate) fn text(&self) -> String {
+        String::from_utf8_lossy(&self.body).into_owned()
+    }
+
     /// The body as JSON.
     pub(crate) fn json(&self) -> serde_json::Value {
         serde_json::from_slice(&self.body).unwrap_or_else(|e| panic!("not JSON ({e}): {:?}", self.body))
@@ -339,9 +344,18 @@ impl TestApp {
 
     /// Send one request.
     pub(crate) async fn send(&self, method: &str, path: &str, body: Vec<u8>) -> Answer {
+        self.send_with(method, path, &[], body).await
+    }
+
+    /// Send one request with these headers.
+    pub(crate) async fn send_with(&self, method: &str, path: &str, headers: &[(&str, &str)], body: Vec<u8>) -> Answer {
         use http_body_util::BodyExt as _;
         use tower::ServiceExt as _;
-        let req = axum::http::Request::builder().method(method).uri(path).body(axum::body::Body::from(body)).unwrap();
+        let mut req = axum::http::Request::builder().method(method).uri(path);
+        for (k, v) in headers {
+            req = req.header(*k, *v);
+        }
+        let req = req.body(axum::body::Body::from(body)).unwrap();
         let resp = self.router.clone().oneshot(req).await.unwrap();
         let (parts, body) = resp.into_parts();
         Answer { status: parts.status.as_u16(), headers: parts.headers, body: body.collect().await.unwrap().to_bytes() }
