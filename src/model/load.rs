@@ -197,17 +197,6 @@ pub fn time_stacked(cfg: &Spec, model: &Model, batch: usize) -> anyhow::Result<O
 /// its first answer, so it must pay for itself). The two ways alternate after a warm-up of
 /// each, and each keeps its best round (2 to 5 rounds, about 1.5 s at most); one thread.
 fn decide_stacking(model: &Model, mode: StackMode, cap: usize) -> anyhow::Result<Stacking> {
-    decide_stacking_inner(model, mode, cap)
-}
-
-/// The calibration's rule: a stacked pass pays for the delay of its first answer when it
-/// takes at most 0.9x the time per image of single runs (a margin against the noise of a
-/// short measurement: common practice, not a measured constant).
-pub fn stacking_pays(single_ms_per_image: f64, stacked_ms_per_image: f64) -> bool {
-    stacked_ms_per_image <= 0.9 * single_ms_per_image
-}
-
-fn decide_stacking_inner(model: &Model, mode: StackMode, cap: usize) -> anyhow::Result<Stacking> {
     if !model.plan.can_stack() {
         anyhow::ensure!(
             mode != StackMode::Always,
@@ -270,6 +259,13 @@ fn decide_stacking_inner(model: &Model, mode: StackMode, cap: usize) -> anyhow::
         "calibrated how passes run"
     );
     Ok(decision)
+}
+
+/// The calibration's rule: a stacked pass pays for the delay of its first answer when it
+/// takes at most 0.9x the time per image of single runs (a margin against the noise of a
+/// short measurement: common practice, not a measured constant).
+pub fn stacking_pays(single_ms_per_image: f64, stacked_ms_per_image: f64) -> bool {
+    stacked_ms_per_image <= 0.9 * single_ms_per_image
 }
 
 #[cfg(feature = "onnxruntime")]
