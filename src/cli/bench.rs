@@ -211,6 +211,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
     run.frames = frames.iter().map(|f| f.0.clone()).collect();
     // The server's HTTP threads are known when this bench starts it.
     let local_http = args.url.is_none().then_some(config.server.http_threads);
+    let mut configured = None;
     if !args.engine_only {
         let (server, target) = match &args.url {
             Some(url) => (None, drive::target_of(url, &model_name)?),
@@ -222,7 +223,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
         };
         run.url = format!("http://{}", target.host);
         run.model_info = Some(drive.model_info(&target, &model_name)?);
-        let configured = drive::settings_of(run.model_info.as_ref(), local_http);
+        configured = drive::settings_of(run.model_info.as_ref(), local_http);
         run.steps = match args.line_fps {
             Some(fps) => drive.line_steps(&target, fps, server.as_ref(), configured.clone()),
             None => args
@@ -240,7 +241,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<Outcome> {
         let m = model_cfg.context("the engine needs the model's config")?;
         run.engine = Some(drive.engine_step(m, &frames)?);
     }
-    run.conclude(drive::settings_of(run.model_info.as_ref(), local_http));
+    run.conclude(configured);
     print!("{}", report::table(&run));
     if !args.engine_only {
         println!("\nDoes this box keep up with the line? {}", run.verdict.text);

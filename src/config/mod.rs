@@ -133,6 +133,13 @@ pub struct BatchingOverrides {
     pub lane_threads: Option<usize>,
 }
 
+impl Overrides {
+    /// The onnxruntime library the environment names, for models whose config names none.
+    pub fn env_library(&self) -> Option<Library> {
+        self.onnxruntime_library.clone().map(|path| Library { path, from: "ORT_DYLIB_PATH" })
+    }
+}
+
 impl Config {
     /// Load the config the CLI asks for: `path`, else `./config/lineside.toml` if present,
     /// else the built-in washer default.
@@ -241,10 +248,7 @@ impl ModelConfig {
             scores: ScoresMode::Auto,
             min_score: None,
             engine: overrides.engine.unwrap_or(overrides.default_engine),
-            onnxruntime_library: overrides
-                .onnxruntime_library
-                .clone()
-                .map(|path| Library { path, from: "ORT_DYLIB_PATH" }),
+            onnxruntime_library: overrides.env_library(),
         }
     }
 

@@ -28,11 +28,8 @@ pub(super) fn config(
         Source::File(resolved) => resolved,
         _ => p,
     });
-    let onnxruntime_library = match (configured, &overrides.onnxruntime_library) {
-        (Some(path), _) => Some(Library { path, from: "[onnxruntime] library" }),
-        (None, Some(path)) => Some(Library { path: path.clone(), from: "ORT_DYLIB_PATH" }),
-        (None, None) => None,
-    };
+    let onnxruntime_library =
+        configured.map(|path| Library { path, from: "[onnxruntime] library" }).or_else(|| overrides.env_library());
     let mut models: Vec<ModelConfig> = Vec::new();
     for (i, m) in raw.models.into_iter().enumerate() {
         let ctx = format!("[[models]] #{} ({:?})", i + 1, m.name);

@@ -274,17 +274,20 @@ async fn classify_one(
     // more CPU (two thread wake-ups) than the decode itself. Larger ones go to the pool, so
     // that a big JPEG never holds an HTTP thread. A burst's parts all go to the pool as they are.
     let probe = if may_decode_here { Some(CpuPool::run_here(|| m.pipeline.probe(&image))??) } else { None };
-    let prepared = if let Some(p) = probe.filter(|p| p.pixels() <= state.limits.decode_inline_pixels) {
-        m.metrics.decoded_inline.inc();
-        CpuPool::run_here(|| m.pipeline.run_probed(&image, &p))??
-    } else if let Some(p) = probe {
-        m.metrics.decoded_pool.inc();
-        let pipeline = m.pipeline.clone();
-        state.pool.run(move || pipeline.run_probed(&image, &p)).await??
-    } else {
-        m.metrics.decoded_pool.inc();
-        let pipeline = m.pipeline.clone();
-        state.pool.run(move || pipeline.run(&image)).await??
+    let prepared = match probe {
+        Some(p) if p.pixels() <= state.limits.decode_inline_pixels => {
+            m.metrics.decoded_inline.inc();
+            CpuPool::run_here(|| m.pipeline.run_probed(&image, &p))??
+        }
+        probe => {
+            m.metrics.decoded_pool.inc();
+            let pipeline = m.pipeline.clone();
+            let prepare = move || match probe {
+                Some(p) => pipeline.run_probed(&image, &p),
+                None => pipeline.run(&image),
+            };
+            state.pool.run(prepare).await??
+        }
     };
     m.metrics.preprocess_duration.observe((prepared.decode + prepared.preprocess).as_secs_f64());
     let (decode, preprocess) = (prepared.decode, prepared.preprocess);
