@@ -19,7 +19,7 @@ use std::time::{Duration, Instant};
 
 use lineside::config::{Channels, Filter, Layout, Orientation, PreprocessConfig, ResizeMode, defaults};
 use lineside::model::{BatchAxis, Contract, InputType, ScoreTransform};
-use lineside::preprocess::Pipeline;
+use lineside::preprocess::{Pipeline, decode};
 
 /// Median wall time of `f` over `iters` runs after 3 warm-up runs.
 fn median(iters: usize, mut f: impl FnMut()) -> Duration {
@@ -122,6 +122,19 @@ fn main() {
     let zune = median(n, || {
         black_box(image::load_from_memory_with_format(black_box(&jpeg), image::ImageFormat::Jpeg).unwrap());
     });
+    // lineside's own JPEG path: header read once by the decoder that decodes, body uncopied.
+    let limits = decode::FrameLimits { max_pixels: defaults::MAX_PIXELS, min_side: 1 };
+    let ours = median(n, || {
+        let probe = decode::probe(black_box(&jpeg[..]), limits).unwrap();
+        black_box(decode::decode(probe, defaults::MAX_PIXELS, Orientation::Exif).unwrap());
+    });
+    let header_ours = median(n * 4, || {
+        black_box(decode::probe(black_box(&jpeg[..]), limits).unwrap());
+    });
+    let header_image = median(n * 4, || {
+        let r = image::ImageReader::with_format(std::io::Cursor::new(black_box(&jpeg[..])), image::ImageFormat::Jpeg);
+        black_box(r.into_dimensions().unwrap());
+    });
     let jd = median(n, || {
         let mut d = jpeg_decoder::Decoder::new(std::io::Cursor::new(black_box(&jpeg)));
         black_box(d.decode().unwrap());
@@ -144,7 +157,18 @@ fn main() {
         ms(split.preprocess)
     );
     println!("  320x240 PNG -> 96x96 NCHW (stretch, bilinear, /255):                {:.3} ms", ms(full96));
-    println!("  JPEG decode only: zune-jpeg (image 0.25) {:.3} ms, jpeg-decoder {:.3} ms", ms(zune), ms(jd));
+    println!(
+        "  JPEG decode only: lineside (zune-jpeg direct) {:.3} ms, zune-jpeg through image 0.25 {:.3} ms ({:.2}x), jpeg-decoder {:.3} ms",
+        ms(ours),
+        ms(zune),
+        ms(ours) / ms(zune),
+        ms(jd)
+    );
+    println!(
+        "  JPEG header read: lineside's probe {:.4} ms, image 0.25's into_dimensions {:.4} ms (copies the body)",
+        ms(header_ours),
+        ms(header_image)
+    );
     for (label, t) in &scaled {
         println!(
             "  jpeg-decoder reduced decode {label}: {:.3} ms ({:.1}x faster than its full decode)",

@@ -273,17 +273,17 @@ async fn classify_one(
     // decoded. A small one is decoded here: handing it to a pool thread and back would cost
     // more CPU (two thread wake-ups) than the decode itself. Larger ones go to the pool, so
     // that a big JPEG never holds an HTTP thread. A burst's parts all go to the pool as they are.
-    let probe = if may_decode_here { Some(CpuPool::run_here(|| m.pipeline.probe(&image))??) } else { None };
+    let probe = if may_decode_here { Some(CpuPool::run_here(|| m.pipeline.probe(image.clone()))??) } else { None };
     let prepared = match probe {
         Some(p) if p.pixels() <= state.limits.decode_inline_pixels => {
             m.metrics.decoded_inline.inc();
-            CpuPool::run_here(|| m.pipeline.run_probed(&image, &p))??
+            CpuPool::run_here(|| m.pipeline.run_probed(p))??
         }
         probe => {
             m.metrics.decoded_pool.inc();
             let pipeline = m.pipeline.clone();
             let prepare = move || match probe {
-                Some(p) => pipeline.run_probed(&image, &p),
+                Some(p) => pipeline.run_probed(p),
                 None => pipeline.run(&image),
             };
             state.pool.run(prepare).await??

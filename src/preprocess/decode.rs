@@ -1,10 +1,15 @@
 //! Decoding: bytes from a camera into a [`Frame`] (8-bit, or 16-bit as float levels), with
 //! the size checked from the header before any pixel buffer is allocated.
 //!
-//! The format is sniffed from the bytes (the request's Content-Type is not trusted). The
-//! `image` crate does not honour its allocation limit through `into_decoder` (FACTS.md: a
-//! 631-byte JPEG took 12 GB), so the width/height limits are always set and the pixel count
-//! is checked from `dimensions()` first.
+//! The format is sniffed from the bytes (the request's Content-Type is not trusted). A frame's
+//! header is read once: [`probe`] reads it and keeps what it read in the [`Probe`], which
+//! [`decode`] consumes. JPEG (what line cameras send) is decoded by zune-jpeg directly, so
+//! the decoder that read the header decodes the scan, over the caller's bytes, uncopied.
+//! Other formats go through the `image` crate, whose decoders read the header again when
+//! built (PNG, BMP, TIFF, WebP headers are a few dozen bytes). The `image` crate does not
+//! honour its allocation limit through `into_decoder` (FACTS.md: a 631-byte JPEG took 12 GB),
+//! so the width/height limits are always set and the pixel count is checked from the header
+//! first, for every format.
 //!
 //! What the frame keeps, as Pillow's `convert("RGB")` / `convert("L")` would see it: gray
 //! stays one channel (mono industrial cameras; expanded to RGB only at the tensor, which is
@@ -13,7 +18,12 @@
 
 use std::io::Cursor;
 
-use image::{DynamicImage, ImageDecoder, ImageError, ImageFormat, ImageReader, Limits};
+use image::metadata::Orientation as ExifOrientation;
+use image::{DynamicImage, ImageBuffer, ImageDecoder, ImageError, ImageFormat, ImageReader, Limits};
+use zune_jpeg::JpegDecoder;
+use zune_jpeg::zune_core::bytestream::ZCursor;
+use zune_jpeg::zune_core::colorspace::ColorSpace;
+use zune_jpeg::zune_core::options::DecoderOptions;
 
 use super::Orientation;
 use super::resize::Plane;
@@ -31,21 +41,40 @@ pub struct FrameLimits {
 /// What a frame's header says, read once per frame before any pixel is decoded: the format
 /// (sniffed from the bytes) and the size, with the format's own refusals (a truncated or
 /// YCCK JPEG) and the size limits already applied. The HTTP side decides from it where the
-/// frame is decoded; [`decode`] then uses its format instead of sniffing again.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub struct Probe {
+/// frame is decoded; [`decode`] then goes on from it. It holds the frame's bytes (`B`: a
+/// shared `Bytes` on the request path, a borrowed slice elsewhere) and, for a JPEG, the
+/// decoder with its header read.
+pub struct Probe<B: AsRef<[u8]>> {
     /// The sniffed format.
     pub format: ImageFormat,
     /// Width as stored (before EXIF orientation).
     pub width: u32,
     /// Height as stored.
     pub height: u32,
+    body: Body<B>,
 }
 
-impl Probe {
+enum Body<B: AsRef<[u8]>> {
+    /// A JPEG's decoder with its header read (boxed: a few kilobytes of tables).
+    Jpeg(Box<JpegDecoder<ZCursor<B>>>),
+    /// Any other format: the `image` crate decodes it from the bytes.
+    Other(B),
+}
+
+impl<B: AsRef<[u8]>> Probe<B> {
     /// Width x height.
     pub fn pixels(&self) -> u64 {
         u64::from(self.width) * u64::from(self.height)
+    }
+}
+
+impl<B: AsRef<[u8]>> std::fmt::Debug for Probe<B> {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Probe")
+            .field("format", &self.format)
+            .field("width", &self.width)
+            .field("height", &self.height)
+            .finish()
     }
 }
 
@@ -54,34 +83,72 @@ impl Probe {
 /// # Errors
 /// `Empty`, `BadImage` (not an image, a broken header, a truncated JPEG), `Unsupported` (a
 /// YCCK JPEG, or a recognised format this build cannot decode), `TooLarge`, `TooSmall`.
-pub fn probe(bytes: &[u8], limits: FrameLimits) -> Result<Probe, PreprocessError> {
-    if bytes.is_empty() {
+pub fn probe<B: AsRef<[u8]>>(bytes: B, limits: FrameLimits) -> Result<Probe<B>, PreprocessError> {
+    let data = bytes.as_ref();
+    if data.is_empty() {
         return Err(PreprocessError::Empty);
     }
-    let format = image::guess_format(bytes).map_err(|_| {
+    let format = image::guess_format(data).map_err(|_| {
         PreprocessError::BadImage("not a recognised image format (expected JPEG, PNG, BMP, TIFF or WebP)".into())
     })?;
-    if format == ImageFormat::Jpeg {
-        // The JPEG decoder fills a truncated scan with grey and reports success; a cut-off
-        // frame (a dropped camera connection) must not be classified as if it were whole.
-        if !ends_with_eoi(bytes) {
-            return Err(PreprocessError::BadImage(
-                "truncated JPEG: the data does not end with the end-of-image marker (FF D9)".into(),
-            ));
+    let (width, height, body) = if format == ImageFormat::Jpeg {
+        let (w, h, decoder) = jpeg_header(bytes)?;
+        (w, h, Body::Jpeg(decoder))
+    } else {
+        let (w, h) =
+            reader(data, format, limits.max_pixels).into_dimensions().map_err(|e| classify(e, limits.max_pixels))?;
+        (w, h, Body::Other(bytes))
+    };
+    check_size(width, height, limits)?;
+    Ok(Probe { format, width, height, body })
+}
+
+/// A JPEG's header, read by the decoder that will decode it.
+fn jpeg_header<B: AsRef<[u8]>>(bytes: B) -> Result<(u32, u32, Box<JpegDecoder<ZCursor<B>>>), PreprocessError> {
+    // The JPEG decoder fills a truncated scan with grey and reports success; a cut-off
+    // frame (a dropped camera connection) must not be classified as if it were whole.
+    if !ends_with_eoi(bytes.as_ref()) {
+        return Err(PreprocessError::BadImage(
+            "truncated JPEG: the data does not end with the end-of-image marker (FF D9)".into(),
+        ));
+    }
+    // Not strict: camera firmware writes stray bytes between segments, which libjpeg and
+    // Pillow accept too. No size limit here: ours is checked from the header right after.
+    let options = DecoderOptions::default().set_strict_mode(false).set_max_width(usize::MAX).set_max_height(usize::MAX);
+    let mut decoder = Box::new(JpegDecoder::new_with_options(ZCursor::new(bytes), options));
+    decoder.decode_headers().map_err(jpeg_error)?;
+    let (w, h) = decoder.dimensions().ok_or_else(|| PreprocessError::BadImage("JPEG without a frame header".into()))?;
+    match decoder.input_colorspace() {
+        Some(ColorSpace::YCCK) => Err(PreprocessError::Unsupported(
+            "Adobe YCCK JPEG (4-channel YCbCr + K): this build's JPEG decoder inverts its colours \
+             (a known upstream bug), so it is refused rather than classified wrongly; \
+             send RGB, grayscale or plain CMYK JPEG, or PNG/TIFF"
+                .into(),
+        )),
+        // Gray stays gray; everything else (YCbCr, RGB, CMYK) is decoded to RGB, as the
+        // `image` crate asks of the same decoder.
+        Some(space @ (ColorSpace::Luma | ColorSpace::LumaA)) => {
+            decoder.set_options(decoder.options().jpeg_set_out_colorspace(space));
+            Ok((to_u32(w), to_u32(h), decoder))
         }
-        if is_adobe_ycck(bytes) {
-            return Err(PreprocessError::Unsupported(
-                "Adobe YCCK JPEG (4-channel YCbCr + K): this build's JPEG decoder inverts its colours \
-                 (a known upstream bug), so it is refused rather than classified wrongly; \
-                 send RGB, grayscale or plain CMYK JPEG, or PNG/TIFF"
-                    .into(),
-            ));
+        _ => {
+            decoder.set_options(decoder.options().jpeg_set_out_colorspace(ColorSpace::RGB));
+            Ok((to_u32(w), to_u32(h), decoder))
         }
     }
-    let (width, height) =
-        reader(bytes, format, limits.max_pixels).into_dimensions().map_err(|e| classify(e, limits.max_pixels))?;
-    check_size(width, height, limits)?;
-    Ok(Probe { format, width, height })
+}
+
+/// JPEG sides are 16-bit (ITU-T T.81 B.2.2), so they always fit.
+fn to_u32(side: usize) -> u32 {
+    u32::try_from(side).unwrap_or(u32::MAX)
+}
+
+fn jpeg_error(e: zune_jpeg::errors::DecodeErrors) -> PreprocessError {
+    use zune_jpeg::errors::DecodeErrors;
+    match e {
+        DecodeErrors::Unsupported(u) => PreprocessError::Unsupported(format!("JPEG: {u:?}")),
+        other => PreprocessError::BadImage(format!("JPEG: {other}")),
+    }
 }
 
 /// A reader of `format` over `bytes`, with the allocation limits every decode runs under.
@@ -97,19 +164,23 @@ fn reader(bytes: &[u8], format: ImageFormat, max_pixels: u64) -> ImageReader<Cur
     reader
 }
 
-/// Decode `bytes`, whose header [`probe`] read, applying EXIF orientation when asked and
-/// dropping alpha.
+/// Decode the frame [`probe`] read, applying EXIF orientation when asked and dropping alpha.
 ///
 /// # Errors
 /// `BadImage` (corrupt data), `Unsupported`, `TooLarge` (the decoder's allocation limit).
-pub fn decode(
-    bytes: &[u8],
-    probe: &Probe,
+pub fn decode<B: AsRef<[u8]>>(
+    probe: Probe<B>,
     max_pixels: u64,
     orientation: Orientation,
 ) -> Result<Frame, PreprocessError> {
-    let mut decoder = reader(bytes, probe.format, max_pixels).into_decoder().map_err(|e| classify(e, max_pixels))?;
-    if decoder.dimensions() != (probe.width, probe.height) {
+    let (width, height) = (probe.width, probe.height);
+    let bytes = match probe.body {
+        Body::Jpeg(decoder) => return decode_jpeg(*decoder, width, height, orientation),
+        Body::Other(bytes) => bytes,
+    };
+    let mut decoder =
+        reader(bytes.as_ref(), probe.format, max_pixels).into_decoder().map_err(|e| classify(e, max_pixels))?;
+    if decoder.dimensions() != (width, height) {
         return Err(PreprocessError::BadImage("the header's size changed between reads".into()));
     }
     let exif = match orientation {
@@ -120,6 +191,47 @@ pub fn decode(
     if let Some(o) = exif {
         img.apply_orientation(o);
     }
+    Ok(frame(img))
+}
+
+/// Decode a JPEG's scan with the decoder that read its header (the size was checked then).
+fn decode_jpeg<B: AsRef<[u8]>>(
+    mut decoder: JpegDecoder<ZCursor<B>>,
+    width: u32,
+    height: u32,
+    orientation: Orientation,
+) -> Result<Frame, PreprocessError> {
+    let exif = match orientation {
+        Orientation::Exif => decoder
+            .exif()
+            .and_then(|chunk| ExifOrientation::from_exif_chunk(chunk))
+            .filter(|o| *o != ExifOrientation::NoTransforms),
+        Orientation::Ignore => None,
+    };
+    let gray = matches!(decoder.output_colorspace(), Some(ColorSpace::Luma | ColorSpace::LumaA));
+    let size = decoder.output_buffer_size().ok_or_else(|| PreprocessError::BadImage("JPEG: header not read".into()))?;
+    let mut data = vec![0u8; size];
+    decoder.decode_into(&mut data).map_err(jpeg_error)?;
+    let channels = match (gray, data.len() / (width as usize * height as usize).max(1)) {
+        (true, 2) => {
+            // Luma + alpha: the alpha dropped, as for any other format.
+            data = data.chunks_exact(2).map(|p| p[0]).collect();
+            1
+        }
+        (true, _) => 1,
+        (false, _) => 3,
+    };
+    let Some(o) = exif else {
+        return Ok(Frame::U8(Plane { width, height, channels, data }));
+    };
+    // Rotations and mirrors through the `image` crate's own (the other formats use it too).
+    let mut img = if channels == 1 {
+        ImageBuffer::from_raw(width, height, data).map(DynamicImage::ImageLuma8)
+    } else {
+        ImageBuffer::from_raw(width, height, data).map(DynamicImage::ImageRgb8)
+    }
+    .ok_or_else(|| PreprocessError::BadImage("JPEG: decoded size does not match the header".into()))?;
+    img.apply_orientation(o);
     Ok(frame(img))
 }
 
@@ -148,33 +260,6 @@ fn frame(img: DynamicImage) -> Frame {
 fn ends_with_eoi(bytes: &[u8]) -> bool {
     let end = bytes.iter().rposition(|&b| b != 0).map_or(0, |i| i + 1);
     bytes[..end].ends_with(&[0xff, 0xd9])
-}
-
-/// Whether a JPEG carries an Adobe APP14 segment with transform = 2 (YCCK), read from the
-/// marker segments before the first scan (ITU-T T.81 B.1.1.4 segment framing; the APP14
-/// layout is Adobe's: "Adobe", version u16, flags0 u16, flags1 u16, transform u8).
-fn is_adobe_ycck(bytes: &[u8]) -> bool {
-    let mut i = 2; // after SOI
-    while i + 4 <= bytes.len() {
-        if bytes[i] != 0xff {
-            return false;
-        }
-        let marker = bytes[i + 1];
-        if marker == 0xff {
-            i += 1; // fill byte
-            continue;
-        }
-        if marker == 0xda || marker == 0xd9 {
-            return false; // start of scan / end of image: no APP14 before the data
-        }
-        let len = usize::from(u16::from_be_bytes([bytes[i + 2], bytes[i + 3]]));
-        let payload = &bytes[(i + 4).min(bytes.len())..(i + 2 + len).min(bytes.len())];
-        if marker == 0xee && payload.len() >= 12 && payload.starts_with(b"Adobe") {
-            return payload[11] == 2;
-        }
-        i += 2 + len;
-    }
-    false
 }
 
 /// Refuse a frame larger than `max_pixels` or with a side below `min_side`.
@@ -216,7 +301,7 @@ mod tests {
     /// Probe, then decode: the two reads every frame gets.
     fn decode(bytes: &[u8], limits: FrameLimits, o: Orientation) -> Result<Frame, PreprocessError> {
         let p = probe(bytes, limits)?;
-        super::decode(bytes, &p, limits.max_pixels, o)
+        super::decode(p, limits.max_pixels, o)
     }
 
     fn png(w: u32, h: u32) -> Vec<u8> {
@@ -269,7 +354,8 @@ mod tests {
 
     #[test]
     fn the_probe_reads_format_and_size_from_the_header_only() {
-        let p = probe(&png(40, 30), lim(1200)).unwrap();
+        let small = png(40, 30);
+        let p = probe(&small, lim(1200)).unwrap();
         assert_eq!((p.format, p.width, p.height, p.pixels()), (ImageFormat::Png, 40, 30, 1200));
         let img = RgbImage::from_fn(64, 48, |x, y| image::Rgb([x as u8, y as u8, 7]));
         let mut jpeg = Vec::new();
@@ -362,20 +448,77 @@ mod tests {
         assert_eq!(rgb(decode(&bytes, lim(100), Orientation::Exif).unwrap()).data, vec![1, 2, 3]);
     }
 
+    /// A 16x16 CMYK JPEG written by Pillow 11 (`Image.fromarray(a, "CMYK").save(q=95)`, C = 10x,
+    /// M = 12y, Y = 60, K = 20), whose Adobe APP14 segment says transform 0 (plain CMYK).
+    fn cmyk_jpeg() -> Vec<u8> {
+        std::fs::read(concat!(env!("CARGO_MANIFEST_DIR"), "/tests/fixtures/images/cmyk_16x16.jpg")).unwrap()
+    }
+
     #[test]
-    fn adobe_ycck_marker_is_detected() {
-        // SOI, APP14 "Adobe" (version 100, flags 0, 0, transform), then SOS.
-        let jpeg = |transform: u8| {
-            let mut j = vec![0xff, 0xd8, 0xff, 0xee, 0x00, 0x0e];
-            j.extend_from_slice(b"Adobe");
-            j.extend_from_slice(&[0x00, 0x64, 0, 0, 0, 0, transform]);
-            j.extend_from_slice(&[0xff, 0xda, 0x00, 0x02, 0xff, 0xd9]);
-            j
-        };
-        assert!(is_adobe_ycck(&jpeg(2)));
-        assert!(!is_adobe_ycck(&jpeg(1)), "transform 1 is YCbCr");
-        assert!(!is_adobe_ycck(&jpeg(0)), "transform 0 is plain RGB/CMYK");
-        let err = decode(&jpeg(2), lim(100), Orientation::Exif).unwrap_err();
+    fn plain_cmyk_decodes_as_the_image_crate_does_and_ycck_is_refused() {
+        let jpeg = cmyk_jpeg();
+        let ours = rgb(decode(&jpeg, lim(1000), Orientation::Exif).unwrap());
+        // Reference: the `image` crate's own JPEG path (which this module replaced for JPEG).
+        let theirs = image::load_from_memory(&jpeg).unwrap().into_rgb8();
+        assert_eq!((ours.width, ours.height, ours.channels), (16, 16, 3));
+        assert_eq!(ours.data, theirs.into_raw());
+        // The same file marked YCCK (APP14 transform byte = 2, Adobe's layout: "Adobe",
+        // version u16, flags0 u16, flags1 u16, transform u8) is refused from its header.
+        let mut ycck = jpeg.clone();
+        let at = ycck.windows(5).position(|w| w == b"Adobe").unwrap() + 11;
+        assert_eq!(ycck[at], 0);
+        ycck[at] = 2;
+        let err = probe(&ycck[..], lim(1000)).unwrap_err();
         assert!(matches!(err, PreprocessError::Unsupported(ref m) if m.contains("YCCK")), "{err:?}");
+    }
+
+    #[test]
+    fn jpeg_decodes_as_the_image_crate_does_in_colour_gray_and_every_exif_orientation() {
+        // Reference: the `image` crate 0.25 (decode, then `apply_orientation` from the EXIF
+        // chunk), the path JPEG took before this decoder was driven directly.
+        let colour = RgbImage::from_fn(24, 16, |x, y| image::Rgb([(x * 10) as u8, (y * 15) as u8, 90]));
+        let gray = image::GrayImage::from_fn(24, 16, |x, y| image::Luma([(x * 7 + y * 3) as u8]));
+        for img in [DynamicImage::ImageRgb8(colour), DynamicImage::ImageLuma8(gray)] {
+            let mut plain = Vec::new();
+            img.write_to(&mut Cursor::new(&mut plain), ImageFormat::Jpeg).unwrap();
+            for o in 1..=8u16 {
+                let jpeg = with_exif_orientation(&plain, o);
+                let ours = rgb(decode(&jpeg, lim(1000), Orientation::Exif).unwrap());
+                let mut theirs = image::load_from_memory(&jpeg).unwrap();
+                theirs.apply_orientation(ExifOrientation::from_exif(o as u8).unwrap());
+                let theirs = match theirs {
+                    DynamicImage::ImageLuma8(i) => (1, i.width(), i.height(), i.into_raw()),
+                    other => {
+                        let i = other.into_rgb8();
+                        (3, i.width(), i.height(), i.into_raw())
+                    }
+                };
+                assert_eq!((ours.channels, ours.width, ours.height, ours.data), theirs, "orientation {o}");
+                let ignored = rgb(decode(&jpeg, lim(1000), Orientation::Ignore).unwrap());
+                assert_eq!((ignored.width, ignored.height), (24, 16), "orientation {o} ignored");
+            }
+        }
+    }
+
+    /// `jpeg` with an APP1 EXIF segment holding one IFD0 entry: Orientation (tag 0x0112,
+    /// SHORT, count 1) = `o` (EXIF 2.32 section 4.6.4; TIFF 6.0 little-endian header "II*").
+    fn with_exif_orientation(jpeg: &[u8], o: u16) -> Vec<u8> {
+        let mut tiff = b"II*\0".to_vec();
+        tiff.extend_from_slice(&8u32.to_le_bytes()); // IFD0 offset
+        tiff.extend_from_slice(&1u16.to_le_bytes()); // one entry
+        tiff.extend_from_slice(&0x0112u16.to_le_bytes());
+        tiff.extend_from_slice(&3u16.to_le_bytes()); // SHORT
+        tiff.extend_from_slice(&1u32.to_le_bytes());
+        tiff.extend_from_slice(&o.to_le_bytes());
+        tiff.extend_from_slice(&[0, 0]);
+        tiff.extend_from_slice(&0u32.to_le_bytes()); // no next IFD
+        let mut app1 = b"Exif\0\0".to_vec();
+        app1.extend_from_slice(&tiff);
+        let mut out = jpeg[..2].to_vec(); // SOI
+        out.extend_from_slice(&[0xff, 0xe1]);
+        out.extend_from_slice(&u16::try_from(app1.len() + 2).unwrap().to_be_bytes());
+        out.extend_from_slice(&app1);
+        out.extend_from_slice(&jpeg[2..]);
+        out
     }
 }

@@ -246,7 +246,7 @@ impl Pipeline {
     ///
     /// # Errors
     /// See [`decode::probe`].
-    pub fn probe(&self, bytes: &[u8]) -> Result<decode::Probe, PreprocessError> {
+    pub fn probe<B: AsRef<[u8]>>(&self, bytes: B) -> Result<decode::Probe<B>, PreprocessError> {
         decode::probe(bytes, self.limits)
     }
 
@@ -254,24 +254,23 @@ impl Pipeline {
     ///
     /// # Errors
     /// See [`PreprocessError`].
-    pub fn run_probed(&self, bytes: &[u8], probe: &decode::Probe) -> Result<Prepared, PreprocessError> {
-        self.prepare(bytes, probe, false, Instant::now())
+    pub fn run_probed<B: AsRef<[u8]>>(&self, probe: decode::Probe<B>) -> Result<Prepared, PreprocessError> {
+        self.prepare(probe, false, Instant::now())
     }
 
     fn run_inner(&self, bytes: &[u8], keep_canvas: bool) -> Result<Prepared, PreprocessError> {
         let t0 = Instant::now();
         let probe = decode::probe(bytes, self.limits)?;
-        self.prepare(bytes, &probe, keep_canvas, t0)
+        self.prepare(probe, keep_canvas, t0)
     }
 
-    fn prepare(
+    fn prepare<B: AsRef<[u8]>>(
         &self,
-        bytes: &[u8],
-        probe: &decode::Probe,
+        probe: decode::Probe<B>,
         keep_canvas: bool,
         t0: Instant,
     ) -> Result<Prepared, PreprocessError> {
-        let frame = decode::decode(bytes, probe, self.limits.max_pixels, self.cfg.orientation)?;
+        let frame = decode::decode(probe, self.limits.max_pixels, self.cfg.orientation)?;
         let t1 = Instant::now();
         let source_size = frame.size();
         let (tensor, canvas) = match frame {

@@ -4,7 +4,6 @@
 use std::path::Path;
 use std::process::Command;
 use std::sync::atomic::Ordering;
-use std::time::Duration;
 
 use serde_json::Value;
 
@@ -195,15 +194,20 @@ print(json.dumps([float(x) for x in np.percentile(v, [50, 90, 99, 99.9], method=
     }
 }
 
-/// A server with one lane that stalls 300 ms once, mid-step. Closed loop with one client:
-/// the client waits through the stall and sends nothing meanwhile, so only the one request in
-/// flight is slow and the percentiles barely move. Open loop at 100/s: frames keep falling
-/// due during the stall and their latency counts from when they were due, so about 30
-/// frames show it.
+/// A server with one lane that stalls 300 ms once, after 30 passes of the step (counted, not
+/// timed). Closed loop with one client: the client waits through the stall and sends nothing
+/// meanwhile, so only the one request in flight is slow and the percentiles barely move. Open
+/// loop at 100/s: frames keep falling due during the stall and their latency counts from when
+/// they were due, so about 30 frames show it.
+///
+/// Only lower bounds that no machine's speed can undercut are relied on: the stalled request
+/// takes at least the 300 ms the lane sleeps, and every frame due in the stall's first 200 ms
+/// (20 at 100/s) is answered after it ends, at least 100 ms after it was due (the one lane is
+/// asleep). The closed loop's "only one" needs no other request to take 300 ms.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn the_open_loop_shows_a_stall_that_the_closed_loop_hides() {
     let mut slow = Vec::new();
-    for mode in [["--concurrency", "1"], ["--rate", "100/s"]] {
+    for (mode, slow_us) in [(["--concurrency", "1"], 300_000), (["--rate", "100/s"], 100_000)] {
         let fault = crate::fault::FaultPlan::default();
         let config = washer_config_with(&[("lanes = \"auto\"", "lanes = 1")]);
         let server = TestServer::start_with_fault(config, fault.clone()).await;
@@ -227,24 +231,25 @@ async fn the_open_loop_shows_a_stall_that_the_closed_loop_hides() {
         .iter()
         .map(|s| s.to_string())
         .collect();
+        let before = fault.entered();
         let run = tokio::task::spawn_blocking(move || {
             let a: Vec<&str> = args.iter().map(String::as_str).collect();
             bench(&a)
         });
-        tokio::time::sleep(Duration::from_millis(800)).await;
+        fault.wait_entered(before + 30).await;
         fault.stall_once_ms.store(300, Ordering::SeqCst);
         let run = run.await.unwrap();
         server.stop().await.unwrap();
         let lat: Vec<u64> = samples(&csv).into_values().next().unwrap();
         assert!(lat.len() >= 20, "{mode:?}: only {} answers", lat.len());
-        let over = lat.iter().filter(|&&v| v > 100_000).count();
+        let over = lat.iter().filter(|&&v| v >= slow_us).count();
         slow.push((over, run["steps"][0]["latency"]["p99_ms"].as_f64().unwrap(), lat.len()));
     }
     let ((closed_slow, _, _), (open_slow, open_p99, open_n)) = (slow[0], slow[1]);
-    assert!(closed_slow <= 1, "closed loop: {closed_slow} answers over 100 ms; only the one in flight should be");
+    assert_eq!(closed_slow, 1, "closed loop: {closed_slow} answers took 300 ms or more; only the one in flight should");
     assert!(
-        open_slow >= 10,
-        "open loop: {open_slow} of {open_n} answers over 100 ms; frames due during the stall should be"
+        open_slow >= 20,
+        "open loop: {open_slow} of {open_n} answers took 100 ms or more; the 20 due in the stall's first 200 ms should"
     );
     assert!(open_p99 >= 100.0, "open loop p99 {open_p99} ms hides the 300 ms stall");
 }
