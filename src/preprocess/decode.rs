@@ -54,9 +54,12 @@ pub struct Probe<B: AsRef<[u8]>> {
     body: Body<B>,
 }
 
+/// A JPEG decoder over the frame's bytes (boxed: a few kilobytes of tables).
+type Jpeg<B> = Box<JpegDecoder<ZCursor<B>>>;
+
 enum Body<B: AsRef<[u8]>> {
-    /// A JPEG's decoder with its header read (boxed: a few kilobytes of tables).
-    Jpeg(Box<JpegDecoder<ZCursor<B>>>),
+    /// A JPEG's decoder with its header read.
+    Jpeg(Jpeg<B>),
     /// Any other format: the `image` crate decodes it from the bytes.
     Other(B),
 }
@@ -104,7 +107,7 @@ pub fn probe<B: AsRef<[u8]>>(bytes: B, limits: FrameLimits) -> Result<Probe<B>, 
 }
 
 /// A JPEG's header, read by the decoder that will decode it.
-fn jpeg_header<B: AsRef<[u8]>>(bytes: B) -> Result<(u32, u32, Box<JpegDecoder<ZCursor<B>>>), PreprocessError> {
+fn jpeg_header<B: AsRef<[u8]>>(bytes: B) -> Result<(u32, u32, Jpeg<B>), PreprocessError> {
     // The JPEG decoder fills a truncated scan with grey and reports success; a cut-off
     // frame (a dropped camera connection) must not be classified as if it were whole.
     if !ends_with_eoi(bytes.as_ref()) {
