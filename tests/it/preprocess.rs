@@ -12,7 +12,7 @@ use std::process::Command;
 
 use serde_json::Value;
 
-use crate::util::{TestServer, config_from_text, python, root, samples, temp_dir, without_selftest};
+use crate::util::{TestApp, config_from_text, python, root, samples, temp_dir, without_selftest};
 
 #[test]
 fn preprocess_matches_pillow_for_every_format_mode_and_filter() {
@@ -161,23 +161,18 @@ async fn served_scores_match_pillow_and_onnxruntime_on_the_original_files() {
             serde_json::json!({"roi": [20, 10, 280, 220], "resize": "letterbox", "pad_value": 40, "filter": "area"}),
         ),
     ];
-    let client = reqwest::Client::new();
     for (label, edit, pre) in variants {
         let text = base.replace(plain, &edit);
-        let server = TestServer::start(config_from_text(&without_selftest(&text))).await;
+        let app = TestApp::start(config_from_text(&without_selftest(&text))).await;
         let theirs = reference_scores(&model, (96, 96), &pre, &files);
         let mut worst = 0.0f64;
         for f in &files {
             let name = f.file_name().unwrap().to_string_lossy().to_string();
-            let resp = client
-                .post(server.url("/classify/washers?top=all"))
-                .header("content-type", "application/octet-stream") // sniffed, not trusted
-                .body(std::fs::read(f).unwrap())
-                .send()
-                .await
-                .unwrap();
-            assert_eq!(resp.status(), 200, "{label}: {name}");
-            let v: Value = resp.json().await.unwrap();
+            // The type is sniffed, not trusted.
+            let headers = [("content-type", "application/octet-stream")];
+            let resp = app.send_with("POST", "/classify/washers?top=all", &headers, std::fs::read(f).unwrap()).await;
+            assert_eq!(resp.status, 200, "{label}: {name}");
+            let v = resp.json();
             let labels: Vec<String> = std::fs::read_to_string(root().join("models/washers/classes.txt"))
                 .unwrap()
                 .lines()
@@ -200,6 +195,5 @@ async fn served_scores_match_pillow_and_onnxruntime_on_the_original_files() {
         // The bound: 0.02 absolute. JPEG decoders differ by about a level (see the
         // test above); lossless files match the tensor exactly and differ by engine rounding.
         assert!(worst <= 0.02, "{label}: max score difference {worst}");
-        server.stop().await.unwrap();
     }
 }

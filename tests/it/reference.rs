@@ -99,21 +99,12 @@ async fn served_scores_match_onnxruntime() {
 
 async fn served_scores_match_onnxruntime_with(config: lineside::config::Config) {
     let threads = config.models[0].batching.lane_threads;
-    let server = TestServer::start(config).await;
-    let c = reqwest::Client::new();
+    let app = crate::util::TestApp::start(config).await;
     let r = reference();
     let labels: Vec<String> = r["labels"].as_array().unwrap().iter().map(|l| l.as_str().unwrap().into()).collect();
     let mut worst = 0.0f64;
     for s in samples() {
-        let v: Value = c
-            .post(server.url("/classify/washers?top=all"))
-            .body(s.bytes.clone())
-            .send()
-            .await
-            .unwrap()
-            .json()
-            .await
-            .unwrap();
+        let v = app.post("/classify/washers?top=all", s.bytes.clone()).await.json();
         let theirs = reference_probs(&r, &s.name);
         assert_eq!(v["label"], r["samples"][&s.name]["label"], "{}: top-1 differs from onnxruntime", s.name);
         for t in v["top"].as_array().unwrap() {
@@ -124,7 +115,6 @@ async fn served_scores_match_onnxruntime_with(config: lineside::config::Config) 
     // The tensors are the same (test above, up to float rounding in the normalisation), so
     // what is left is the engines' rounding: <= 1e-5 measured on the same tensor.
     assert!(worst <= 1e-4, "lane_threads = {threads}: max |served - onnxruntime| = {worst:e}");
-    server.stop().await.unwrap();
 }
 
 /// Requests gathered into one pass each get their own image's scores back, whether the pass

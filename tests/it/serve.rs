@@ -208,19 +208,17 @@ async fn small_frames_decode_on_the_http_thread_with_the_same_answer() {
         .resize_exact(96, 96, image::imageops::FilterType::Triangle)
         .write_to(&mut std::io::Cursor::new(&mut small), image::ImageFormat::Png)
         .unwrap();
-    let c = client();
     let mut answers = Vec::new();
     for (config, http, pool) in [
         (washer_config(), 1.0, 1.0),
         (washer_config_with(&[("# decode_inline_pixels = 16384", "decode_inline_pixels = 0")]), 0.0, 2.0),
     ] {
-        let server = TestServer::start(config).await;
+        let app = TestApp::start(config).await;
         let mut tops = Vec::new();
         for body in [&small, &big] {
-            let r = c.post(server.url("/classify/washers?top=all")).body(body.clone()).send().await.unwrap();
-            assert_eq!(r.status(), 200);
-            let v: Value = r.json().await.unwrap();
-            tops.push(v["top"].clone());
+            let r = app.post("/classify/washers?top=all", body.clone()).await;
+            assert_eq!(r.status, 200);
+            tops.push(r.json()["top"].clone());
         }
         // A multipart burst's parts decode on the pool, however small: in parallel there.
         let mut burst = Vec::new();
@@ -231,21 +229,16 @@ async fn small_frames_decode_on_the_http_thread_with_the_same_answer() {
             burst.extend_from_slice(b"\r\n");
         }
         burst.extend_from_slice(b"--zz--\r\n");
-        let r = c
-            .post(server.url("/classify/washers"))
-            .header("content-type", "multipart/form-data; boundary=zz")
-            .body(burst)
-            .send()
-            .await
-            .unwrap();
-        assert_eq!(r.status(), 200);
-        let v: Value = r.json().await.unwrap();
+        let r = app
+            .send_with("POST", "/classify/washers", &[("content-type", "multipart/form-data; boundary=zz")], burst)
+            .await;
+        assert_eq!(r.status, 200);
+        let v = r.json();
         assert_eq!(v["results"].as_array().unwrap().len(), 2, "{v}");
-        let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
+        let m = app.metrics().await;
         assert_eq!(metric(&m, r#"lineside_frames_decoded_total{model="washers",thread="http"}"#), http);
         assert_eq!(metric(&m, r#"lineside_frames_decoded_total{model="washers",thread="pool"}"#), pool + 2.0);
         answers.push(tops);
-        server.stop().await.unwrap();
     }
     // Same pipeline code on either thread: the same scores to the bit.
     assert_eq!(answers[0], answers[1]);
@@ -374,28 +367,27 @@ async fn a_request_past_its_deadline_gets_504_and_never_reaches_the_engine() {
 async fn a_panic_in_a_lane_answers_500_inference_failed_and_the_lane_serves_on() {
     let fault = FaultPlan::default();
     fault.panic_countdown.store(2, Ordering::SeqCst);
-    let server = TestServer::start_with_fault(washer_config_with(&[ONE_LANE]), fault).await;
-    let c = client();
+    let app = TestApp::start_with_fault(washer_config_with(&[ONE_LANE]), &fault).await;
     let s = &samples()[0];
     let mut statuses = Vec::new();
     for _ in 0..5 {
-        let r = c.post(server.url("/classify/washers")).body(s.bytes.clone()).send().await.unwrap();
-        statuses.push(r.status().as_u16());
-        if r.status() == 500 {
-            let msg = expect_error(r, 500, "inference_failed").await;
+        let r = app.post("/classify/washers", s.bytes.clone()).await;
+        statuses.push(r.status);
+        if r.status == 500 {
+            let msg = r.error(500, "inference_failed");
             assert!(msg.contains("restarted") && !msg.contains("injected"), "generic message: {msg}");
         }
     }
     assert_eq!(statuses, [200, 500, 200, 200, 200]);
-    let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
+    let m = app.metrics().await;
     assert_eq!(metric(&m, r#"lineside_lane_restarts_total{model="washers"}"#), 1.0);
     assert_eq!(metric(&m, r#"lineside_lane_failures_total{model="washers"}"#), 1.0);
     assert_eq!(washer_requests(&m, "inference_failed"), 1.0);
-    let live = c.get(server.url("/healthz")).send().await.unwrap();
-    assert_eq!(live.status(), 200);
-    server.stop().await.unwrap();
+    assert_eq!(app.get("/healthz").await.status, 200);
 }
 
+/// Through a real client's multipart encoder (reqwest's) and a socket: the parser must read
+/// what clients actually send, not only bodies written by hand.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn multipart_answers_every_part_in_order_good_and_bad() {
     let server = TestServer::start(washer_config()).await;

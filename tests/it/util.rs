@@ -337,9 +337,25 @@ impl Answer {
 impl TestApp {
     /// Load `config`'s models and build the app.
     pub(crate) async fn start(config: Config) -> TestApp {
-        let (router, guards) =
-            tokio::task::spawn_blocking(move || lineside::server::ready_app(&config, None)).await.unwrap().unwrap();
+        Self::start_wrapped(config, None).await
+    }
+
+    /// Load `config`'s models with `fault` around every lane's engine, and build the app.
+    pub(crate) async fn start_with_fault(config: Config, fault: &crate::fault::FaultPlan) -> TestApp {
+        Self::start_wrapped(config, Some(fault.wrap())).await
+    }
+
+    async fn start_wrapped(config: Config, wrap: Option<lineside::model::StateWrap>) -> TestApp {
+        let (router, guards) = tokio::task::spawn_blocking(move || lineside::server::ready_app(&config, wrap.as_ref()))
+            .await
+            .unwrap()
+            .unwrap();
         TestApp { router, _guards: guards }
+    }
+
+    /// The metrics as `parse_metrics` reads them.
+    pub(crate) async fn metrics(&self) -> std::collections::HashMap<String, f64> {
+        parse_metrics(&self.get("/metrics").await.text())
     }
 
     /// Send one request.
