@@ -2,8 +2,9 @@
 //!
 //! `check` loads a model and verifies its input/output contract, `serve` answers images over
 //! HTTP (decode, preprocess, batch, infer) with health probes and Prometheus metrics,
-//! `preprocess` writes the exact tensor a model gets for one image, and `bench` says
-//! whether this box keeps up with the line's frame rate within its budget per frame.
+//! `preprocess` writes the exact tensor a model gets for one image, `bench` says
+//! whether this box keeps up with the line's frame rate within its budget per frame, and
+//! `evaluate` qualifies a model on labelled line frames through the same serving path.
 //!
 //! # Layout
 //!
@@ -18,6 +19,7 @@
 //! | [`batch`] | per-model backlog, inference lanes, pass formation, deadlines at the lane |
 //! | [`selftest`] | sample images through the serving path at load, against expectations |
 //! | [`served`] | the one loading path every command uses; a served model's lanes |
+//! | [`evaluate`] | labelled frames scored through the serving path; the figures, reports and baseline |
 //! | [`verify`] | what `check` finds out about a model, as JSON or text |
 //! | [`http`] | router, handlers, request ids, multipart, the OpenAPI document, the one error type |
 //! | [`metrics`] | the registry and the response-counting middleware |
@@ -32,6 +34,7 @@ pub mod batch;
 pub mod bench;
 pub mod cli;
 pub mod config;
+pub mod evaluate;
 pub mod http;
 pub mod metrics;
 pub mod model;

@@ -1,5 +1,6 @@
 //! The `lineside` binary: parse arguments, start logging, run a subcommand, map its result
-//! to an exit code (0 ok, 1 `check` found a model unservable, 2 usage, config or I/O error).
+//! to an exit code (0 ok, 1 `check` found a model unservable or `evaluate` scored no frame,
+//! 2 usage, config, data set or I/O error).
 
 use std::process::ExitCode;
 
@@ -36,12 +37,13 @@ fn main() -> ExitCode {
     let result = match cli.command {
         Command::Serve(args) => lineside::cli::serve::run(args),
         Command::Check(args) => lineside::cli::check::run(args),
+        Command::Evaluate(args) => lineside::cli::evaluate::run(args),
         Command::Preprocess(args) => lineside::cli::preprocess::run(args),
         Command::Bench(args) => lineside::cli::bench::run(args),
     };
     match result {
         Ok(Outcome::Ok) => ExitCode::SUCCESS,
-        Ok(Outcome::ModelUnservable) => ExitCode::from(1),
+        Ok(Outcome::ModelUnservable | Outcome::NothingEvaluated) => ExitCode::from(1),
         Err(e) => {
             eprintln!("lineside: {e:#}");
             ExitCode::from(2)

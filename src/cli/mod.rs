@@ -2,6 +2,7 @@
 
 pub mod bench;
 pub mod check;
+pub mod evaluate;
 pub mod preprocess;
 pub mod serve;
 
@@ -53,6 +54,9 @@ pub enum Command {
     Serve(serve::ServeArgs),
     /// Load the configured models, verify their contract and print it.
     Check(check::CheckArgs),
+    /// Qualify a model on labelled line frames through its serving path: accuracy, per-class
+    /// figures, confusion, calibration, the threshold trade-off, a candidate's comparison.
+    Evaluate(evaluate::EvaluateArgs),
     /// Write the exact input tensor a model gets for one image (.npy), and a preview.
     Preprocess(preprocess::PreprocessArgs),
     /// Say whether this box keeps up with the line (its frames per second within its budget
@@ -76,4 +80,6 @@ pub enum Outcome {
     Ok,
     /// Exit 1: a model would not serve.
     ModelUnservable,
+    /// Exit 1: `evaluate` scored no frame (every one failed, or the set is empty).
+    NothingEvaluated,
 }

@@ -278,4 +278,21 @@ mod tests {
             assert_ne!(ApiError::from(e).kind, ErrorKind::Internal);
         }
     }
+
+    #[test]
+    fn evaluate_names_preprocessing_failures_as_the_api_does() {
+        let all = [
+            PreprocessError::Empty,
+            PreprocessError::BadImage("x".into()),
+            PreprocessError::Unsupported("gif".into()),
+            PreprocessError::TooLarge { width: 9, height: 9, max_pixels: 1 },
+            PreprocessError::TooLargeUnknown { max_pixels: 1, detail: "x".into() },
+            PreprocessError::TooSmall { width: 1, height: 1, min_side: 8 },
+            PreprocessError::Internal("x".into()),
+        ];
+        for e in all {
+            let kind = e.kind();
+            assert_eq!(ApiError::from(e).kind.as_str(), kind);
+        }
+    }
 }

@@ -115,6 +115,21 @@ pub enum PreprocessError {
     Internal(String),
 }
 
+impl PreprocessError {
+    /// The error's kind as the HTTP API names it (`bad_image`, `unsupported_format`,
+    /// `too_large`, `too_small`, `roi_outside`, `internal`).
+    pub fn kind(&self) -> &'static str {
+        match self {
+            PreprocessError::Empty | PreprocessError::BadImage(_) => "bad_image",
+            PreprocessError::Unsupported(_) => "unsupported_format",
+            PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. } => "too_large",
+            PreprocessError::TooSmall { .. } => "too_small",
+            PreprocessError::RoiOutside { .. } => "roi_outside",
+            PreprocessError::Internal(_) => "internal",
+        }
+    }
+}
+
 /// One image, ready for the engine.
 #[derive(Debug)]
 pub struct Prepared {
