@@ -42,17 +42,28 @@ impl Dataset {
         } else if path.extension().is_some_and(|e| e.eq_ignore_ascii_case("csv")) {
             from_csv(path, labels)?
         } else if path.exists() {
-            bail!("{}: expected a folder with one sub-folder per class, or a CSV file with a header `file,label`", path.display());
+            bail!(
+                "{}: expected a folder with one sub-folder per class, or a CSV file with a header `file,label`",
+                path.display()
+            );
         } else {
             bail!("{}: no such folder or CSV file", path.display());
         };
-        let absent = labels.iter().enumerate().filter(|(i, _)| !items.iter().any(|it| it.truth == *i)).map(|(_, l)| l.clone()).collect();
+        let absent = labels
+            .iter()
+            .enumerate()
+            .filter(|(i, _)| !items.iter().any(|it| it.truth == *i))
+            .map(|(_, l)| l.clone())
+            .collect();
         Ok(Dataset { root: path.to_path_buf(), items, absent })
     }
 }
 
 fn not_a_class(what: &str, name: &str, labels: &[String]) -> anyhow::Error {
-    anyhow::anyhow!("{what} {name:?} is not a class of this model; its classes (labels file order) are: {}", labels.join(", "))
+    anyhow::anyhow!(
+        "{what} {name:?} is not a class of this model; its classes (labels file order) are: {}",
+        labels.join(", ")
+    )
 }
 
 fn from_folders(root: &Path, labels: &[String]) -> anyhow::Result<Vec<Item>> {
@@ -121,8 +132,10 @@ fn from_csv(csv: &Path, labels: &[String]) -> anyhow::Result<Vec<Item>> {
         let [file, label] = fields.as_slice() else {
             bail!("{}: expected two fields `file,label`, found {}: {line:?}", at(), fields.len());
         };
-        let truth =
-            labels.iter().position(|l| l == label).ok_or_else(|| not_a_class(&format!("{}: label", at()), label, labels))?;
+        let truth = labels
+            .iter()
+            .position(|l| l == label)
+            .ok_or_else(|| not_a_class(&format!("{}: label", at()), label, labels))?;
         items.push(Item { path: base.join(file), file: file.clone(), truth });
     }
     Ok(items)

@@ -25,16 +25,29 @@ pub fn page(doc: &Document, root: &Path) -> String {
     summary_table(&mut o, doc);
     let _ = write!(o, "<h2>Per class</h2>");
     class_table(&mut o, s);
-    let _ = write!(o, "<div class=\"charts\"><figure><figcaption>Confusion matrix (rows true, columns predicted; shade = share of the row)</figcaption>{}</figure>", heatmap(s));
+    let _ = write!(
+        o,
+        "<div class=\"charts\"><figure><figcaption>Confusion matrix (rows true, columns predicted; shade = share of the row)</figcaption>{}</figure>",
+        heatmap(s)
+    );
     match s.ece {
         Some(e) => {
-            let _ = write!(o, "<figure><figcaption>Reliability: accuracy per top-score bin (15 bins), ECE {e:.4}</figcaption>{}</figure>", reliability(s));
+            let _ = write!(
+                o,
+                "<figure><figcaption>Reliability: accuracy per top-score bin (15 bins), ECE {e:.4}</figcaption>{}</figure>",
+                reliability(s)
+            );
         }
         None => {
-            let _ = write!(o, "<figure><figcaption>Reliability: n/a (the scores are not softmax)</figcaption></figure>");
+            let _ =
+                write!(o, "<figure><figcaption>Reliability: n/a (the scores are not softmax)</figcaption></figure>");
         }
     }
-    let _ = write!(o, "<figure><figcaption>Threshold trade-off: frames sent to review and error among the rest, by min_score</figcaption>{}</figure></div>", threshold_curve(s));
+    let _ = write!(
+        o,
+        "<figure><figcaption>Threshold trade-off: frames sent to review and error among the rest, by min_score</figcaption>{}</figure></div>",
+        threshold_curve(s)
+    );
     if let Some(sug) = &doc.suggestion {
         let _ = write!(o, "<p><b>Target error {:.2}%:</b> {}</p>", sug.target_error * 100.0, esc(&sug.statement));
     }
@@ -72,9 +85,14 @@ pub fn page(doc: &Document, root: &Path) -> String {
     }
     wrong_frames(&mut o, &doc.predictions, root);
     if !doc.failed.is_empty() {
-        let _ = write!(o, "<h2>Failed frames ({})</h2><table><tr><th>frame</th><th>kind</th><th>message</th></tr>", doc.failed.len());
+        let _ = write!(
+            o,
+            "<h2>Failed frames ({})</h2><table><tr><th>frame</th><th>kind</th><th>message</th></tr>",
+            doc.failed.len()
+        );
         for f in &doc.failed {
-            let _ = write!(o, "<tr><td>{}</td><td>{}</td><td>{}</td></tr>", esc(&f.file), esc(&f.kind), esc(&f.message));
+            let _ =
+                write!(o, "<tr><td>{}</td><td>{}</td><td>{}</td></tr>", esc(&f.file), esc(&f.kind), esc(&f.message));
         }
         let _ = write!(o, "</table>");
     }
@@ -117,7 +135,10 @@ fn summary_table(o: &mut String, doc: &Document) {
 }
 
 fn class_table(o: &mut String, s: &Summary) {
-    let _ = write!(o, "<table><tr><th>class</th><th>precision</th><th>recall</th><th>recall 95% CI</th><th>F1</th><th>support</th></tr>");
+    let _ = write!(
+        o,
+        "<table><tr><th>class</th><th>precision</th><th>recall</th><th>recall 95% CI</th><th>F1</th><th>support</th></tr>"
+    );
     for c in &s.per_class {
         let _ = write!(
             o,
@@ -194,8 +215,14 @@ fn unit_axes(xlabel: &str, ylabel: &str) -> (String, impl Fn(f64, f64) -> (f64, 
         let _ = write!(o, "<text x=\"{x}\" y=\"{}\" text-anchor=\"middle\">{v:.2}</text>", t + h + 14.0);
         let _ = write!(o, "<text x=\"{}\" y=\"{}\" text-anchor=\"end\">{v:.2}</text>", l - 4.0, y + 4.0);
     }
-    let _ = write!(o, "<text x=\"{}\" y=\"{}\" text-anchor=\"middle\">{}</text>", l + w / 2.0, t + h + 32.0, esc(xlabel));
-    let _ = write!(o, "<text transform=\"translate(12,{}) rotate(-90)\" text-anchor=\"middle\">{}</text>", t + h / 2.0, esc(ylabel));
+    let _ =
+        write!(o, "<text x=\"{}\" y=\"{}\" text-anchor=\"middle\">{}</text>", l + w / 2.0, t + h + 32.0, esc(xlabel));
+    let _ = write!(
+        o,
+        "<text transform=\"translate(12,{}) rotate(-90)\" text-anchor=\"middle\">{}</text>",
+        t + h / 2.0,
+        esc(ylabel)
+    );
     (o, map)
 }
 
@@ -203,7 +230,8 @@ fn reliability(s: &Summary) -> String {
     let (mut o, map) = unit_axes("top score (confidence)", "accuracy");
     let (x0, y0) = map(0.0, 0.0);
     let (x1, y1) = map(1.0, 1.0);
-    let _ = write!(o, "<line x1=\"{x0}\" y1=\"{y0}\" x2=\"{x1}\" y2=\"{y1}\" stroke=\"#999\" stroke-dasharray=\"4 3\"/>");
+    let _ =
+        write!(o, "<line x1=\"{x0}\" y1=\"{y0}\" x2=\"{x1}\" y2=\"{y1}\" stroke=\"#999\" stroke-dasharray=\"4 3\"/>");
     for b in s.reliability.iter().filter(|b| b.count > 0) {
         let (xa, ya) = map(b.low, b.accuracy);
         let (xb, yb) = map(b.high, 0.0);
@@ -236,7 +264,11 @@ fn threshold_curve(s: &Summary) -> String {
                 format!("{x:.1},{y:.1}")
             })
             .collect();
-        let _ = write!(o, "<polyline fill=\"none\" stroke=\"{colour}\" stroke-width=\"2\" points=\"{}\"><title>{name}</title></polyline>", pts.join(" "));
+        let _ = write!(
+            o,
+            "<polyline fill=\"none\" stroke=\"{colour}\" stroke-width=\"2\" points=\"{}\"><title>{name}</title></polyline>",
+            pts.join(" ")
+        );
     }
     let (lx, ly) = map(0.04, 0.95);
     let _ = write!(
@@ -256,8 +288,10 @@ fn wrong_frames(o: &mut String, preds: &[Prediction], root: &Path) {
     let base = if root.is_dir() { root } else { root.parent().unwrap_or(Path::new(".")) };
     let _ = write!(o, "<div class=\"thumbs\">");
     for p in wrong.iter().take(MAX_THUMBNAILS) {
-        let img = thumbnail(&base.join(&p.file))
-            .map_or_else(|| "<i>(no preview)</i>".to_string(), |d| format!("<img alt=\"{}\" src=\"data:image/png;base64,{d}\">", esc(&p.file)));
+        let img = thumbnail(&base.join(&p.file)).map_or_else(
+            || "<i>(no preview)</i>".to_string(),
+            |d| format!("<img alt=\"{}\" src=\"data:image/png;base64,{d}\">", esc(&p.file)),
+        );
         let truth_score = p.scores.get(p.truth_index).copied().unwrap_or(f32::NAN);
         let _ = write!(
             o,

@@ -82,11 +82,8 @@ async fn score_one(models: &[Arc<ServedModel>], item: &Item) -> Scored {
             .await
             .map_err(|e| fail("internal", format!("preprocessing panicked: {e}")))?
             .map_err(|e| fail(e.kind(), e.to_string()))?;
-        let scored = m
-            .batcher
-            .infer_background(prepared.tensor)
-            .await
-            .map_err(|e| fail("inference_failed", e.to_string()))?;
+        let scored =
+            m.batcher.infer_background(prepared.tensor).await.map_err(|e| fail("inference_failed", e.to_string()))?;
         all.push(scored.scores);
     }
     Ok(all)

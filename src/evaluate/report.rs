@@ -76,17 +76,25 @@ pub fn render(doc: &Document) -> String {
         s.frames,
         doc.failed.len()
     );
-    figures(&mut o, s);
+    if s.frames == 0 {
+        let _ = writeln!(o, "  no frame was scored: nothing to report but the failures below");
+    } else {
+        figures(&mut o, s);
+        trade_off(&mut o, s);
+    }
     if !doc.absent.is_empty() {
         let _ = writeln!(o, "  absent from the set (no frames): {}", doc.absent.join(", "));
     }
-    trade_off(&mut o, s);
     if let Some(sug) = &doc.suggestion {
         let _ = writeln!(o, "  target error {}: {}", pct(sug.target_error), sug.statement);
     }
     if let Some(a) = &doc.against {
         let c = &a.comparison;
-        let _ = writeln!(o, "\nagainst {} {} ({}) on the same {} frames:", a.id.model, a.id.version, a.id.engine, c.compared);
+        let _ = writeln!(
+            o,
+            "\nagainst {} {} ({}) on the same {} frames:",
+            a.id.model, a.id.version, a.id.engine, c.compared
+        );
         figures(&mut o, &a.summary);
         let _ = writeln!(
             o,
@@ -188,8 +196,8 @@ pub const BASELINE_VERSION: u32 = 1;
 pub struct Baseline {
     /// Always "lineside-baseline".
     pub format: &'static str,
-    /// [`BASELINE_VERSION`].
-    pub version: u32,
+    /// [`BASELINE_VERSION`] (`version` is the model's).
+    pub format_version: u32,
     /// The model it describes.
     #[serde(flatten)]
     pub id: ModelId,
@@ -212,10 +220,8 @@ impl Baseline {
     pub fn of(doc: &Document) -> Baseline {
         let labels = doc.summary.confusion.labels.clone();
         let n = doc.predictions.len().max(1) as f64;
-        let label_shares = labels
-            .iter()
-            .map(|l| doc.predictions.iter().filter(|p| &p.label == l).count() as f64 / n)
-            .collect();
+        let label_shares =
+            labels.iter().map(|l| doc.predictions.iter().filter(|p| &p.label == l).count() as f64 / n).collect();
         let mut counts = vec![0u64; 20];
         for p in &doc.predictions {
             let s = f64::from(p.score).clamp(0.0, 1.0);
@@ -223,7 +229,7 @@ impl Baseline {
         }
         Baseline {
             format: "lineside-baseline",
-            version: BASELINE_VERSION,
+            format_version: BASELINE_VERSION,
             id: doc.id.clone(),
             set: doc.set.clone(),
             frames: doc.summary.frames,

@@ -176,7 +176,8 @@ pub fn summarise(preds: &[Prediction], labels: &[String], calibrated: bool) -> S
         })
         .collect();
     let present: Vec<&ClassFigures> = per_class.iter().filter(|c| c.support > 0).collect();
-    let balanced_accuracy = present.iter().map(|c| c.recall).sum::<f64>() / present.len().max(1) as f64;
+    let balanced_accuracy =
+        if present.is_empty() { 0.0 } else { present.iter().map(|c| c.recall).sum::<f64>() / present.len() as f64 };
     let avg = |w: &dyn Fn(&ClassFigures) -> f64| {
         let total: f64 = per_class.iter().map(w).sum();
         let mean = |f: &dyn Fn(&ClassFigures) -> f64| {
@@ -236,11 +237,8 @@ fn threshold_point(tops: &[(f32, bool)], t: f64) -> ThresholdPoint {
 pub fn suggest(preds: &[Prediction], target: f64) -> Suggestion {
     let mut tops: Vec<(f32, bool)> = preds.iter().map(|p| (p.score, p.right())).collect();
     tops.sort_by(|a, b| a.0.total_cmp(&b.0));
-    let frames_needed = if target <= 0.0 || target >= 1.0 {
-        u64::MAX
-    } else {
-        (0.025f64.ln() / (1.0 - target).ln()).ceil() as u64
-    };
+    let frames_needed =
+        if target <= 0.0 || target >= 1.0 { u64::MAX } else { (0.025f64.ln() / (1.0 - target).ln()).ceil() as u64 };
     // Thresholds from low to high: the first that supports the target reviews the least.
     let mut wrong_from: Vec<u64> = vec![0; tops.len() + 1];
     for i in (0..tops.len()).rev() {
@@ -287,7 +285,8 @@ pub fn suggest(preds: &[Prediction], target: f64) -> Suggestion {
         match best {
             Some((i, e)) => format!(
                 "no min_score reaches a residual error of {:.2}% with 95% confidence on this set: the lowest upper bound is \
-                 {:.2}% ({} errors among {} frames kept at min_score {:.4}); the model needs improving, or more frames",
+                 {:.2}% ({} errors among {} frames kept at min_score {:.4}); the target needs at least {frames_needed} \
+                 kept frames with no error among them: a better model, or more frames",
                 target * 100.0,
                 e.high * 100.0,
                 e.k,
@@ -376,12 +375,8 @@ mod tests {
     #[test]
     fn hand_counted_figures() {
         // Truth a a b c; predicted a b b b.
-        let p = [
-            pred(0, [0.8, 0.1, 0.1]),
-            pred(0, [0.3, 0.6, 0.1]),
-            pred(1, [0.1, 0.7, 0.2]),
-            pred(2, [0.1, 0.5, 0.4]),
-        ];
+        let p =
+            [pred(0, [0.8, 0.1, 0.1]), pred(0, [0.3, 0.6, 0.1]), pred(1, [0.1, 0.7, 0.2]), pred(2, [0.1, 0.5, 0.4])];
         let s = summarise(&p, &labels(), true);
         assert_eq!(s.confusion.matrix, [[1, 1, 0], [0, 1, 0], [0, 1, 0]]);
         assert_eq!(s.accuracy, 0.5);

@@ -10,6 +10,7 @@
 mod bench;
 mod check;
 mod cli;
+mod evaluate;
 mod fault;
 mod load;
 mod preprocess;
