@@ -13,6 +13,20 @@ Two variants (--variant), one a camera station of the same line:
           evaluation transform. It exists so that a guide can walk "serve your own model" on a
           model whose preprocessing is not the built-in default; it trains in a few minutes.
 
+The demo trains on frames of two spreads (see Spread): every other frame is a standard one
+(the kind the held-out set, the samples and mono64 use), the rest come from TRAIN_WIDE:
+smaller and fainter cracks (part of the way across the ring), short, thin and dull burrs,
+brighter and darker exposure, a black-level shift, uneven illumination (a spot and a ramp),
+more blur, washers running off the frame's edge. The held-out accuracy is measured on standard
+frames only, so it stays comparable from one recipe to the next.
+
+--eval-set DIR renders the demo's labelled evaluation set instead of training:
+DIR/<class>/<class>-NNN.png (320x240 RGB PNGs like the samples, --eval-per-class of each class,
+default 40) and DIR/eval-set.json, from --eval-seed (default 20261215), a stream of its own,
+with EVAL_SPREAD: the wide variations above (the defect always inside the frame), without
+sensor noise (it would make the PNGs ~6 times larger; see EVAL_SPREAD). Every frame rendered is
+written; none is dropped for what a model makes of it. 200 frames are about 3.7 MB.
+
 Everything is deterministic from --seed: the frames come from numpy's PCG64 stream, the
 trainer is plain numpy (im2col convolutions, Adam), and BLAS runs on one thread so that the
 float reductions happen in the same order on every run. Package versions are pinned in
@@ -37,6 +51,7 @@ Usage:
     .venv/bin/python tools/washers.py --out /tmp/w --eval-only       # re-measure accuracy
     .venv/bin/python tools/washers.py --variant mono64 --out /tmp/station2  # ~5 min on 2 cores
     .venv/bin/python tools/washers.py --variant mono64 --out /tmp/station2 --eval-only
+    .venv/bin/python tools/washers.py --eval-set /tmp/washers-eval   # 200 labelled frames, ~20 s
 """
 
 import argparse
@@ -61,13 +76,96 @@ IN_W, IN_H = 96, 96
 # --------------------------------------------------------------------------- rendering
 
 
-def render(rng: np.random.Generator, label: str, centred: Optional[float] = None) -> np.ndarray:
+@dataclass(frozen=True)
+class Spread:
+    """How widely render() varies a frame: the (low, high) of its uniform draws.
+
+    The defaults are the standard renderer (the held-out set, the samples, mono64's frames).
+    `extras` adds draws the standard renderer does not make (crack opacity and extent, black
+    level, uneven illumination, defects kept inside the frame), so a default Spread leaves the
+    random stream, and every frame drawn from it, exactly as it was.
+    """
+
+    exposure: tuple = (0.75, 1.25)  # gain on the whole frame
+    blur: tuple = (0.0, 1.6)  # Gaussian radius, px at 320x240 (none below 0.2)
+    noise: tuple = (1.5, 7.0)  # sensor noise sigma, grey levels
+    margin: float = 6.0  # px between the washer's rim and the frame's edge; negative: it runs off
+    crack_width: tuple = (2.5, 4.5)
+    crack_dark: tuple = (15, 50)
+    burr_length: tuple = (16, 28)
+    burr_half: tuple = (5.0, 8.0)  # half-width at the spur's root
+    burr_bright: tuple = (225, 255)
+    extras: bool = False
+    crack_opacity: tuple = (1.0, 1.0)  # 1: the crack is `dark`; less: a fainter line
+    crack_extent: tuple = (1.0, 1.0)  # share of the ring's width it crosses, from either edge
+    black: tuple = (0.0, 0.0)  # black-level offset, grey levels, added after the gain
+    uneven: float = 0.0  # illumination: a spot and a ramp, each up to +-this share of the gain
+
+
+STANDARD = Spread()
+
+# The evaluation set's renderer (--eval-set): wider than STANDARD in every direction the brief of
+# a line inspection asks about: smaller and fainter cracks and burrs, brighter and darker
+# exposure, a black-level shift, uneven illumination, more blur, washers up to 16 px over the
+# frame's edge (the defect itself always inside). The faintest defects are still meant to be
+# visible to a person looking at the 320x240 frame: a crack at least 1.8 px wide and 45 % of
+# the way to its dark level, a spur at least 8 px long (a labelling floor, not a measurement).
+# No sensor noise: it dominates a PNG's size (STANDARD's 1.5-7 grey levels cost ~125 kB a frame,
+# 0.5-1.5 still ~85 kB; none, ~16 kB, so 200 frames stay near 3 MB), and the 320x240 -> 96x96
+# downscale averages most of it away. Its draws are still made, so the frames are the ones a
+# noisy spread would render, less the noise.
+EVAL_SPREAD = Spread(
+    exposure=(0.55, 1.5),
+    blur=(0.0, 2.2),
+    noise=(0.0, 0.0),
+    margin=-16.0,
+    crack_width=(1.8, 4.5),
+    crack_dark=(15, 60),
+    burr_length=(8, 28),
+    burr_half=(2.5, 8.0),
+    burr_bright=(150, 255),
+    extras=True,
+    crack_opacity=(0.45, 1.0),
+    crack_extent=(0.35, 1.0),
+    black=(-12.0, 18.0),
+    uneven=0.3,
+)
+EVAL_SEED, EVAL_PER_CLASS = 20261215, 40
+
+# The demo's training renders every other frame with this spread (the rest with STANDARD): a
+# little wider than EVAL_SPREAD in each range, with STANDARD's sensor noise. Trained on STANDARD
+# frames alone, the model let 31 of the evaluation set's 120 defective washers (22 of 40 faint or
+# short cracks, 9 of 40 small burrs) through as good (seed 20261201, eval seed 20261215).
+TRAIN_WIDE = Spread(
+    exposure=(0.5, 1.55),
+    blur=(0.0, 2.2),
+    noise=STANDARD.noise,
+    margin=-20.0,
+    crack_width=(1.8, 4.5),
+    crack_dark=(15, 60),
+    burr_length=(8, 28),
+    burr_half=(2.5, 8.0),
+    burr_bright=(140, 255),
+    extras=True,
+    crack_opacity=(0.5, 1.0),
+    crack_extent=(0.35, 1.0),
+    black=(-15.0, 20.0),
+    uneven=0.35,
+)
+
+
+def _inside(points, pad=3.0):
+    return all(pad <= x <= FRAME_W - 1 - pad and pad <= y <= FRAME_H - 1 - pad for x, y in points)
+
+
+def render(rng: np.random.Generator, label: str, centred: Optional[float] = None, spread: Spread = STANDARD) -> np.ndarray:
     """One 320x240 RGB frame of the given class, as uint8 HxWx3.
 
     `centred`: the washer's centre lies within this many pixels of the frame's centre (a station
-    with a centring fixture); None: anywhere the whole washer fits. Either way one draw a
-    coordinate, so the stream of the other draws is the same.
+    with a centring fixture); None: anywhere `spread.margin` allows. Either way one draw a
+    coordinate, so the stream of the other draws is the same. `spread`: see Spread.
     """
+    s = spread
     yy, xx = np.mgrid[0:FRAME_H, 0:FRAME_W].astype(np.float32)
 
     # Dark belt: base level, a lighting gradient, lengthwise grain.
@@ -82,8 +180,8 @@ def render(rng: np.random.Generator, label: str, centred: Optional[float] = None
     if label != "empty":
         R = rng.uniform(52, 80)
         if centred is None:
-            cx = rng.uniform(R + 6, FRAME_W - R - 6)
-            cy = rng.uniform(R + 6, FRAME_H - R - 6)
+            cx = rng.uniform(R + s.margin, FRAME_W - R - s.margin)
+            cy = rng.uniform(R + s.margin, FRAME_H - R - s.margin)
         else:
             cx = rng.uniform(FRAME_W / 2 - centred, FRAME_W / 2 + centred)
             cy = rng.uniform(FRAME_H / 2 - centred, FRAME_H / 2 + centred)
@@ -93,6 +191,12 @@ def render(rng: np.random.Generator, label: str, centred: Optional[float] = None
         # rotate into the washer's frame, squash one axis
         u = np.cos(rot) * dx + np.sin(rot) * dy
         v = (-np.sin(rot) * dx + np.cos(rot) * dy) * squash
+
+        def at(t, across, angle):
+            """Frame (x, y) of the washer-frame point `t` along and `across` across direction `angle`."""
+            a, b = np.cos(angle) * t - np.sin(angle) * across, np.sin(angle) * t + np.cos(angle) * across
+            b = b / squash
+            return cx + np.cos(rot) * a - np.sin(rot) * b, cy + np.sin(rot) * a + np.cos(rot) * b
         d = np.sqrt(u * u + v * v)
         ang = np.arctan2(v, u)
         r = 0.0 if label == "no_hole" else R * rng.uniform(0.36, 0.52)
@@ -108,27 +212,47 @@ def render(rng: np.random.Generator, label: str, centred: Optional[float] = None
 
         if label == "burr":
             phi = rng.uniform(0, 2 * np.pi)
+            length = rng.uniform(*s.burr_length)
+            half = rng.uniform(*s.burr_half)
+            # extras: turn the spur until its root and tip lie inside the frame (the washer may not)
+            for _ in range(1000 if s.extras else 0):
+                if _inside([at(R + length, 0, phi), at(R - 3, half, phi), at(R - 3, -half, phi)]):
+                    break
+                phi = rng.uniform(0, 2 * np.pi)
             t = np.cos(phi) * u + np.sin(phi) * v  # along the spur
             p = -np.sin(phi) * u + np.cos(phi) * v  # across it
-            length = rng.uniform(16, 28)
-            half = rng.uniform(5.0, 8.0)
             width = half * (1 - (t - R + 2) / length)  # tapers to a point at R + length
             spur = np.clip(width - np.abs(p) + 0.5, 0, 1) * (t > R - 3) * (width > 0)
             cover = np.maximum(cover, spur)
-            bright = rng.uniform(225, 255)
+            bright = rng.uniform(*s.burr_bright)
             metal = metal * (1 - spur[..., None]) + bright * spur[..., None]
 
         img = img * (1 - cover[..., None]) + metal * cover[..., None]
 
         if label == "cracked":
             th = rng.uniform(0, 2 * np.pi)
+            jag = rng.uniform(0.3, 0.7)
+            w = rng.uniform(*s.crack_width)
+            t0, t1 = r - 1, R + 1
+            if s.extras:  # a fainter crack, part of the way across, from the hole or the rim
+                opacity = rng.uniform(*s.crack_opacity)
+                extent = rng.uniform(*s.crack_extent) * (R - r)
+                if rng.random() < 0.5:
+                    t1 = r + extent
+                else:
+                    t0 = R - extent
+                for _ in range(1000):  # turn it until its ends lie inside the frame
+                    if _inside([at(t0 + 1, 0, th), at(t1 - 1, 0, th)]):
+                        break
+                    th = rng.uniform(0, 2 * np.pi)
             t = np.cos(th) * u + np.sin(th) * v
             p = -np.sin(th) * u + np.cos(th) * v
-            p = p + 1.2 * np.sin(t * rng.uniform(0.3, 0.7))  # a little jagged
-            w = rng.uniform(2.5, 4.5)
-            crack = np.clip(w - np.abs(p) + 0.5, 0, 1) * (t > r - 1) * (t < R + 1)
+            p = p + 1.2 * np.sin(t * jag)  # a little jagged
+            crack = np.clip(w - np.abs(p) + 0.5, 0, 1) * (t > t0) * (t < t1)
             crack = crack * cover
-            dark = rng.uniform(15, 50)
+            if s.extras:
+                crack = crack * opacity
+            dark = rng.uniform(*s.crack_dark)
             img = img * (1 - crack[..., None]) + dark * crack[..., None]
 
     # Distractors on the belt: a few specks of dust or oil.
@@ -138,13 +262,21 @@ def render(rng: np.random.Generator, label: str, centred: Optional[float] = None
         speck = np.clip(sr - np.sqrt((xx - sx) ** 2 + (yy - sy) ** 2) + 0.5, 0, 1)
         img = img + speck[..., None] * rng.uniform(-15, 25)
 
-    img = img * rng.uniform(0.75, 1.25)  # exposure
+    if s.extras and s.uneven > 0:  # uneven illumination: a spot of light (or shade) and a ramp
+        sx, sy, size = rng.uniform(0, FRAME_W), rng.uniform(0, FRAME_H), rng.uniform(50, 200)
+        spot = rng.uniform(-s.uneven, s.uneven) * np.exp(-((xx - sx) ** 2 + (yy - sy) ** 2) / (2 * size * size))
+        rdir = rng.uniform(0, 2 * np.pi)
+        ramp = rng.uniform(-s.uneven, s.uneven) * (np.cos(rdir) * (xx / FRAME_W - 0.5) + np.sin(rdir) * (yy / FRAME_H - 0.5))
+        img = img * np.maximum(1 + spot + ramp, 0.2)[..., None]
+    img = img * rng.uniform(*s.exposure)  # exposure
+    if s.extras:
+        img = img + rng.uniform(*s.black)
     frame = Image.fromarray(np.clip(img, 0, 255).astype(np.uint8))
-    sigma = rng.uniform(0, 1.6)
+    sigma = rng.uniform(*s.blur)
     if sigma > 0.2:
         frame = frame.filter(ImageFilter.GaussianBlur(sigma))
     arr = np.asarray(frame).astype(np.float32)
-    arr = arr + rng.normal(0, rng.uniform(1.5, 7), size=arr.shape)  # sensor noise
+    arr = arr + rng.normal(0, rng.uniform(*s.noise), size=arr.shape)  # sensor noise
     return np.clip(np.round(arr), 0, 255).astype(np.uint8)
 
 
@@ -187,11 +319,13 @@ def preprocess_mono64(frame: np.ndarray) -> np.ndarray:
     return x[None]
 
 
-def dataset(rng, per_class, v):
+def dataset(rng, per_class, v, wide=None):
+    """`per_class` frames of each class; with `wide`, every other round of classes rendered with it."""
     xs, ys = [], []
-    for _ in range(per_class):
+    for i in range(per_class):
+        spread = wide if wide is not None and i % 2 == 1 else STANDARD
         for k, name in enumerate(CLASSES):
-            xs.append(v.preprocess(v.camera(render(rng, name, v.centred))))
+            xs.append(v.preprocess(v.camera(render(rng, name, v.centred, spread))))
             ys.append(k)
     return np.stack(xs), np.array(ys)
 
@@ -223,6 +357,7 @@ class Variant:
     # Written to training.json (None: nothing, which keeps the demo's report as it was).
     transform: Optional[dict] = None
     centred: Optional[float] = None  # see render()
+    wide: Optional[Spread] = None  # training only: every other frame rendered with it (see dataset())
 
     @property
     def channels(self):
@@ -261,10 +396,11 @@ VARIANTS = {
         graph="washers",
         doc="Washer-line demo classifier (invented data, demo only).",
         per_class=800,
-        epochs=10,
+        epochs=16,
         holdout=400,
         batch=32,
         transpose=False,
+        wide=TRAIN_WIDE,
     ),
     # Same layer family on one channel at 64x64, a fraction of the demo's work a frame; with
     # 1500 frames it renders and trains in ~5 min (7 min measured on 2 cores while a cargo test
@@ -494,6 +630,29 @@ def write_samples(p, rng, out, per_class, v):
     return skipped
 
 
+def write_eval_set(out, seed, per_class):
+    """The demo's labelled evaluation set: OUT/<class>/<class>-NNN.png, rendered with EVAL_SPREAD.
+
+    Its own seed, its own stream (one frame of each class in turn, so a larger --eval-per-class
+    keeps the first frames). Every frame rendered is written, whatever any model makes of it; the
+    labels are the folders. OUT/eval-set.json records the seed, the sizes and the spread.
+    """
+    from dataclasses import asdict
+
+    rng = np.random.default_rng(np.random.SeedSequence(seed))
+    for name in CLASSES:
+        os.makedirs(os.path.join(out, name), exist_ok=True)
+    for i in range(per_class):
+        for name in CLASSES:
+            frame = render(rng, name, None, EVAL_SPREAD)
+            Image.fromarray(frame).save(os.path.join(out, name, f"{name}-{i + 1:03d}.png"), optimize=True)
+    with open(os.path.join(out, "eval-set.json"), "w") as f:
+        json.dump({"seed": seed, "per_class": per_class, "classes": CLASSES,
+                   "frames": f"{FRAME_W}x{FRAME_H} RGB PNG, <class>/<class>-NNN.png",
+                   "spread": asdict(EVAL_SPREAD)}, f, indent=2)
+        f.write("\n")
+
+
 def params_from_onnx(path, v):
     import onnx
     from onnx import numpy_helper
@@ -522,6 +681,16 @@ def variant_report(v):
     }
 
 
+def wide_report(v, per_class):
+    """training.json entries for a variant trained on wide frames too (held-out stays STANDARD)."""
+    if v.wide is None:
+        return {}
+    from dataclasses import asdict
+
+    return {"training_frames_wide": (per_class // 2) * len(CLASSES), "training_wide_spread": asdict(v.wide),
+            "holdout_spread": "standard"}
+
+
 def budget(key):
     """A default of every variant, for --help: "demo 800, mono64 300"."""
     return ", ".join(f"{name} {getattr(v, key)}" for name, v in VARIANTS.items())
@@ -529,7 +698,7 @@ def budget(key):
 
 def main():
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("--out", required=True, help="bundle directory to write (classifier.onnx, classes.txt, samples/)")
+    ap.add_argument("--out", help="bundle directory to write (classifier.onnx, classes.txt, samples/)")
     ap.add_argument("--variant", choices=sorted(VARIANTS), default="demo", help="camera station (see above; default demo)")
     ap.add_argument("--seed", type=int, default=20261201)
     ap.add_argument("--per-class", type=int, help="training frames per class (default: " + budget("per_class") + ")")
@@ -538,7 +707,19 @@ def main():
     ap.add_argument("--samples", type=int, default=3, help="sample frames per class in the bundle")
     ap.add_argument("--eval-only", action="store_true", help="read OUT/classifier.onnx and re-measure held-out accuracy")
     ap.add_argument("--write-samples", action="store_true", help="with --eval-only: rewrite OUT/samples from the model")
+    ap.add_argument("--eval-set", metavar="DIR", help="render the demo's labelled evaluation set into DIR (no training)")
+    ap.add_argument("--eval-seed", type=int, default=EVAL_SEED, help=f"its seed (default {EVAL_SEED})")
+    ap.add_argument("--eval-per-class", type=int, default=EVAL_PER_CLASS, help=f"its frames per class (default {EVAL_PER_CLASS})")
     args = ap.parse_args()
+    if args.eval_set:
+        if args.variant != "demo":
+            sys.exit("--eval-set renders the demo's colour frames; it has no --variant")
+        t0 = time.time()
+        write_eval_set(args.eval_set, args.eval_seed, args.eval_per_class)
+        print(f"wrote {args.eval_per_class * len(CLASSES)} frames to {args.eval_set} in {time.time() - t0:.0f}s")
+        return
+    if not args.out:
+        ap.error("--out is required (unless --eval-set)")
     v = VARIANTS[args.variant]
     for key in ("per_class", "epochs", "holdout"):  # the variant's budget unless given
         if getattr(args, key) is None:
@@ -553,7 +734,7 @@ def main():
         p = params_from_onnx(os.path.join(args.out, "classifier.onnx"), v)
     else:
         t0 = time.time()
-        x, y = dataset(train_rng, args.per_class, v)
+        x, y = dataset(train_rng, args.per_class, v, v.wide)
         print(f"rendered {len(x)} training frames in {time.time() - t0:.0f}s", flush=True)
         p = init_params(init_rng, v)
         train(p, x, y, init_rng, args.epochs, batch=v.batch, lr=2e-3, transpose=v.transpose)
@@ -595,6 +776,7 @@ def main():
         "samples_per_class": args.samples,
         "samples_skipped_as_misclassified": skipped,
         **variant_report(v),
+        **wide_report(v, args.per_class),
     }
     with open(os.path.join(args.out, "training.json"), "w") as f:
         json.dump(report, f, indent=2)
