@@ -231,3 +231,37 @@ fn outputs_a_candidate_comparison_a_report_a_baseline_and_the_wrong_frames() {
     // --target-error gives a suggestion or says why not.
     assert!(doc["suggestion"]["statement"].as_str().unwrap().len() > 20);
 }
+
+/// A candidate with its own config: here the same model fed letterboxed frames, so the two
+/// differ on some frames; the comparison's counts agree with the frames it lists.
+#[test]
+fn a_candidate_with_its_own_config_is_compared_frame_by_frame() {
+    let dir = temp_dir("evaluate-against-config");
+    let model = root().join("models/washers");
+    let config = dir.join("letterbox.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "[[models]]\nname = \"letterboxed\"\nonnx = {:?}\nlabels = {:?}\n[models.preprocess]\nwidth = 96\nheight = 96\n\
+             resize = \"letterbox\"\npad_value = 40\nchannels = \"rgb\"\n",
+            model.join("classifier.onnx"),
+            model.join("classes.txt")
+        ),
+    )
+    .unwrap();
+    let (out, doc) = evaluate_json(&eval_set(), &["--against-config", config.to_str().unwrap()]);
+    assert!(out.status.success(), "{}", stderr(&out));
+    let a = &doc["against"];
+    assert_eq!(a["model"], "letterboxed");
+    assert_eq!(a["compared"], 200);
+    let (ours, theirs) = (doc["predictions"].as_array().unwrap(), a["disagreements"].as_array().unwrap());
+    assert!(!theirs.is_empty(), "letterboxing changes some answers of a model trained on stretched frames");
+    let agreement = a["agreement"].as_f64().unwrap();
+    assert!((agreement - (1.0 - theirs.len() as f64 / 200.0)).abs() < 1e-12);
+    // Discordant counts from the two accuracies: only_model - only_candidate = right_model - right_candidate.
+    let right = |acc: &Value| (acc.as_f64().unwrap() * 200.0).round() as i64;
+    let (b, c) = (a["only_model_right"].as_i64().unwrap(), a["only_candidate_right"].as_i64().unwrap());
+    assert_eq!(b - c, right(&doc["accuracy"]) - right(&a["accuracy"]));
+    assert_eq!(ours.len(), 200);
+    assert!(String::from_utf8_lossy(&out.stdout).contains("McNemar exact p"));
+}
