@@ -52,36 +52,7 @@ pub fn page(doc: &Document, root: &Path) -> String {
         let _ = write!(o, "<p><b>Target error {:.2}%:</b> {}</p>", sug.target_error * 100.0, esc(&sug.statement));
     }
     if let Some(a) = &doc.against {
-        let c = &a.comparison;
-        let _ = write!(
-            o,
-            "<h2>Against {} {}</h2><p>Same {} frames: accuracy {:.4} (candidate) vs {:.4}; agreement {:.1}%; only {} right {}, \
-             only the candidate right {}; McNemar exact p = {:.4}.</p>",
-            esc(&a.id.model),
-            esc(&a.id.version),
-            c.compared,
-            a.summary.accuracy,
-            s.accuracy,
-            c.agreement * 100.0,
-            esc(&doc.id.model),
-            c.only_model_right,
-            c.only_candidate_right,
-            c.mcnemar_p
-        );
-        let _ = write!(o, "<table><tr><th>frame</th><th>truth</th><th>model</th><th>candidate</th></tr>");
-        for d in &c.disagreements {
-            let _ = write!(
-                o,
-                "<tr><td>{}</td><td>{}</td><td>{} {:.3}</td><td>{} {:.3}</td></tr>",
-                esc(&d.file),
-                esc(&d.truth),
-                esc(&d.label),
-                d.score,
-                esc(&d.against_label),
-                d.against_score
-            );
-        }
-        let _ = write!(o, "</table>");
+        against(&mut o, doc, a);
     }
     wrong_frames(&mut o, &doc.predictions, root);
     if !doc.failed.is_empty() {
@@ -107,6 +78,40 @@ td:first-child,th:first-child{text-align:left}.charts{display:flex;flex-wrap:wra
 figure{margin:0}figcaption{font-weight:600;margin-bottom:6px;max-width:420px}\
 .thumbs{display:flex;flex-wrap:wrap;gap:10px}.thumb{width:170px;font-size:12px}.thumb img{display:block;max-width:160px}\
 .bad{color:#b00020}";
+
+fn against(o: &mut String, doc: &Document, a: &super::report::Against) {
+    let s = &doc.summary;
+    let c = &a.comparison;
+    let _ = write!(
+        o,
+        "<h2>Against {} {}</h2><p>Same {} frames: accuracy {:.4} (candidate) vs {:.4}; agreement {:.1}%; only {} right {}, \
+         only the candidate right {}; McNemar exact p = {:.4}.</p>",
+        esc(&a.id.model),
+        esc(&a.id.version),
+        c.compared,
+        a.summary.accuracy,
+        s.accuracy,
+        c.agreement * 100.0,
+        esc(&doc.id.model),
+        c.only_model_right,
+        c.only_candidate_right,
+        c.mcnemar_p
+    );
+    let _ = write!(o, "<table><tr><th>frame</th><th>truth</th><th>model</th><th>candidate</th></tr>");
+    for d in &c.disagreements {
+        let _ = write!(
+            o,
+            "<tr><td>{}</td><td>{}</td><td>{} {:.3}</td><td>{} {:.3}</td></tr>",
+            esc(&d.file),
+            esc(&d.truth),
+            esc(&d.label),
+            d.score,
+            esc(&d.against_label),
+            d.against_score
+        );
+    }
+    let _ = write!(o, "</table>");
+}
 
 fn summary_table(o: &mut String, doc: &Document) {
     let s = &doc.summary;
