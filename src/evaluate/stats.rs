@@ -234,10 +234,10 @@ mod tests {
 
     #[test]
     fn calibration_bins_are_right_closed() {
-        // 1/15 is the top of bin 0; 0 joins bin 0; 1 is the top of the last.
-        let (_, bins) = calibration(&[(0.0, true), (1.0 / 15.0, true), (1.0, false)], 15);
-        assert_eq!(bins[0].count, 2);
-        assert_eq!(bins[14].count, 1);
+        // With 4 bins (edges exact in binary): 0.25 is the top of bin 0, 0 joins bin 0, 0.5 is
+        // the top of bin 1, 1 the top of the last.
+        let (_, bins) = calibration(&[(0.0, true), (0.25, true), (0.5, true), (1.0, false)], 4);
+        assert_eq!(bins.iter().map(|b| b.count).collect::<Vec<_>>(), [2, 1, 0, 1]);
         // All right at confidence 1: ECE 0. Half right at 1: 0.5.
         assert!(calibration(&[(1.0, true); 4], 15).0.abs() < 1e-12);
         assert!((calibration(&[(1.0, true), (1.0, false)], 15).0 - 0.5).abs() < 1e-12);

@@ -213,6 +213,20 @@ fn jpeg_decodes_as_the_image_crate_does_in_colour_gray_and_every_exif_orientatio
     }
 }
 
+#[test]
+fn a_pillow_written_subsampled_jpeg_decodes_as_the_image_crate_does() {
+    // A 40x30 RGB JPEG written by Pillow 13 with 4:2:0 chroma subsampling (what cameras and
+    // Pillow write by default) and EXIF orientation 6 (rotate 90 clockwise to display).
+    let jpeg =
+        std::fs::read(concat!(env!("CARGO_MANIFEST_DIR"), "/tests/fixtures/images/rgb420_exif6_40x30.jpg")).unwrap();
+    let ours = rgb(decode(&jpeg, lim(10_000), Orientation::Exif).unwrap());
+    let mut theirs = image::load_from_memory(&jpeg).unwrap();
+    theirs.apply_orientation(ExifOrientation::Rotate90);
+    let theirs = theirs.into_rgb8();
+    assert_eq!((ours.width, ours.height), (30, 40), "turned upright");
+    assert_eq!(ours.data, theirs.into_raw());
+}
+
 /// `jpeg` with an APP1 EXIF segment holding one IFD0 entry: Orientation (tag 0x0112,
 /// SHORT, count 1) = `o` (EXIF 2.32 section 4.6.4; TIFF 6.0 little-endian header "II*").
 fn with_exif_orientation(jpeg: &[u8], o: u16) -> Vec<u8> {
