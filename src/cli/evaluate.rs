@@ -133,7 +133,7 @@ fn score(args: &EvaluateArgs, set: &Dataset, loaded: Vec<Loaded>) -> anyhow::Res
     }
     let bar = indicatif::ProgressBar::new(set.items.len() as u64);
     bar.set_style(
-        indicatif::ProgressStyle::with_template("evaluating [{bar:40}] {pos}/{len} frames, {per_sec}, {eta} left")
+        indicatif::ProgressStyle::with_template("evaluating [{bar:40}] {pos}/{len} frames ({percent}%), {elapsed} so far, {eta} left")
             .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar())
             .progress_chars("=> "),
     );
