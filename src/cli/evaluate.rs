@@ -63,18 +63,6 @@ fn parse_rate(s: &str) -> Result<f64, String> {
     }
 }
 
-/// The model `name` of `config`, or its only one.
-fn pick<'a>(config: &'a Config, name: Option<&str>, flag: &str) -> anyhow::Result<&'a ModelConfig> {
-    match (name, config.models.as_slice()) {
-        (Some(name), _) => config.named(name),
-        (None, [only]) => Ok(only),
-        (None, all) => {
-            let names: Vec<&str> = all.iter().map(|m| m.name.as_str()).collect();
-            bail!("{} serves {} models ({names:?}): choose one with {flag}", config.origin, names.len())
-        }
-    }
-}
-
 /// Evaluate the model on the set and write what was asked for.
 ///
 /// # Errors
@@ -83,14 +71,14 @@ fn pick<'a>(config: &'a Config, name: Option<&str>, flag: &str) -> anyhow::Resul
 pub fn run(args: EvaluateArgs) -> anyhow::Result<Outcome> {
     let overrides = Overrides { engine: args.engine, ..super::base_overrides()? };
     let config = Config::load(args.config.config.as_deref(), &overrides)?;
-    let mc = pick(&config, args.model.as_deref(), "--model")?;
+    let mc = super::pick_model(&config, args.model.as_deref(), "--model")?;
     let mut configs = vec![mc.clone()];
     if let Some(onnx) = &args.against {
         let name = onnx.file_stem().map_or("candidate".into(), |s| s.to_string_lossy().into_owned());
         configs.push(ModelConfig { name, onnx: Source::File(onnx.clone()), selftest: None, ..mc.clone() });
     } else if let Some(path) = &args.against_config {
         let other = Config::load(Some(path), &overrides)?;
-        configs.push(pick(&other, args.against_model.as_deref(), "--against-model")?.clone());
+        configs.push(super::pick_model(&other, args.against_model.as_deref(), "--against-model")?.clone());
     }
     let opts = LoadOptions { max_pixels: config.server.max_pixels, models: configs.len(), report: false };
     let loaded = configs.iter().map(|c| Loaded::load(c, &opts)).collect::<anyhow::Result<Vec<_>>>()?;
@@ -133,9 +121,11 @@ fn score(args: &EvaluateArgs, set: &Dataset, loaded: Vec<Loaded>) -> anyhow::Res
     }
     let bar = indicatif::ProgressBar::new(set.items.len() as u64);
     bar.set_style(
-        indicatif::ProgressStyle::with_template("evaluating [{bar:40}] {pos}/{len} frames ({percent}%), {elapsed} so far, {eta} left")
-            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar())
-            .progress_chars("=> "),
+        indicatif::ProgressStyle::with_template(
+            "evaluating [{bar:40}] {pos}/{len} frames ({percent}%), {elapsed} so far, {eta} left",
+        )
+        .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar())
+        .progress_chars("=> "),
     );
     let tick = || bar.inc(1);
     let scored = rt.block_on(evaluate::score_all(&models, &set.items, room, &tick));

@@ -8,7 +8,7 @@ pub mod serve;
 
 use std::path::PathBuf;
 
-use crate::config::Overrides;
+use crate::config::{Config, ModelConfig, Overrides};
 use crate::model::EngineKind;
 
 /// Environment variable naming the engine of models without an `engine` key.
@@ -28,6 +28,21 @@ pub fn base_overrides() -> anyhow::Result<Overrides> {
     };
     let onnxruntime_library = std::env::var_os(ORT_LIBRARY_ENV).filter(|v| !v.is_empty()).map(PathBuf::from);
     Ok(Overrides { default_engine, onnxruntime_library, ..Overrides::default() })
+}
+
+/// The model `name` of `config`, or its only one; `flag` is the option that names a model.
+///
+/// # Errors
+/// No model by that name, or several and none named.
+pub fn pick_model<'a>(config: &'a Config, name: Option<&str>, flag: &str) -> anyhow::Result<&'a ModelConfig> {
+    match (name, config.models.as_slice()) {
+        (Some(name), _) => config.named(name),
+        (None, [only]) => Ok(only),
+        (None, all) => {
+            let names: Vec<&str> = all.iter().map(|m| m.name.as_str()).collect();
+            anyhow::bail!("{} serves {} models ({names:?}): choose one with {flag}", config.origin, names.len())
+        }
+    }
 }
 
 /// lineside: serve a small ONNX image classifier on this CPU box.

@@ -43,14 +43,7 @@ pub struct PreprocessArgs {
 /// undecodable image (the message says what was wrong), an unwritable output.
 pub fn run(args: PreprocessArgs) -> anyhow::Result<Outcome> {
     let config = Config::load(args.config.config.as_deref(), &super::base_overrides()?)?;
-    let mc = match (&args.model, config.models.as_slice()) {
-        (Some(name), _) => config.named(name)?,
-        (None, [only]) => only,
-        (None, all) => {
-            let names: Vec<&str> = all.iter().map(|m| m.name.as_str()).collect();
-            anyhow::bail!("{} serves {} models ({names:?}): choose one with --model", config.origin, names.len())
-        }
-    };
+    let mc = super::pick_model(&config, args.model.as_deref(), "--model")?;
     let opts = LoadOptions { max_pixels: config.server.max_pixels, ..LoadOptions::single() };
     let loaded = Loaded::load(mc, &opts)?;
     let (contract, pipeline) = (&loaded.model.contract, &loaded.pipeline);
