@@ -80,6 +80,13 @@ fn from_folders(root: &Path, labels: &[String]) -> anyhow::Result<Vec<Item>> {
             .ok_or_else(|| not_a_class(&format!("the folder {}: sub-folder", root.display()), &name, labels))?;
         classes.push((truth, name, entry.path()));
     }
+    if classes.is_empty() {
+        bail!(
+            "{}: no class sub-folders; expected one sub-folder per class, named as the labels file names them: {}",
+            root.display(),
+            labels.join(", ")
+        );
+    }
     classes.sort();
     let mut items = Vec::new();
     for (truth, name, dir) in classes {
@@ -96,17 +103,18 @@ fn from_folders(root: &Path, labels: &[String]) -> anyhow::Result<Vec<Item>> {
     Ok(items)
 }
 
-/// Every non-hidden file under `dir`, recursively.
+/// Every non-hidden file under `dir`, recursively. Links to files are followed; links to
+/// folders are not (a link loop would never end).
 fn walk(dir: &Path, out: &mut Vec<PathBuf>) -> std::io::Result<()> {
     for entry in std::fs::read_dir(dir)? {
         let entry = entry?;
         if entry.file_name().to_string_lossy().starts_with('.') {
             continue;
         }
-        let path = entry.path();
-        if path.is_dir() {
+        let (kind, path) = (entry.file_type()?, entry.path());
+        if kind.is_dir() {
             walk(&path, out)?;
-        } else {
+        } else if kind.is_file() || (kind.is_symlink() && path.is_file()) {
             out.push(path);
         }
     }
@@ -115,6 +123,8 @@ fn walk(dir: &Path, out: &mut Vec<PathBuf>) -> std::io::Result<()> {
 
 fn from_csv(csv: &Path, labels: &[String]) -> anyhow::Result<Vec<Item>> {
     let text = std::fs::read_to_string(csv).with_context(|| format!("cannot read {}", csv.display()))?;
+    // Spreadsheets' "CSV UTF-8" starts with a byte-order mark.
+    let text = text.strip_prefix('\u{feff}').unwrap_or(&text);
     let base = csv.parent().unwrap_or(Path::new("."));
     let mut lines = text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty());
     match lines.next() {
@@ -195,7 +205,7 @@ mod tests {
         assert_eq!(got, [("good/a.png", 0), ("good/b.png", 0), ("burr/x/c.png", 1)]);
         assert_eq!(set.absent, ["empty"]);
 
-        std::fs::write(dir.join("set.csv"), "file,label\ngood/a.png,good\n\"burr/x/c.png\",burr\n").unwrap();
+        std::fs::write(dir.join("set.csv"), "\u{feff}file,label\ngood/a.png,good\n\"burr/x/c.png\",burr\n").unwrap();
         let set = Dataset::open(&dir.join("set.csv"), &labels).unwrap();
         assert_eq!(set.items[1].path, dir.join("burr/x/c.png"));
         assert_eq!(set.absent, ["empty"]);

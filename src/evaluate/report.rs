@@ -251,7 +251,9 @@ pub fn write_json(path: &Path, value: &impl Serialize) -> anyhow::Result<()> {
 }
 
 /// Copy every wrong frame to `out/<true>/<predicted>/`, its name the set-relative path with
-/// `/` turned into `__` (so frames of sub-folders cannot collide). Returns how many.
+/// the path separators turned into `__` (so frames of sub-folders cannot collide); labels and
+/// names are made safe as single path components, and a name already taken gets `-2`, `-3`,
+/// ... before its extension. Returns how many were copied.
 ///
 /// # Errors
 /// A folder cannot be created or a frame copied.
@@ -259,12 +261,44 @@ pub fn copy_misclassified(root: &Path, preds: &[Prediction], out: &Path) -> anyh
     let base = if root.is_dir() { root } else { root.parent().unwrap_or(Path::new(".")) };
     let mut n = 0;
     for p in preds.iter().filter(|p| !p.right()) {
-        let dir = out.join(&p.truth).join(&p.label);
+        let dir = out.join(component(&p.truth)).join(component(&p.label));
         std::fs::create_dir_all(&dir).with_context(|| format!("cannot create {}", dir.display()))?;
         let from = base.join(&p.file);
-        let to = dir.join(p.file.replace('/', "__"));
+        let name = component(&p.file.replace(['/', '\\'], "__"));
+        let mut to = dir.join(&name);
+        let (stem, ext) = name.rsplit_once('.').map_or((name.as_str(), ""), |(s, e)| (s, e));
+        for k in 2.. {
+            if !to.exists() {
+                break;
+            }
+            to = dir.join(if ext.is_empty() { format!("{stem}-{k}") } else { format!("{stem}-{k}.{ext}") });
+        }
         std::fs::copy(&from, &to).with_context(|| format!("cannot copy {} to {}", from.display(), to.display()))?;
         n += 1;
     }
     Ok(n)
+}
+
+/// `s` as one safe path component: separators and characters outside letters, digits and
+/// `-_.+=,@` replaced by `_`, and never `.` or `..`.
+fn component(s: &str) -> String {
+    let c: String = s.chars().map(|c| if c.is_alphanumeric() || "-_.+=,@".contains(c) { c } else { '_' }).collect();
+    match c.as_str() {
+        "" | "." | ".." => format!("_{c}"),
+        _ => c,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::component;
+
+    #[test]
+    fn names_stay_one_component() {
+        assert_eq!(component("good"), "good");
+        assert_eq!(component("n/a"), "n_a");
+        assert_eq!(component(".."), "_..");
+        assert_eq!(component("..__..__x.png"), "..__..__x.png");
+        assert_eq!(component("a\\b c.png"), "a_b_c.png");
+    }
 }

@@ -220,7 +220,8 @@ fn ratio(k: u64, n: u64) -> f64 {
 }
 
 fn threshold_point(tops: &[(f32, bool)], t: f64) -> ThresholdPoint {
-    let kept: Vec<bool> = tops.iter().filter(|(s, _)| f64::from(*s) >= t).map(|&(_, r)| r).collect();
+    // Compared in f32, as the server compares a score with `min_score`.
+    let kept: Vec<bool> = tops.iter().filter(|(s, _)| *s >= t as f32).map(|&(_, r)| r).collect();
     let wrong = kept.iter().filter(|r| !**r).count() as u64;
     ThresholdPoint {
         min_score: t,
@@ -249,6 +250,9 @@ pub fn suggest(preds: &[Prediction], target: f64) -> Suggestion {
             continue; // the same threshold as the frame before
         }
         let kept = (tops.len() - i) as u64;
+        if wrong_from[i] as f64 > target * kept as f64 {
+            continue; // the observed error alone is above the target: its bound is too
+        }
         let err = Proportion::of(wrong_from[i], kept);
         if err.high <= target {
             let t = f64::from(tops[i].0);
@@ -260,8 +264,9 @@ pub fn suggest(preds: &[Prediction], target: f64) -> Suggestion {
                 residual_error: Some(err),
                 frames_needed,
                 statement: format!(
-                    "min_score = {t:.4} keeps the residual error at {:.2}% (95% upper bound {:.2}%, within the target {:.2}%) \
+                    "min_score = {} keeps the residual error at {:.2}% (95% upper bound {:.2}%, within the target {:.2}%) \
                      and sends {:.1}% of frames to review",
+                    tops[i].0,
                     err.rate * 100.0,
                     err.high * 100.0,
                     target * 100.0,

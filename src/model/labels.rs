@@ -9,6 +9,8 @@ use std::collections::HashSet;
 /// A message naming the file, the line and what was wrong.
 pub fn parse(bytes: &[u8], file: &str) -> Result<Vec<String>, String> {
     let text = std::str::from_utf8(bytes).map_err(|e| format!("{file}: not UTF-8 text ({e})"))?;
+    // A byte-order mark (spreadsheets and some editors write one) is not part of the first label.
+    let text = text.strip_prefix('\u{feff}').unwrap_or(text);
     let mut lines: Vec<&str> = text.lines().map(|l| l.trim_end_matches('\r').trim()).collect();
     while lines.last().is_some_and(|l| l.is_empty()) {
         lines.pop();
@@ -36,6 +38,8 @@ mod tests {
     fn reads_lines_in_order_and_ignores_trailing_blanks() {
         let l = parse(b"good\r\ncracked\n burr \n\n\n", "c.txt").unwrap();
         assert_eq!(l, ["good", "cracked", "burr"]);
+        let l = parse("\u{feff}good\nburr\n".as_bytes(), "c.txt").unwrap();
+        assert_eq!(l, ["good", "burr"], "a byte-order mark is not part of the first label");
     }
 
     #[test]

@@ -121,8 +121,18 @@ fn jpeg_header<B: AsRef<[u8]>>(bytes: B) -> Result<(u32, u32, Jpeg<B>), Preproce
     let mut decoder = Box::new(JpegDecoder::new_with_options(ZCursor::new(bytes), options));
     decoder.decode_headers().map_err(jpeg_error)?;
     let (w, h) = decoder.dimensions().ok_or_else(|| PreprocessError::BadImage("JPEG without a frame header".into()))?;
+    // 2-component JPEGs exist (rarely) and would be decoded into an RGB buffer band by band:
+    // a scrambled frame classified without an error. Only gray, colour and CMYK are taken.
+    let components = decoder.info().map_or(0, |i| i.components);
+    if !matches!(components, 1 | 3 | 4) {
+        return Err(PreprocessError::Unsupported(format!(
+            "JPEG with {components} colour components: only 1 (gray), 3 (colour) or 4 (CMYK) are decoded; \
+             send gray, RGB or CMYK JPEG, or PNG"
+        )));
+    }
     match decoder.input_colorspace() {
-        Some(ColorSpace::YCCK) => Err(PreprocessError::Unsupported(
+        // Adobe transform 2 on a 3-component frame is decoded as the YCbCr it is.
+        Some(ColorSpace::YCCK) if components == 4 => Err(PreprocessError::Unsupported(
             "Adobe YCCK JPEG (4-channel YCbCr + K): this build's JPEG decoder inverts its colours \
              (a known upstream bug), so it is refused rather than classified wrongly; \
              send RGB, grayscale or plain CMYK JPEG, or PNG/TIFF"

@@ -214,6 +214,22 @@ fn jpeg_decodes_as_the_image_crate_does_in_colour_gray_and_every_exif_orientatio
 }
 
 #[test]
+fn a_three_component_jpeg_marked_ycck_decodes_as_the_ycbcr_it_is() {
+    // libjpeg and the image crate treat Adobe transform 2 on 3 components as YCbCr: only a
+    // 4-component YCCK frame is refused.
+    let img = RgbImage::from_fn(16, 8, |x, y| image::Rgb([(x * 15) as u8, (y * 30) as u8, 99]));
+    let mut plain = Vec::new();
+    img.write_to(&mut Cursor::new(&mut plain), ImageFormat::Jpeg).unwrap();
+    let mut marked = plain[..2].to_vec();
+    marked.extend_from_slice(&[0xff, 0xee, 0x00, 0x0e]);
+    marked.extend_from_slice(b"Adobe");
+    marked.extend_from_slice(&[0x00, 0x64, 0, 0, 0, 0, 2]);
+    marked.extend_from_slice(&plain[2..]);
+    let ours = rgb(decode(&marked, lim(1000), Orientation::Exif).unwrap());
+    assert_eq!(ours.data, rgb(decode(&plain, lim(1000), Orientation::Exif).unwrap()).data);
+}
+
+#[test]
 fn a_pillow_written_subsampled_jpeg_decodes_as_the_image_crate_does() {
     // A 40x30 RGB JPEG written by Pillow 13 with 4:2:0 chroma subsampling (what cameras and
     // Pillow write by default) and EXIF orientation 6 (rotate 90 clockwise to display).
