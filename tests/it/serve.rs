@@ -184,13 +184,12 @@ async fn frames_too_small_outside_the_roi_or_ycck_get_their_own_statuses() {
     assert!(msg.contains("[10, 10, 200, 150]") && msg.contains("(210, 160)") && msg.contains("100x100"), "{msg}");
     // A frame the ROI fits is served (a gray frame feeds the RGB model replicated).
     assert_eq!(post(gray_png(320, 240)).await.status, 200);
-    // A JPEG whose Adobe APP14 segment says YCCK (transform byte 2): refused, not miscoloured.
-    let mut jpeg = Vec::new();
-    let frame = image::RgbImage::from_pixel(32, 32, image::Rgb([200, 100, 50]));
-    frame.write_to(&mut std::io::Cursor::new(&mut jpeg), image::ImageFormat::Jpeg).unwrap();
-    let mut app14 = vec![0xff, 0xee, 0x00, 0x0e];
-    app14.extend_from_slice(b"Adobe\x00\x64\x00\x00\x00\x00\x02");
-    jpeg.splice(2..2, app14);
+    // A 4-component JPEG whose Adobe APP14 segment says YCCK: refused, not miscoloured. Made
+    // from Pillow's CMYK fixture by setting its transform byte (Adobe's APP14 layout: "Adobe",
+    // version u16, flags0 u16, flags1 u16, transform u8) to 2.
+    let mut jpeg = std::fs::read(crate::util::root().join("tests/fixtures/images/cmyk_16x16.jpg")).unwrap();
+    let at = jpeg.windows(5).position(|w| w == b"Adobe").unwrap() + 11;
+    jpeg[at] = 2;
     let msg = post(jpeg).await.error(415, "unsupported_format");
     assert!(msg.contains("YCCK"), "{msg}");
 }
