@@ -59,6 +59,11 @@ impl Dataset {
     }
 }
 
+/// The folder a set's `file` names are relative to: the set itself, or a CSV's folder.
+pub fn base_of(set: &Path) -> &Path {
+    if set.is_dir() { set } else { set.parent().unwrap_or(Path::new(".")) }
+}
+
 fn not_a_class(what: &str, name: &str, labels: &[String]) -> anyhow::Error {
     anyhow::anyhow!(
         "{what} {name:?} is not a class of this model; its classes (labels file order) are: {}",
@@ -125,7 +130,7 @@ fn from_csv(csv: &Path, labels: &[String]) -> anyhow::Result<Vec<Item>> {
     let text = std::fs::read_to_string(csv).with_context(|| format!("cannot read {}", csv.display()))?;
     // Spreadsheets' "CSV UTF-8" starts with a byte-order mark.
     let text = text.strip_prefix('\u{feff}').unwrap_or(&text);
-    let base = csv.parent().unwrap_or(Path::new("."));
+    let base = base_of(csv);
     let mut lines = text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty());
     match lines.next() {
         Some((_, header)) if split(header).as_deref() == Some(&["file".to_string(), "label".to_string()][..]) => {}

@@ -290,7 +290,7 @@ fn wrong_frames(o: &mut String, preds: &[Prediction], root: &Path) {
     if wrong.len() > MAX_THUMBNAILS {
         let _ = write!(o, "<p>The first {MAX_THUMBNAILS} are shown; the JSON lists them all.</p>");
     }
-    let base = if root.is_dir() { root } else { root.parent().unwrap_or(Path::new(".")) };
+    let base = super::dataset::base_of(root);
     let _ = write!(o, "<div class=\"thumbs\">");
     for p in wrong.iter().take(MAX_THUMBNAILS) {
         let img = thumbnail(&base.join(&p.file)).map_or_else(

@@ -224,8 +224,7 @@ impl Baseline {
             labels.iter().map(|l| doc.predictions.iter().filter(|p| &p.label == l).count() as f64 / n).collect();
         let mut counts = vec![0u64; 20];
         for p in &doc.predictions {
-            let s = f64::from(p.score).clamp(0.0, 1.0);
-            counts[((s * 20.0).ceil() as usize).saturating_sub(1).min(19)] += 1;
+            counts[super::stats::right_closed_bin(f64::from(p.score).clamp(0.0, 1.0), 20)] += 1;
         }
         Baseline {
             format: "lineside-baseline",
@@ -258,7 +257,7 @@ pub fn write_json(path: &Path, value: &impl Serialize) -> anyhow::Result<()> {
 /// # Errors
 /// A folder cannot be created or a frame copied.
 pub fn copy_misclassified(root: &Path, preds: &[Prediction], out: &Path) -> anyhow::Result<usize> {
-    let base = if root.is_dir() { root } else { root.parent().unwrap_or(Path::new(".")) };
+    let base = super::dataset::base_of(root);
     let mut n = 0;
     for p in preds.iter().filter(|p| !p.right()) {
         let dir = out.join(component(&p.truth)).join(component(&p.label));

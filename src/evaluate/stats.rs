@@ -150,6 +150,12 @@ pub fn mcnemar_exact(b: u64, c: u64) -> f64 {
     (2.0 * tail).min(1.0)
 }
 
+/// The bin of `s` in [0, 1] among `bins` equal-width bins that are closed on the right, (i/bins,
+/// (i+1)/bins], with 0 in the first: ceil(s · bins) − 1 puts s = i/bins at the top of bin i − 1.
+pub fn right_closed_bin(s: f64, bins: usize) -> usize {
+    ((s * bins as f64).ceil() as usize).saturating_sub(1).min(bins.max(1) - 1)
+}
+
 /// Expected calibration error of the top score over `bins` equal-width bins of [0, 1]: bin i
 /// holds scores in (i/bins, (i+1)/bins], with 0 in the first; ECE = Σ (n_i / n) · |acc_i −
 /// conf_i| (Guo et al., 2017). Also returns each bin's (count, accuracy, mean confidence) for
@@ -158,8 +164,7 @@ pub fn calibration(tops: &[(f32, bool)], bins: usize) -> (f64, Vec<Bin>) {
     let mut acc = vec![(0u64, 0u64, 0.0f64); bins];
     for &(score, right) in tops {
         let s = f64::from(score).clamp(0.0, 1.0);
-        // ceil(s * bins) - 1 puts s = i/bins at the top of bin i - 1, as (i/bins, (i+1)/bins].
-        let i = ((s * bins as f64).ceil() as usize).saturating_sub(1).min(bins - 1);
+        let i = right_closed_bin(s, bins);
         acc[i].0 += 1;
         acc[i].1 += u64::from(right);
         acc[i].2 += s;
