@@ -59,7 +59,7 @@ import json
 import os
 import sys
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Callable, Optional
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")  # deterministic reductions
@@ -142,19 +142,13 @@ EVAL_SEED, EVAL_PER_CLASS = 20261215, 40
 #     6 of 40 good rejected, held-out 0.9900;
 #   fainter still (cracks from 1.5 px and 40 % opacity, spurs from 7 px, blur to 2.4), 12
 #     epochs: held-out 0.9385 (good and cracked confused); 25 escapes, 13 good rejected.
-TRAIN_WIDE = Spread(
+TRAIN_WIDE = replace(
+    EVAL_SPREAD,
     exposure=(0.5, 1.55),
-    blur=(0.0, 2.2),
     noise=STANDARD.noise,
     margin=-20.0,
-    crack_width=(1.8, 4.5),
-    crack_dark=(15, 60),
-    burr_length=(8, 28),
-    burr_half=(2.5, 8.0),
     burr_bright=(140, 255),
-    extras=True,
     crack_opacity=(0.5, 1.0),
-    crack_extent=(0.35, 1.0),
     black=(-15.0, 20.0),
     uneven=0.35,
 )

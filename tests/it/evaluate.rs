@@ -29,6 +29,14 @@ fn evaluate_json(set: &Path, extra: &[&str]) -> (Output, Value) {
     (out, doc)
 }
 
+/// What tools/evaluate_reference.py's `mode` (scikit-learn / statsmodels) prints for `input`.
+fn reference(mode: &str, input: &Path) -> Value {
+    let r =
+        Command::new(python()).arg(root().join("tools/evaluate_reference.py")).arg(mode).arg(input).output().unwrap();
+    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
+    serde_json::from_slice(&r.stdout).unwrap()
+}
+
 fn stderr(out: &Output) -> String {
     String::from_utf8_lossy(&out.stderr).into_owned()
 }
@@ -43,14 +51,7 @@ fn figures_match_scikit_learn_and_statsmodels_on_the_demo_set() {
     assert!(doc["accuracy"].as_f64().unwrap() < 1.0, "the demo set shows no error");
     let json = temp_dir("evaluate-ref").join("eval.json");
     std::fs::write(&json, doc.to_string()).unwrap();
-    let r = Command::new(python())
-        .arg(root().join("tools/evaluate_reference.py"))
-        .arg("figures")
-        .arg(&json)
-        .output()
-        .unwrap();
-    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
-    let diff: Value = serde_json::from_slice(&r.stdout).unwrap();
+    let diff = reference("figures", &json);
     for (k, v) in diff.as_object().unwrap() {
         // Counts and ratios of counts are exact; the intervals come from our incomplete-beta
         // inversion (to 1e-13); ECE from f32 scores written to JSON and read back as f64.
@@ -77,14 +78,7 @@ fn mcnemar_and_clopper_pearson_match_statsmodels() {
     });
     let path = temp_dir("evaluate-stats").join("cases.json");
     std::fs::write(&path, cases.to_string()).unwrap();
-    let r = Command::new(python())
-        .arg(root().join("tools/evaluate_reference.py"))
-        .arg("stats")
-        .arg(&path)
-        .output()
-        .unwrap();
-    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
-    let theirs: Value = serde_json::from_slice(&r.stdout).unwrap();
+    let theirs = reference("stats", &path);
     for (i, &(b, c)) in mcnemar.iter().enumerate() {
         let want = theirs["mcnemar"][i].as_f64().unwrap();
         let got = stats::mcnemar_exact(b, c);
