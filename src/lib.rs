@@ -21,7 +21,9 @@
 //! | [`served`] | the one loading path every command uses; a served model's lanes |
 //! | [`evaluate`] | labelled frames scored through the serving path; the figures, reports and baseline |
 //! | [`verify`] | what `check` finds out about a model, as JSON or text |
+//! | [`access`] | who may do what: admin and client tokens, page sessions, TLS |
 //! | [`http`] | router, handlers, request ids, multipart, the OpenAPI document, the one error type |
+//! | [`logging`] | the log filter, changeable while serving and put back after a set time |
 //! | [`metrics`] | the registry and the response-counting middleware |
 //! | [`server`] | bind, load, serve, drain |
 //! | [`bench`] | load generator, engine-alone runs, bench reports and charts |
@@ -30,12 +32,14 @@
 //! lineside assists visual inspection; it does not replace the plant's safety systems or
 //! qualified sign-off of accept/reject decisions.
 
+pub mod access;
 pub mod batch;
 pub mod bench;
 pub mod cli;
 pub mod config;
 pub mod evaluate;
 pub mod http;
+pub mod logging;
 pub mod metrics;
 pub mod model;
 pub mod preprocess;

@@ -6,6 +6,7 @@ use std::process::ExitCode;
 
 use clap::Parser as _;
 use lineside::cli::{Cli, Command, Outcome};
+use lineside::logging::{ApplyFilter, LogControl};
 
 fn main() -> ExitCode {
     if let Err(missing) = lineside::build_cpu_fits() {
@@ -16,26 +17,34 @@ fn main() -> ExitCode {
         return ExitCode::from(2);
     }
     let cli = Cli::parse();
-    let filter = match &cli.log_level {
-        Some(level) => match tracing_subscriber::EnvFilter::try_new(level) {
-            Ok(f) => f,
-            Err(e) => {
-                eprintln!("lineside: --log-level {level:?}: {e}; expected error, warn, info, debug or trace");
-                return ExitCode::from(2);
-            }
-        },
-        None => tracing_subscriber::EnvFilter::try_from_env("LINESIDE_LOG")
-            .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info")),
+    let startup = match &cli.log_level {
+        Some(level) => level.clone(),
+        None => std::env::var("LINESIDE_LOG").ok().filter(|v| tracing_subscriber::EnvFilter::try_new(v).is_ok()).unwrap_or_else(|| "info".into()),
+    };
+    let filter = match tracing_subscriber::EnvFilter::try_new(&startup) {
+        Ok(f) => f,
+        Err(e) => {
+            eprintln!("lineside: --log-level {startup:?}: {e}; expected error, warn, info, debug or trace");
+            return ExitCode::from(2);
+        }
     };
     let logs = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
-    if cli.log_format == "json" {
-        logs.json().init();
+    // The filter stays changeable while serving (`PUT /log-filter`, an admin action).
+    let apply: ApplyFilter = if cli.log_format == "json" {
+        let logs = logs.json().with_filter_reloading();
+        let handle = logs.reload_handle();
+        logs.init();
+        Box::new(move |f| handle.reload(parse_filter(f)?).map_err(|e| e.to_string()))
     } else {
         // Colours only for a person at a terminal; log files and journald get plain text.
-        logs.with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr())).init();
-    }
+        let logs = logs.with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr())).with_filter_reloading();
+        let handle = logs.reload_handle();
+        logs.init();
+        Box::new(move |f| handle.reload(parse_filter(f)?).map_err(|e| e.to_string()))
+    };
+    let log = std::sync::Arc::new(LogControl::new(startup, apply));
     let result = match cli.command {
-        Command::Serve(args) => lineside::cli::serve::run(args),
+        Command::Serve(args) => lineside::cli::serve::run(args, Some(log)),
         Command::Check(args) => lineside::cli::check::run(args),
         Command::Evaluate(args) => lineside::cli::evaluate::run(args),
         Command::Preprocess(args) => lineside::cli::preprocess::run(args),
@@ -49,4 +58,9 @@ fn main() -> ExitCode {
             ExitCode::from(2)
         }
     }
+}
+
+/// A filter in tracing-subscriber's syntax, or why not.
+fn parse_filter(text: &str) -> Result<tracing_subscriber::EnvFilter, String> {
+    tracing_subscriber::EnvFilter::builder().with_regex(false).parse(text).map_err(|e| e.to_string())
 }

@@ -11,6 +11,7 @@
 //! `header_timeout_ms`, and the drain is bounded by `drain_ms`.
 
 use std::future::Future;
+use std::net::SocketAddr;
 use std::sync::Arc;
 
 use anyhow::Context as _;
@@ -21,7 +22,11 @@ use hyper_util::service::TowerToHyperService;
 use tokio::net::TcpListener;
 use tokio::sync::{oneshot, watch};
 
+use crate::access::{Access, Peer, tls};
 use crate::batch::BatcherGuard;
+use crate::http::access::Transport;
+use crate::logging::LogControl;
+use axum::http::Request;
 use crate::config::Config;
 use crate::http::state::{AppState, InFlight, Readiness, RequestIds, RequestLimits, Served};
 use crate::metrics::Metrics;
@@ -37,6 +42,8 @@ pub struct RunOptions {
     /// Wraps every lane's engine state (tests put a fault-injecting engine around the real
     /// one to test lane recovery, deadlines and health).
     pub wrap_lanes: Option<StateWrap>,
+    /// The running logger's filter, for `PUT /log-filter` (the CLI passes it).
+    pub log: Option<Arc<LogControl>>,
 }
 
 /// Serve `config` on `listener` until `shutdown` resolves, then drain.
@@ -55,23 +62,36 @@ pub async fn run(
     shutdown: impl Future<Output = ()> + Send,
     options: RunOptions,
 ) -> anyhow::Result<()> {
+    let access = Arc::new(Access::load(config.server.access.clone()).map_err(anyhow::Error::msg)?);
+    warn_about_access(&access, &listener);
     let metrics = Metrics::new();
     let (ready_tx, ready_rx) = watch::channel(Readiness::Loading("waiting to start".into()));
-    let state = app_state(&config, ready_rx, metrics.clone())?;
+    let state = app_state(&config, ready_rx, metrics.clone(), Arc::clone(&access), options.log.clone())?;
     let in_flight = Arc::clone(&state.in_flight);
     let app = crate::http::router(state);
     let mut loaded_rx = spawn_loader(config.clone(), ready_tx.clone(), metrics, options);
+    let hangups = spawn_hangup_handler(Arc::clone(&access));
 
     let mut builder = Builder::new(TokioExecutor::new());
     builder.http1().timer(TokioTimer::new()).header_read_timeout(config.server.header_timeout);
     let graceful = GracefulShutdown::new();
-    let accept = |stream: tokio::net::TcpStream| {
+    let handshake_timeout = config.server.header_timeout;
+    let accept = |stream: tokio::net::TcpStream, peer: SocketAddr| {
         let _ = stream.set_nodelay(true);
-        let svc = TowerToHyperService::new(app.clone());
-        let conn = builder.serve_connection_with_upgrades(TokioIo::new(stream), svc).into_owned();
-        let conn = graceful.watch(conn);
+        let tls = access.tls().map(|t| t.acceptor());
+        let svc = connection_service(app.clone(), peer, tls.is_some());
+        let (builder, watcher) = (builder.clone(), graceful.watcher());
         tokio::spawn(async move {
-            if let Err(e) = conn.await {
+            let ended = match tls {
+                None => watcher.watch(builder.serve_connection_with_upgrades(TokioIo::new(stream), svc).into_owned()).await,
+                Some(acceptor) => match handshake(stream, acceptor, handshake_timeout, peer).await {
+                    Some(stream) => {
+                        watcher.watch(builder.serve_connection_with_upgrades(TokioIo::new(stream), svc).into_owned()).await
+                    }
+                    None => return,
+                },
+            };
+            if let Err(e) = ended {
                 tracing::debug!(cause = %e, "connection ended with an error");
             }
         });
@@ -79,6 +99,7 @@ pub async fn run(
     let s = &config.server;
     tracing::info!(
         addr = %listener.local_addr()?,
+        scheme = if access.tls().is_some() { "https" } else { "http" },
         http_threads = s.http_threads,
         decode_threads = s.decode_threads,
         decode_inline_pixels = s.decode_inline_pixels,
@@ -101,6 +122,7 @@ pub async fn run(
         tokio::time::sleep(POLL).await;
     }
     drop(listener);
+    hangups.abort();
     if tokio::time::timeout(ANSWER_TAIL, graceful.shutdown()).await.is_err() {
         tracing::warn!("connections still open after the drain; closing them");
     }
@@ -126,7 +148,7 @@ struct Ended {
 /// Accept connections until `shutdown` (or a failed load); the models arrive meanwhile.
 async fn serve_until(
     listener: &TcpListener,
-    accept: &impl Fn(tokio::net::TcpStream),
+    accept: &impl Fn(tokio::net::TcpStream, SocketAddr),
     loaded_rx: &mut oneshot::Receiver<anyhow::Result<Loaded>>,
     ready_tx: &watch::Sender<Readiness>,
     shutdown: impl Future<Output = ()>,
@@ -137,7 +159,7 @@ async fn serve_until(
     loop {
         tokio::select! {
             conn = listener.accept() => match conn {
-                Ok((stream, _)) => accept(stream),
+                Ok((stream, peer)) => accept(stream, peer),
                 Err(e) => backoff(e).await,
             },
             loaded = &mut *loaded_rx, if load_pending => {
@@ -164,7 +186,7 @@ async fn serve_until(
 /// Keep accepting (answers say `draining`) until nothing is in flight or `drain` passes.
 async fn drain(
     listener: &TcpListener,
-    accept: &impl Fn(tokio::net::TcpStream),
+    accept: &impl Fn(tokio::net::TcpStream, SocketAddr),
     in_flight: &InFlight,
     drain: std::time::Duration,
 ) {
@@ -173,7 +195,7 @@ async fn drain(
     while in_flight.count() > 0 {
         tokio::select! {
             conn = listener.accept() => match conn {
-                Ok((stream, _)) => accept(stream),
+                Ok((stream, peer)) => accept(stream, peer),
                 Err(e) => backoff(e).await,
             },
             () = tokio::time::sleep_until(until) => {
@@ -186,7 +208,13 @@ async fn drain(
 }
 
 /// The handlers' shared state, before any model is loaded.
-fn app_state(config: &Config, readiness: watch::Receiver<Readiness>, metrics: Metrics) -> anyhow::Result<AppState> {
+fn app_state(
+    config: &Config,
+    readiness: watch::Receiver<Readiness>,
+    metrics: Metrics,
+    access: Arc<Access>,
+    log: Option<Arc<LogControl>>,
+) -> anyhow::Result<AppState> {
     let s = &config.server;
     let pool = CpuPool::new("decode", s.decode_threads, s.decode_backlog).context("cannot start the decode threads")?;
     let limits = RequestLimits {
@@ -204,7 +232,94 @@ fn app_state(config: &Config, readiness: watch::Receiver<Readiness>, metrics: Me
         limits,
         in_flight: Arc::new(InFlight::default()),
         request_ids: Arc::new(RequestIds::new()),
+        access,
+        log,
     })
+}
+
+/// The app for one connection: each request learns its peer and whether it came over TLS.
+fn connection_service(
+    app: axum::Router,
+    peer: SocketAddr,
+    tls: bool,
+) -> TowerToHyperService<impl tower::Service<Request<hyper::body::Incoming>, Response = axum::response::Response, Error = std::convert::Infallible, Future: Send> + Clone> {
+    TowerToHyperService::new(tower::ServiceExt::map_request(app, move |mut req: Request<hyper::body::Incoming>| {
+        req.extensions_mut().insert(Peer(peer));
+        req.extensions_mut().insert(Transport { tls });
+        req
+    }))
+}
+
+/// The TLS handshake of one connection, within `timeout`. A client that speaks plain HTTP
+/// gets a 400 naming the scheme instead of a hang; failed handshakes (no client certificate
+/// where one is required, an unknown CA) are logged and closed.
+async fn handshake(
+    stream: tokio::net::TcpStream,
+    acceptor: tokio_rustls::TlsAcceptor,
+    timeout: std::time::Duration,
+    peer: SocketAddr,
+) -> Option<tokio_rustls::server::TlsStream<tokio::net::TcpStream>> {
+    use tokio::io::AsyncWriteExt as _;
+    let mut first = [0u8; 1];
+    let mut stream = stream;
+    match tokio::time::timeout(timeout, stream.peek(&mut first)).await {
+        Ok(Ok(1)) if first[0] != tls::HANDSHAKE_RECORD => {
+            tracing::info!(%peer, "plain HTTP on the HTTPS port; answered 400");
+            let _ = tokio::time::timeout(timeout, stream.write_all(&tls::plain_http_refusal())).await;
+            let _ = stream.shutdown().await;
+            return None;
+        }
+        Ok(Ok(1)) => {}
+        _ => return None,
+    }
+    match tokio::time::timeout(timeout, acceptor.accept(stream)).await {
+        Ok(Ok(s)) => Some(s),
+        Ok(Err(e)) => {
+            tracing::info!(%peer, cause = %e, "TLS handshake failed");
+            None
+        }
+        Err(_) => {
+            tracing::info!(%peer, "TLS handshake timed out");
+            None
+        }
+    }
+}
+
+/// SIGHUP re-reads the token files and certificates (the model reload will hang off the
+/// same signal). A part that fails keeps its previous value and the log says why.
+fn spawn_hangup_handler(access: Arc<Access>) -> tokio::task::JoinHandle<()> {
+    tokio::spawn(async move {
+        #[cfg(unix)]
+        {
+            use tokio::signal::unix::{SignalKind, signal};
+            let Ok(mut hangups) = signal(SignalKind::hangup()) else {
+                tracing::warn!("cannot listen for SIGHUP; token and certificate files are read at start only");
+                return;
+            };
+            while hangups.recv().await.is_some() {
+                match access.reload() {
+                    Ok(()) => tracing::info!("SIGHUP: token and certificate files read again"),
+                    Err(e) => tracing::error!(cause = %e, "SIGHUP: reading the access files again failed"),
+                }
+            }
+        }
+        #[cfg(not(unix))]
+        drop(access);
+    })
+}
+
+/// Say at start what a reader of the log needs to know about access.
+fn warn_about_access(access: &Access, listener: &TcpListener) {
+    let local = listener.local_addr().is_ok_and(|a| a.ip().is_loopback());
+    if access.tls().is_none() && !local && (access.has_admin_token() || access.has_client_token()) {
+        tracing::warn!(
+            "tokens are configured but not TLS: they cross the network readable; set tls_cert and tls_key, or put a \
+             TLS proxy in front (docs/security.md)"
+        );
+    }
+    if !access.has_admin_token() {
+        tracing::info!("no admin_token_file: admin actions are accepted from 127.0.0.1 and ::1 only");
+    }
 }
 
 /// Load the models on a blocking thread (after the test's gate, if any); the result comes
@@ -255,7 +370,7 @@ pub fn ready_app(config: &Config, wrap: Option<&StateWrap>) -> anyhow::Result<(a
     anyhow::ensure!(loaded.selftest_failures.is_empty(), "self-test failed: {}", loaded.selftest_failures.join("; "));
     // The sender may go: the receiver keeps the last value, and nothing changes it again.
     let (_ready_tx, ready_rx) = watch::channel(Readiness::Ready(loaded.served));
-    let state = app_state(config, ready_rx, metrics)?;
+    let state = app_state(config, ready_rx, metrics, Arc::new(Access::load(config.server.access.clone()).map_err(anyhow::Error::msg)?), None)?;
     Ok((crate::http::router(state), loaded.guards))
 }
 

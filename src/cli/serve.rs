@@ -61,7 +61,7 @@ impl BatchingArgs {
 ///
 /// # Errors
 /// Config errors, a port that cannot be bound, a model that fails to load.
-pub fn run(args: ServeArgs) -> anyhow::Result<Outcome> {
+pub fn run(args: ServeArgs, log: Option<std::sync::Arc<crate::logging::LogControl>>) -> anyhow::Result<Outcome> {
     let config = Config::load(
         args.config.config.as_deref(),
         &Overrides {
@@ -84,7 +84,8 @@ pub fn run(args: ServeArgs) -> anyhow::Result<Outcome> {
         let addr = config.server.listen;
         let listener = tokio::net::TcpListener::bind(addr).await.with_context(|| format!("cannot listen on {addr}"))?;
         tracing::info!(config = %config.origin, "starting");
-        crate::server::run(config, listener, crate::shutdown::signal(), Default::default()).await
+        let options = crate::server::RunOptions { log, ..Default::default() };
+        crate::server::run(config, listener, crate::shutdown::signal(), options).await
     })?;
     Ok(Outcome::Ok)
 }

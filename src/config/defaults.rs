@@ -43,3 +43,6 @@ pub const MIN_SIDE: u32 = 8;
 pub const IMAGENET_MEAN: [f32; 3] = [0.485, 0.456, 0.406];
 /// ImageNet channel standard deviations in RGB order (common practice).
 pub const IMAGENET_STD: [f32; 3] = [0.229, 0.224, 0.225];
+/// `[server] session_minutes`: a page session (after logging in with the admin token) lasts
+/// an hour; a person reviewing frames logs in again after that.
+pub const SESSION_MINUTES: u64 = 60;

@@ -22,6 +22,7 @@ use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
+pub use crate::access::AccessConfig;
 pub use crate::batch::{BatchingConfig, Lanes};
 pub use crate::model::{EngineKind, Layout, Library, ScoresMode, Spec, StackMode};
 pub use crate::preprocess::{Channels, Filter, Orientation, PreprocessConfig, ResizeMode, Roi};
@@ -73,6 +74,8 @@ pub struct ServerConfig {
     pub stall: Duration,
     /// `/readyz` turns 503 when a model's backlog holds this share of its size or more.
     pub ready_backlog: f64,
+    /// Tokens, page sessions and TLS (docs/security.md).
+    pub access: AccessConfig,
 }
 
 /// One model (`[[models]]`).

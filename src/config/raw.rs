@@ -41,6 +41,12 @@ pub(super) struct RawServer {
     pub(super) body_timeout_ms: Option<u64>,
     pub(super) stall_ms: Option<u64>,
     pub(super) ready_backlog: Option<f64>,
+    pub(super) admin_token_file: Option<PathBuf>,
+    pub(super) client_token_file: Option<PathBuf>,
+    pub(super) session_minutes: Option<u64>,
+    pub(super) tls_cert: Option<PathBuf>,
+    pub(super) tls_key: Option<PathBuf>,
+    pub(super) tls_client_ca: Option<PathBuf>,
 }
 
 #[derive(Debug, Deserialize)]

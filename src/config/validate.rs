@@ -6,6 +6,8 @@ use std::time::Duration;
 
 use super::raw::{RawBatching, RawConfig, RawLanes, RawModel, RawPreprocess, RawServer, RawStack};
 use super::{Config, ModelConfig, Overrides, ServerConfig, defaults};
+use crate::access::AccessConfig;
+use crate::access::tls::TlsFiles;
 use crate::batch::{BatchingConfig, Lanes};
 use crate::model::{Library, StackMode};
 use crate::preprocess::{Channels, PreprocessConfig, ResizeMode, Roi, short_side_below_crop};
@@ -20,7 +22,7 @@ pub(super) fn config(
     resolve: &dyn Fn(&Path) -> Source,
     overrides: &Overrides,
 ) -> Result<Config, String> {
-    let server = server(raw.server, overrides)?;
+    let server = server(raw.server, resolve, overrides)?;
     if raw.models.is_empty() {
         return Err("no [[models]] table: add at least one model (see config/lineside.toml)".into());
     }
@@ -42,7 +44,8 @@ pub(super) fn config(
 }
 
 /// `[server]`, with the command line's overrides.
-fn server(s: RawServer, overrides: &Overrides) -> Result<ServerConfig, String> {
+fn server(s: RawServer, resolve: &dyn Fn(&Path) -> Source, overrides: &Overrides) -> Result<ServerConfig, String> {
+    let access = access(&s, resolve)?;
     let listen_text = overrides.listen.clone().or(s.listen).unwrap_or_else(|| defaults::LISTEN.into());
     let listen: SocketAddr = listen_text
         .parse()
@@ -100,6 +103,38 @@ fn server(s: RawServer, overrides: &Overrides) -> Result<ServerConfig, String> {
             f if f > 0.0 && f <= 1.0 => f,
             f => return Err(format!("server.ready_backlog = {f}: expected a share 0 < f <= 1 (0.9 = 90% full)")),
         },
+        access,
+    })
+}
+
+/// The access keys of `[server]`: token files and TLS files, relative to the config's folder.
+fn access(s: &RawServer, resolve: &dyn Fn(&Path) -> Source) -> Result<AccessConfig, String> {
+    let path = |p: &Option<std::path::PathBuf>| {
+        p.as_ref().map(|p| match resolve(p) {
+            Source::File(resolved) => resolved,
+            _ => p.clone(),
+        })
+    };
+    let minutes = s.session_minutes.unwrap_or(defaults::SESSION_MINUTES);
+    if minutes == 0 || minutes > 24 * 60 {
+        return Err(format!("server.session_minutes = {minutes}: expected 1 ..= 1440 (a page session lasts at most a day)"));
+    }
+    let tls = match (path(&s.tls_cert), path(&s.tls_key)) {
+        (Some(cert), Some(key)) => Some(TlsFiles { cert, key, client_ca: path(&s.tls_client_ca) }),
+        (None, None) if s.tls_client_ca.is_some() => {
+            return Err("server.tls_client_ca is set without tls_cert and tls_key: mutual TLS needs HTTPS; set \
+                        both, or remove tls_client_ca"
+                .into());
+        }
+        (None, None) => None,
+        (Some(_), None) => return Err("server.tls_cert is set without server.tls_key: set both (PEM files), or neither".into()),
+        (None, Some(_)) => return Err("server.tls_key is set without server.tls_cert: set both (PEM files), or neither".into()),
+    };
+    Ok(AccessConfig {
+        admin_token_file: path(&s.admin_token_file),
+        client_token_file: path(&s.client_token_file),
+        session: Duration::from_secs(minutes * 60),
+        tls,
     })
 }
 

@@ -49,6 +49,10 @@ pub enum ErrorKind {
     MethodNotAllowed,
     /// A lane has been stuck in one pass longer than `server.stall_ms` (`/healthz`).
     Stalled,
+    /// No credentials, malformed ones, or an expired page session (docs/security.md).
+    Unauthorized,
+    /// Wrong credentials, or a peer that may not do this at all.
+    Forbidden,
     /// A fault inside lineside (details in the server log).
     Internal,
 }
@@ -72,6 +76,8 @@ impl ErrorKind {
         ErrorKind::NotFound,
         ErrorKind::MethodNotAllowed,
         ErrorKind::Stalled,
+        ErrorKind::Unauthorized,
+        ErrorKind::Forbidden,
         ErrorKind::Internal,
     ];
 
@@ -90,6 +96,8 @@ impl ErrorKind {
             ErrorKind::BodyTimeout => StatusCode::REQUEST_TIMEOUT,
             ErrorKind::InferenceFailed => StatusCode::INTERNAL_SERVER_ERROR,
             ErrorKind::MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
+            ErrorKind::Unauthorized => StatusCode::UNAUTHORIZED,
+            ErrorKind::Forbidden => StatusCode::FORBIDDEN,
             ErrorKind::Internal => StatusCode::INTERNAL_SERVER_ERROR,
         }
     }
@@ -113,6 +121,8 @@ impl ErrorKind {
             ErrorKind::NotFound => "not_found",
             ErrorKind::MethodNotAllowed => "method_not_allowed",
             ErrorKind::Stalled => "stalled",
+            ErrorKind::Unauthorized => "unauthorized",
+            ErrorKind::Forbidden => "forbidden",
             ErrorKind::Internal => "internal",
         }
     }
@@ -178,10 +188,23 @@ impl IntoResponse for ApiError {
         if matches!(self.kind, ErrorKind::Overloaded | ErrorKind::NotReady | ErrorKind::Draining) {
             resp.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from_static("1"));
         }
+        if self.kind == ErrorKind::Unauthorized {
+            // RFC 6750, section 3: a 401 names the scheme the client should use.
+            resp.headers_mut().insert(header::WWW_AUTHENTICATE, HeaderValue::from_static("Bearer realm=\"lineside\""));
+        }
         if let Some(d) = self.detail {
             resp.extensions_mut().insert(InternalDetail(d));
         }
         resp
+    }
+}
+
+impl From<crate::access::Denied> for ApiError {
+    fn from(d: crate::access::Denied) -> Self {
+        match d {
+            crate::access::Denied::Unauthorized(m) => ApiError::new(ErrorKind::Unauthorized, m),
+            crate::access::Denied::Forbidden(m) => ApiError::new(ErrorKind::Forbidden, m),
+        }
     }
 }
 
@@ -251,6 +274,8 @@ mod tests {
             (ErrorKind::NotFound, 404, "not_found"),
             (ErrorKind::MethodNotAllowed, 405, "method_not_allowed"),
             (ErrorKind::Stalled, 503, "stalled"),
+            (ErrorKind::Unauthorized, 401, "unauthorized"),
+            (ErrorKind::Forbidden, 403, "forbidden"),
             (ErrorKind::Internal, 500, "internal"),
         ];
         for (kind, status, name) in table {

@@ -5,6 +5,7 @@
 //! (axum's own, which answers 413 through our error shape), the request id and access log,
 //! and the middleware that counts responses and logs internal faults.
 
+pub mod access;
 pub mod classify;
 pub mod error;
 pub mod health;
@@ -16,7 +17,7 @@ use axum::Router;
 use axum::extract::{DefaultBodyLimit, Request};
 use axum::middleware::{self, Next};
 use axum::response::Response;
-use axum::routing::{get, post};
+use axum::routing::{get, post, put};
 
 use error::{ApiError, ErrorKind, InternalDetail};
 use state::AppState;
@@ -24,8 +25,13 @@ use state::AppState;
 /// The application, ready to serve on any listener.
 pub fn router(state: AppState) -> Router {
     let metrics = state.metrics.clone();
+    let admin = || middleware::from_fn_with_state(state.clone(), access::require_admin);
+    let client = middleware::from_fn_with_state(state.clone(), access::require_client);
     Router::new()
-        .route("/classify/{model}", post(classify::classify))
+        .route("/classify/{model}", post(classify::classify).route_layer(client))
+        .route("/login", get(access::login_page))
+        .route("/session", get(access::current).delete(access::logout).route_layer(admin()).post(access::login))
+        .route("/log-filter", put(access::put_log_filter).route_layer(admin()).get(access::get_log_filter))
         .route("/healthz", get(health::healthz))
         .route("/readyz", get(health::readyz))
         .route("/metrics", get(health::metrics))
@@ -120,7 +126,8 @@ mod tests {
         assert!(doc["openapi"].as_str().unwrap().starts_with("3."));
         let paths: Vec<&str> = doc["paths"].as_object().unwrap().keys().map(String::as_str).collect();
         for route in
-            ["/classify/{model}", "/models", "/models/{model}", "/healthz", "/readyz", "/metrics", "/openapi.json"]
+            ["/classify/{model}", "/models", "/models/{model}", "/healthz", "/readyz", "/metrics", "/openapi.json",
+             "/login", "/session", "/log-filter"]
         {
             assert!(paths.contains(&route), "{route} missing from openapi.json");
         }

@@ -78,6 +78,10 @@ pub struct AppState {
     pub in_flight: Arc<InFlight>,
     /// Source of generated request ids.
     pub request_ids: Arc<RequestIds>,
+    /// Tokens, sessions, TLS: who may do what.
+    pub access: Arc<crate::access::Access>,
+    /// The running logger's filter (`None` where no logger is installed, e.g. in tests).
+    pub log: Option<Arc<crate::logging::LogControl>>,
 }
 
 /// The `[server]` settings a request is held to.

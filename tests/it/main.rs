@@ -7,6 +7,7 @@
 //! helpers (starting a server, fixtures, the Python reference tools) live in `util.rs`.
 //! Regression tests are named after their issue (`issue_N_...`).
 
+mod access;
 mod bench;
 mod check;
 mod cli;

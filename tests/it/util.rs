@@ -107,6 +107,14 @@ impl TestServer {
         s
     }
 
+    /// Start and return at once, without waiting for `/readyz` (for servers that speak only
+    /// HTTPS, whose readiness the test polls itself).
+    pub(crate) async fn start_no_wait(config: Config) -> TestServer {
+        let mut s = Self::spawn(config, None).await;
+        s.release_load();
+        s
+    }
+
     /// Start with model loading held until [`TestServer::release_load`].
     pub(crate) async fn start_gated(config: Config) -> TestServer {
         Self::spawn(config, None).await
@@ -120,7 +128,7 @@ impl TestServer {
         let shutdown = async move {
             let _ = stop_rx.await;
         };
-        let handle = tokio::spawn(run(config, listener, shutdown, RunOptions { load_gate: Some(gate_rx), wrap_lanes }));
+        let handle = tokio::spawn(run(config, listener, shutdown, RunOptions { load_gate: Some(gate_rx), wrap_lanes, ..Default::default() }));
         TestServer { addr, shutdown: Some(stop_tx), gate: Some(gate_tx), handle }
     }
 
