@@ -19,7 +19,10 @@ fn main() -> ExitCode {
     let cli = Cli::parse();
     let startup = match &cli.log_level {
         Some(level) => level.clone(),
-        None => std::env::var("LINESIDE_LOG").ok().filter(|v| tracing_subscriber::EnvFilter::try_new(v).is_ok()).unwrap_or_else(|| "info".into()),
+        None => std::env::var("LINESIDE_LOG")
+            .ok()
+            .filter(|v| tracing_subscriber::EnvFilter::try_new(v).is_ok())
+            .unwrap_or_else(|| "info".into()),
     };
     let filter = match tracing_subscriber::EnvFilter::try_new(&startup) {
         Ok(f) => f,

@@ -24,15 +24,15 @@ use tokio::sync::{oneshot, watch};
 
 use crate::access::{Access, Peer, tls};
 use crate::batch::BatcherGuard;
-use crate::http::access::Transport;
-use crate::logging::LogControl;
-use axum::http::Request;
 use crate::config::Config;
+use crate::http::access::Transport;
 use crate::http::state::{AppState, InFlight, Readiness, RequestIds, RequestLimits, Served};
+use crate::logging::LogControl;
 use crate::metrics::Metrics;
 use crate::model::StateWrap;
 use crate::preprocess::pool::CpuPool;
 use crate::served::{LoadOptions, Loaded as LoadedModel};
+use axum::http::Request;
 
 /// Extra controls for tests.
 #[derive(Default)]
@@ -62,6 +62,9 @@ pub async fn run(
     shutdown: impl Future<Output = ()> + Send,
     options: RunOptions,
 ) -> anyhow::Result<()> {
+    // Listen for SIGHUP first: its default action ends the process, and a reload sent while
+    // the models load must not.
+    let hangup_signal = hangup_signal();
     let access = Arc::new(Access::load(config.server.access.clone()).map_err(anyhow::Error::msg)?);
     warn_about_access(&access, &listener);
     let metrics = Metrics::new();
@@ -70,7 +73,7 @@ pub async fn run(
     let in_flight = Arc::clone(&state.in_flight);
     let app = crate::http::router(state);
     let mut loaded_rx = spawn_loader(config.clone(), ready_tx.clone(), metrics, options);
-    let hangups = spawn_hangup_handler(Arc::clone(&access));
+    let hangups = spawn_hangup_handler(hangup_signal, Arc::clone(&access));
 
     let mut builder = Builder::new(TokioExecutor::new());
     builder.http1().timer(TokioTimer::new()).header_read_timeout(config.server.header_timeout);
@@ -83,10 +86,14 @@ pub async fn run(
         let (builder, watcher) = (builder.clone(), graceful.watcher());
         tokio::spawn(async move {
             let ended = match tls {
-                None => watcher.watch(builder.serve_connection_with_upgrades(TokioIo::new(stream), svc).into_owned()).await,
+                None => {
+                    watcher.watch(builder.serve_connection_with_upgrades(TokioIo::new(stream), svc).into_owned()).await
+                }
                 Some(acceptor) => match handshake(stream, acceptor, handshake_timeout, peer).await {
                     Some(stream) => {
-                        watcher.watch(builder.serve_connection_with_upgrades(TokioIo::new(stream), svc).into_owned()).await
+                        watcher
+                            .watch(builder.serve_connection_with_upgrades(TokioIo::new(stream), svc).into_owned())
+                            .await
                     }
                     None => return,
                 },
@@ -242,7 +249,14 @@ fn connection_service(
     app: axum::Router,
     peer: SocketAddr,
     tls: bool,
-) -> TowerToHyperService<impl tower::Service<Request<hyper::body::Incoming>, Response = axum::response::Response, Error = std::convert::Infallible, Future: Send> + Clone> {
+) -> TowerToHyperService<
+    impl tower::Service<
+        Request<hyper::body::Incoming>,
+        Response = axum::response::Response,
+        Error = std::convert::Infallible,
+        Future: Send,
+    > + Clone,
+> {
     TowerToHyperService::new(tower::ServiceExt::map_request(app, move |mut req: Request<hyper::body::Incoming>| {
         req.extensions_mut().insert(Peer(peer));
         req.extensions_mut().insert(Transport { tls });
@@ -260,9 +274,10 @@ async fn handshake(
     peer: SocketAddr,
 ) -> Option<tokio_rustls::server::TlsStream<tokio::net::TcpStream>> {
     use tokio::io::AsyncWriteExt as _;
+    let deadline = tokio::time::Instant::now() + timeout;
     let mut first = [0u8; 1];
     let mut stream = stream;
-    match tokio::time::timeout(timeout, stream.peek(&mut first)).await {
+    match tokio::time::timeout_at(deadline, stream.peek(&mut first)).await {
         Ok(Ok(1)) if first[0] != tls::HANDSHAKE_RECORD => {
             tracing::info!(%peer, "plain HTTP on the HTTPS port; answered 400");
             let _ = tokio::time::timeout(timeout, stream.write_all(&tls::plain_http_refusal())).await;
@@ -272,7 +287,7 @@ async fn handshake(
         Ok(Ok(1)) => {}
         _ => return None,
     }
-    match tokio::time::timeout(timeout, acceptor.accept(stream)).await {
+    match tokio::time::timeout_at(deadline, acceptor.accept(stream)).await {
         Ok(Ok(s)) => Some(s),
         Ok(Err(e)) => {
             tracing::info!(%peer, cause = %e, "TLS handshake failed");
@@ -285,27 +300,41 @@ async fn handshake(
     }
 }
 
+/// The SIGHUP stream (on Unix), registered at once.
+#[cfg(unix)]
+fn hangup_signal() -> Option<tokio::signal::unix::Signal> {
+    use tokio::signal::unix::{SignalKind, signal};
+    signal(SignalKind::hangup())
+        .inspect_err(|e| tracing::warn!(cause = %e, "cannot listen for SIGHUP; token and certificate files are read at start only"))
+        .ok()
+}
+
+#[cfg(not(unix))]
+fn hangup_signal() -> Option<()> {
+    None
+}
+
 /// SIGHUP re-reads the token files and certificates (the model reload will hang off the
 /// same signal). A part that fails keeps its previous value and the log says why.
-fn spawn_hangup_handler(access: Arc<Access>) -> tokio::task::JoinHandle<()> {
+#[cfg(unix)]
+fn spawn_hangup_handler(
+    signal: Option<tokio::signal::unix::Signal>,
+    access: Arc<Access>,
+) -> tokio::task::JoinHandle<()> {
     tokio::spawn(async move {
-        #[cfg(unix)]
-        {
-            use tokio::signal::unix::{SignalKind, signal};
-            let Ok(mut hangups) = signal(SignalKind::hangup()) else {
-                tracing::warn!("cannot listen for SIGHUP; token and certificate files are read at start only");
-                return;
-            };
-            while hangups.recv().await.is_some() {
-                match access.reload() {
-                    Ok(()) => tracing::info!("SIGHUP: token and certificate files read again"),
-                    Err(e) => tracing::error!(cause = %e, "SIGHUP: reading the access files again failed"),
-                }
+        let Some(mut hangups) = signal else { return };
+        while hangups.recv().await.is_some() {
+            match access.reload() {
+                Ok(()) => tracing::info!("SIGHUP: token and certificate files read again"),
+                Err(e) => tracing::error!(cause = %e, "SIGHUP: reading the access files again failed"),
             }
         }
-        #[cfg(not(unix))]
-        drop(access);
     })
+}
+
+#[cfg(not(unix))]
+fn spawn_hangup_handler(_signal: Option<()>, _access: Arc<Access>) -> tokio::task::JoinHandle<()> {
+    tokio::spawn(async {})
 }
 
 /// Say at start what a reader of the log needs to know about access.
@@ -370,7 +399,13 @@ pub fn ready_app(config: &Config, wrap: Option<&StateWrap>) -> anyhow::Result<(a
     anyhow::ensure!(loaded.selftest_failures.is_empty(), "self-test failed: {}", loaded.selftest_failures.join("; "));
     // The sender may go: the receiver keeps the last value, and nothing changes it again.
     let (_ready_tx, ready_rx) = watch::channel(Readiness::Ready(loaded.served));
-    let state = app_state(config, ready_rx, metrics, Arc::new(Access::load(config.server.access.clone()).map_err(anyhow::Error::msg)?), None)?;
+    let state = app_state(
+        config,
+        ready_rx,
+        metrics,
+        Arc::new(Access::load(config.server.access.clone()).map_err(anyhow::Error::msg)?),
+        None,
+    )?;
     Ok((crate::http::router(state), loaded.guards))
 }
 

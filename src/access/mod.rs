@@ -95,7 +95,9 @@ pub struct Peer(pub SocketAddr);
 pub fn is_loopback(ip: IpAddr) -> bool {
     match ip {
         IpAddr::V4(v4) => v4 == std::net::Ipv4Addr::LOCALHOST,
-        IpAddr::V6(v6) => v6 == std::net::Ipv6Addr::LOCALHOST || v6.to_ipv4_mapped() == Some(std::net::Ipv4Addr::LOCALHOST),
+        IpAddr::V6(v6) => {
+            v6 == std::net::Ipv6Addr::LOCALHOST || v6.to_ipv4_mapped() == Some(std::net::Ipv4Addr::LOCALHOST)
+        }
     }
 }
 
@@ -122,14 +124,33 @@ impl Access {
     /// # Errors
     /// Every part that failed, in one message.
     pub fn reload(&self) -> Result<(), String> {
+        let c = &self.config;
+        let admin = c.admin_token_file.as_deref().map(|p| token::read("admin_token_file", p));
+        let client = c.client_token_file.as_deref().map(|p| token::read("client_token_file", p));
         let mut failed = Vec::new();
-        for (key, path) in self.token_files() {
-            match token::read(key, path) {
-                Ok(t) => {
-                    let mut s = self.write();
-                    if key == "admin_token_file" { s.admin = Some(t) } else { s.client = Some(t) }
+        {
+            let mut s = self.write();
+            let key_after = |new: &Option<Result<Token, String>>, old: &Option<Token>| match new {
+                Some(Ok(t)) => Some(t.key().to_vec()),
+                _ => old.as_ref().map(|t| t.key().to_vec()),
+            };
+            let same =
+                key_after(&admin, &s.admin).is_some() && key_after(&admin, &s.admin) == key_after(&client, &s.client);
+            if same {
+                failed.push(
+                    "server.admin_token_file and server.client_token_file would hold the same token: both previous \
+                     tokens stay in force"
+                        .to_owned(),
+                );
+            } else {
+                let s = &mut *s;
+                for (new, slot) in [(admin, &mut s.admin), (client, &mut s.client)] {
+                    match new {
+                        Some(Ok(t)) => *slot = Some(t),
+                        Some(Err(e)) => failed.push(format!("{e} (the previous token stays in force)")),
+                        None => {}
+                    }
                 }
-                Err(e) => failed.push(format!("{e} (the previous token stays in force)")),
             }
         }
         if let Some(tls) = &self.tls
@@ -138,14 +159,6 @@ impl Access {
             failed.push(format!("{e} (the previous certificate stays in use)"));
         }
         if failed.is_empty() { Ok(()) } else { Err(failed.join("; ")) }
-    }
-
-    fn token_files(&self) -> Vec<(&'static str, &PathBuf)> {
-        let c = &self.config;
-        [("admin_token_file", &c.admin_token_file), ("client_token_file", &c.client_token_file)]
-            .into_iter()
-            .filter_map(|(k, p)| p.as_ref().map(|p| (k, p)))
-            .collect()
     }
 
     fn read(&self) -> std::sync::RwLockReadGuard<'_, Secrets> {
@@ -200,7 +213,8 @@ impl Access {
         let s = session::verify(admin, cookie, now).map_err(|e| match e {
             session::Invalid::Expired => Denied::Unauthorized("the session has expired: log in again at /login".into()),
             session::Invalid::Forged => Denied::Unauthorized(
-                "the session cookie is not valid (the admin token may have been rotated): log in again at /login".into(),
+                "the session cookie is not valid (the admin token may have been rotated): log in again at /login"
+                    .into(),
             ),
         })?;
         if changes_state(method) {
@@ -287,7 +301,9 @@ fn loopback_only(headers: &HeaderMap, peer: Option<IpAddr>) -> Result<Grant, Den
                  127.0.0.1 and ::1 may use them)"
             )));
         }
-        None => return Err(Denied::Forbidden("the peer's address is unknown; admin actions need an admin token".into())),
+        None => {
+            return Err(Denied::Forbidden("the peer's address is unknown; admin actions need an admin token".into()));
+        }
     }
     if cross_site(headers) {
         return Err(Denied::Forbidden("a page of another site may not use admin actions".into()));

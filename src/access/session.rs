@@ -148,10 +148,7 @@ mod tests {
         // RFC 4231, test case 2: key "Jefe", data "what do ya want for nothing?".
         let t = Token::new("Jefe");
         let m = <Hmac<Sha256>>::new_from_slice(t.key()).unwrap().chain_update(b"what do ya want for nothing?");
-        assert_eq!(
-            hex(&m.finalize().into_bytes()),
-            "5bdcc146bf60754e6a042426089575c75a003f089d2739839dec58b964ec3843"
-        );
+        assert_eq!(hex(&m.finalize().into_bytes()), "5bdcc146bf60754e6a042426089575c75a003f089d2739839dec58b964ec3843");
     }
 
     #[test]

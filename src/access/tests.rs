@@ -8,7 +8,10 @@ const CLIENT: &str = "client-token-0123456789";
 const NOW: u64 = 1_000_000;
 
 fn token_file(name: &str, text: &str) -> PathBuf {
-    let dir = std::env::temp_dir().join(format!("lineside-access-{}-{name}", std::process::id()));
+    // A fresh folder per call: tests run in parallel and must not rewrite each other's files.
+    static CALLS: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
+    let n = CALLS.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+    let dir = std::env::temp_dir().join(format!("lineside-access-{}-{name}-{n}", std::process::id()));
     std::fs::create_dir_all(&dir).unwrap();
     let p = dir.join(name);
     std::fs::write(&p, text).unwrap();
@@ -172,4 +175,21 @@ fn a_reload_rotates_the_token_and_a_bad_file_keeps_the_old_one() {
     let e = a.reload().unwrap_err();
     assert!(e.contains("empty") && e.contains("previous token stays"), "{e}");
     assert_eq!(a.admin(&new, &Method::POST, LOCAL, NOW), Ok(Grant::Bearer));
+}
+
+#[test]
+fn a_reload_that_would_make_both_tokens_equal_keeps_both() {
+    let (admin, client) = (token_file("eq-admin", ADMIN), token_file("eq-client", CLIENT));
+    let a = Access::load(AccessConfig {
+        admin_token_file: Some(admin.clone()),
+        client_token_file: Some(client.clone()),
+        session: Duration::from_secs(60),
+        tls: None,
+    })
+    .unwrap();
+    std::fs::write(&client, ADMIN).unwrap();
+    let e = a.reload().unwrap_err();
+    assert!(e.contains("same token"), "{e}");
+    let h = headers(&[("authorization", &format!("Bearer {CLIENT}"))]);
+    assert_eq!(a.client(&h, NOW), Ok(()), "the previous client token stays");
 }

@@ -83,7 +83,9 @@ fn server_config(files: &TlsFiles) -> Result<rustls::ServerConfig, String> {
         Some(ca) => {
             let mut roots = rustls::RootCertStore::empty();
             for c in certificates("tls_client_ca", ca)? {
-                roots.add(c).map_err(|e| format!("server.tls_client_ca = {ca:?}: a certificate is not a usable CA: {e}"))?;
+                roots
+                    .add(c)
+                    .map_err(|e| format!("server.tls_client_ca = {ca:?}: a certificate is not a usable CA: {e}"))?;
             }
             let verifier = rustls::server::WebPkiClientVerifier::builder_with_provider(Arc::new(roots), provider())
                 .build()
@@ -108,7 +110,9 @@ fn certificates(key: &str, path: &Path) -> Result<Vec<CertificateDer<'static>>, 
         .collect::<Result<_, _>>()
         .map_err(|e| format!("server.{key} = {path:?}: not a PEM certificate file: {e}"))?;
     if certs.is_empty() {
-        return Err(format!("server.{key} = {path:?} holds no certificate (expected PEM blocks \"BEGIN CERTIFICATE\")"));
+        return Err(format!(
+            "server.{key} = {path:?} holds no certificate (expected PEM blocks \"BEGIN CERTIFICATE\")"
+        ));
     }
     Ok(certs)
 }

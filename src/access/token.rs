@@ -74,7 +74,9 @@ pub fn read(key: &str, path: &Path) -> Result<Token, String> {
     let text = std::fs::read_to_string(path).map_err(|e| format!("server.{key} = {shown:?}: cannot read it: {e}"))?;
     let token = text.trim_end_matches(['\n', '\r']);
     if token.trim().is_empty() {
-        return Err(format!("server.{key} = {shown:?} is empty: write a token of {MIN_TOKEN_LEN} or more characters into it"));
+        return Err(format!(
+            "server.{key} = {shown:?} is empty: write a token of {MIN_TOKEN_LEN} or more characters into it"
+        ));
     }
     if token.contains(['\n', '\r']) {
         return Err(format!("server.{key} = {shown:?} holds more than one line: write the token alone on one line"));

@@ -117,7 +117,9 @@ fn access(s: &RawServer, resolve: &dyn Fn(&Path) -> Source) -> Result<AccessConf
     };
     let minutes = s.session_minutes.unwrap_or(defaults::SESSION_MINUTES);
     if minutes == 0 || minutes > 24 * 60 {
-        return Err(format!("server.session_minutes = {minutes}: expected 1 ..= 1440 (a page session lasts at most a day)"));
+        return Err(format!(
+            "server.session_minutes = {minutes}: expected 1 ..= 1440 (a page session lasts at most a day)"
+        ));
     }
     let tls = match (path(&s.tls_cert), path(&s.tls_key)) {
         (Some(cert), Some(key)) => Some(TlsFiles { cert, key, client_ca: path(&s.tls_client_ca) }),
@@ -127,8 +129,12 @@ fn access(s: &RawServer, resolve: &dyn Fn(&Path) -> Source) -> Result<AccessConf
                 .into());
         }
         (None, None) => None,
-        (Some(_), None) => return Err("server.tls_cert is set without server.tls_key: set both (PEM files), or neither".into()),
-        (None, Some(_)) => return Err("server.tls_key is set without server.tls_cert: set both (PEM files), or neither".into()),
+        (Some(_), None) => {
+            return Err("server.tls_cert is set without server.tls_key: set both (PEM files), or neither".into());
+        }
+        (None, Some(_)) => {
+            return Err("server.tls_key is set without server.tls_cert: set both (PEM files), or neither".into());
+        }
     };
     Ok(AccessConfig {
         admin_token_file: path(&s.admin_token_file),

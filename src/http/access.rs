@@ -35,6 +35,13 @@ fn shown(peer: Option<Peer>) -> String {
 /// extensions, or answers 401/403.
 pub async fn require_admin(State(state): State<AppState>, mut req: Request, next: Next) -> Response {
     let peer = peer_of(&req);
+    // HTTP/2 carries the host as the URI's authority, not a Host header (RFC 9113, 8.3.1):
+    // the same-origin check compares `Origin` with it either way.
+    if !req.headers().contains_key(header::HOST)
+        && let Some(host) = req.uri().authority().and_then(|a| HeaderValue::from_str(a.as_str()).ok())
+    {
+        req.headers_mut().insert(header::HOST, host);
+    }
     let path = req.uri().path().to_owned();
     match state.access.admin(req.headers(), req.method(), peer.map(|p| p.0.ip()), now()) {
         Ok(grant) => {
@@ -116,8 +123,8 @@ pub async fn login(State(state): State<AppState>, req: Request) -> Result<Respon
     let s = match state.access.login(token.trim(), now()) {
         Ok(s) => s,
         Err(d) => {
-            tracing::warn!(peer = %shown(peer), "login refused");
             let e = ApiError::from(d);
+            tracing::warn!(peer = %shown(peer), reason = %e.message, "login refused");
             return Ok(match next {
                 None => e.into_response(),
                 Some(next) => {
@@ -137,8 +144,10 @@ pub async fn login(State(state): State<AppState>, req: Request) -> Result<Respon
     );
     let mut resp = match next {
         Some(next) => (StatusCode::SEE_OTHER, [(header::LOCATION, header_value(&next)?)]).into_response(),
-        None => Json(SessionView { via: Grant::Session.as_str(), expires_at: Some(s.expires), csrf_token: Some(s.csrf) })
-            .into_response(),
+        None => {
+            Json(SessionView { via: Grant::Session.as_str(), expires_at: Some(s.expires), csrf_token: Some(s.csrf) })
+                .into_response()
+        }
     };
     resp.headers_mut().insert(header::SET_COOKIE, header_value(&cookie)?);
     resp.headers_mut().insert(header::CACHE_CONTROL, HeaderValue::from_static("no-store"));
@@ -158,11 +167,8 @@ fn next_path(next: Option<&str>) -> String {
 pub async fn current(State(state): State<AppState>, req: Request) -> Result<Response, ApiError> {
     let grant = req.extensions().get::<Grant>().copied().unwrap_or(Grant::Loopback);
     let s = (grant == Grant::Session).then(|| state.access.session_of(req.headers(), now())).flatten();
-    let view = SessionView {
-        via: grant.as_str(),
-        expires_at: s.as_ref().map(|s| s.expires),
-        csrf_token: s.map(|s| s.csrf),
-    };
+    let view =
+        SessionView { via: grant.as_str(), expires_at: s.as_ref().map(|s| s.expires), csrf_token: s.map(|s| s.csrf) };
     let mut resp = Json(view).into_response();
     resp.headers_mut().insert(header::CACHE_CONTROL, HeaderValue::from_static("no-store"));
     Ok(resp)
@@ -247,7 +253,10 @@ pub async fn get_log_filter(State(state): State<AppState>) -> Result<Response, A
 pub async fn put_log_filter(State(state): State<AppState>, body: axum::body::Bytes) -> Result<Response, ApiError> {
     let control = Arc::clone(log_control(&state)?);
     let set: SetFilter = serde_json::from_slice(&body).map_err(|e| {
-        ApiError::new(ErrorKind::BadRequest, format!("expected JSON {{\"filter\": \"info,lineside=debug\", \"minutes\": 15}}: {e}"))
+        ApiError::new(
+            ErrorKind::BadRequest,
+            format!("expected JSON {{\"filter\": \"info,lineside=debug\", \"minutes\": 15}}: {e}"),
+        )
     })?;
     let minutes = set.minutes.unwrap_or(15);
     if minutes == 0 || minutes > crate::logging::MAX_MINUTES {

@@ -125,10 +125,18 @@ mod tests {
         let doc: serde_json::Value = serde_json::from_str(OPENAPI).expect("openapi.json is JSON");
         assert!(doc["openapi"].as_str().unwrap().starts_with("3."));
         let paths: Vec<&str> = doc["paths"].as_object().unwrap().keys().map(String::as_str).collect();
-        for route in
-            ["/classify/{model}", "/models", "/models/{model}", "/healthz", "/readyz", "/metrics", "/openapi.json",
-             "/login", "/session", "/log-filter"]
-        {
+        for route in [
+            "/classify/{model}",
+            "/models",
+            "/models/{model}",
+            "/healthz",
+            "/readyz",
+            "/metrics",
+            "/openapi.json",
+            "/login",
+            "/session",
+            "/log-filter",
+        ] {
             assert!(paths.contains(&route), "{route} missing from openapi.json");
         }
         let kinds: Vec<&str> =

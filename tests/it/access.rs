@@ -60,6 +60,16 @@ async fn without_an_admin_token_admin_actions_are_for_loopback_peers_only() {
     // A page of another site, opened in a browser on this box, may not use them either.
     let cross = local.delete(server.url("/session")).header("origin", "http://intranet.example").send().await.unwrap();
     expect_error(cross, 403, "forbidden").await;
+    // Its own page is same-origin, over HTTP/1.1 (Host header) and HTTP/2 (no Host header:
+    // the host is the request's :authority, RFC 9113 section 8.3.1).
+    let own = format!("http://{}", server.addr);
+    let h2 = reqwest::Client::builder().local_address(IpAddr::from(LOOPBACK)).http2_prior_knowledge().build().unwrap();
+    for c in [&local, &h2] {
+        let r = c.delete(server.url("/session")).header("origin", &own).send().await.unwrap();
+        assert_eq!(r.status(), 204, "{:?}", r.version());
+        let r = c.delete(server.url("/session")).header("origin", "http://intranet.example").send().await.unwrap();
+        assert_eq!(r.status(), 403, "{:?}", r.version());
+    }
     // Classify stays open to everyone without a client token.
     let r = remote.post(server.url("/classify/washers")).body(frame()).send().await.unwrap();
     assert_eq!(r.status(), 200);
@@ -271,7 +281,10 @@ fn curl(url: &str, extra: &[&str]) -> (i32, String) {
         .arg(url)
         .output()
         .expect("curl (Debian's curl package; .ci/run installs it)");
-    (out.status.code().unwrap_or(-1), format!("{}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr)))
+    (
+        out.status.code().unwrap_or(-1),
+        format!("{}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr)),
+    )
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
@@ -330,7 +343,8 @@ async fn mutual_tls_admits_only_clients_with_a_certificate_from_the_ca() {
     assert!(impostor.get(format!("{https}/readyz")).send().await.is_err());
     // curl (OpenSSL) with and without the camera's certificate.
     let ca_arg = pki.ca.to_str().unwrap();
-    let with = ["--cacert", ca_arg, "--cert", pki.client_cert.to_str().unwrap(), "--key", pki.client_key.to_str().unwrap()];
+    let with =
+        ["--cacert", ca_arg, "--cert", pki.client_cert.to_str().unwrap(), "--key", pki.client_key.to_str().unwrap()];
     let (code, body) = curl(&format!("{https}/readyz"), &with);
     assert_eq!(code, 0, "{body}");
     let (code, body) = curl(&format!("{https}/readyz"), &["--cacert", ca_arg]);

@@ -128,7 +128,12 @@ impl TestServer {
         let shutdown = async move {
             let _ = stop_rx.await;
         };
-        let handle = tokio::spawn(run(config, listener, shutdown, RunOptions { load_gate: Some(gate_rx), wrap_lanes, ..Default::default() }));
+        let handle = tokio::spawn(run(
+            config,
+            listener,
+            shutdown,
+            RunOptions { load_gate: Some(gate_rx), wrap_lanes, ..Default::default() },
+        ));
         TestServer { addr, shutdown: Some(stop_tx), gate: Some(gate_tx), handle }
     }
 
