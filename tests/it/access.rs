@@ -471,3 +471,45 @@ fn sighup_rotates_tokens_and_certificates_and_the_log_never_shows_a_secret() {
     }
     assert!(!log.contains("lineside_session=v1."), "the log shows a session cookie");
 }
+
+/// The login page in a real browser (Debian's Chromium driven by selenium; the script is
+/// tools/browser_login.py): a wrong token shows the reason on the page, the right one lands on
+/// `next`; the page's scripts cannot read the HttpOnly cookie, can read GET /session, and
+/// change state only with the CSRF token. Screenshots are left in the test's folder.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_person_logs_in_from_a_real_browser() {
+    let dir = temp_dir("access-browser");
+    let admin = secret(&dir, "admin.token", ADMIN);
+    let server =
+        TestServer::start(with_server_keys(&[format!("admin_token_file = {:?}", admin.display().to_string())])).await;
+    let base = format!("http://{}", server.addr);
+    let script = crate::util::root().join("tools/browser_login.py");
+    let shots = dir.clone();
+    let out = tokio::task::spawn_blocking(move || {
+        Command::new(crate::util::python())
+            .arg(script)
+            .args([&base, ADMIN, shots.to_str().unwrap()])
+            .output()
+            .expect("run tools/browser_login.py with the venv's python")
+    })
+    .await
+    .unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        out.status.success(),
+        "the browser run failed (chromium and chromium-driver from Debian, selenium from the venv):\n{stderr}"
+    );
+    let seen: serde_json::Value = serde_json::from_slice(&out.stdout).expect("the script prints JSON");
+    assert_eq!(seen["form_title"], "lineside: log in", "{seen}");
+    assert!(seen["after_wrong"].as_str().unwrap().contains("not the admin token"), "{seen}");
+    assert!(seen["landed_on"].as_str().unwrap().ends_with("/models"), "{seen}");
+    assert_eq!(seen["script_sees_cookie"], "", "HttpOnly: the page's scripts must not see the session: {seen}");
+    assert_eq!(seen["get_session"]["status"], 200, "{seen}");
+    assert!(seen["get_session"]["body"].as_str().unwrap().contains("\"via\":\"session\""), "{seen}");
+    assert_eq!(seen["delete_without_csrf"], 403, "{seen}");
+    assert!(seen["login_page_when_logged_in"].as_str().unwrap().contains("Logged in"), "{seen}");
+    assert_eq!(seen["delete_with_csrf"], 204, "{seen}");
+    assert_eq!(seen["after_logout"], 401, "{seen}");
+    assert!(dir.join("login-done.png").exists());
+    server.stop().await.unwrap();
+}
