@@ -17,6 +17,8 @@
 //! | [`model`] | load the ONNX file, check its contract, plan and run it on its engine (engine types stay here) |
 //! | [`preprocess`] | decode, ROI, convert, resize (Pillow's arithmetic), normalise; the bounded decode pool |
 //! | [`batch`] | per-model backlog, inference lanes, pass formation, deadlines at the lane |
+//! | [`decision`] | a label and score become the line's verdict: accept, reject, review, no_part |
+//! | [`retain`] | the frames a person must see, kept off the request path within bounds; their export |
 //! | [`selftest`] | sample images through the serving path at load, against expectations |
 //! | [`served`] | the one loading path every command uses; a served model's lanes |
 //! | [`evaluate`] | labelled frames scored through the serving path; the figures, reports and baseline |
@@ -37,12 +39,14 @@ pub mod batch;
 pub mod bench;
 pub mod cli;
 pub mod config;
+pub mod decision;
 pub mod evaluate;
 pub mod http;
 pub mod logging;
 pub mod metrics;
 pub mod model;
 pub mod preprocess;
+pub mod retain;
 pub mod selftest;
 pub mod served;
 pub mod server;

@@ -52,6 +52,7 @@ fn main() -> ExitCode {
         Command::Evaluate(args) => lineside::cli::evaluate::run(args),
         Command::Preprocess(args) => lineside::cli::preprocess::run(args),
         Command::Bench(args) => lineside::cli::bench::run(args),
+        Command::Retained(args) => lineside::cli::retained::run(args),
     };
     match result {
         Ok(Outcome::Ok) => ExitCode::SUCCESS,

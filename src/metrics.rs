@@ -58,7 +58,29 @@ pub struct Metrics {
     model_info: IntGaugeVec,
     http_requests: IntCounterVec,
     frames_decoded: IntCounterVec,
+    verdicts: IntCounterVec,
+    retained: IntCounterVec,
+    retained_frames: IntGaugeVec,
+    retained_bytes: IntGaugeVec,
     in_flight: prometheus::IntGauge,
+}
+
+/// One model's retained-frame counters (`lineside_retained_frames_total` by outcome) and the
+/// folder's size.
+#[derive(Clone)]
+pub struct RetainMetrics {
+    /// Frames written with their sidecar.
+    pub written: IntCounter,
+    /// Frames not kept: the writer's queue was full.
+    pub queue_full: IntCounter,
+    /// Frames not kept: writing failed (disk full, permissions, folder missing).
+    pub write_failed: IntCounter,
+    /// Old frames removed to keep `max_frames` and `max_bytes`.
+    pub evicted: IntCounter,
+    /// Frames in the folder now.
+    pub frames: IntGauge,
+    /// Bytes in the folder now.
+    pub bytes: IntGauge,
 }
 
 /// One model's handles, cloned into its lanes and handlers.
@@ -92,6 +114,7 @@ pub struct ModelMetrics {
     /// Frames decoded on the decode pool.
     pub decoded_pool: IntCounter,
     request_duration: HistogramVec,
+    verdicts: IntCounterVec,
     model: String,
 }
 
@@ -105,6 +128,11 @@ impl ModelMetrics {
     pub fn observe_prediction(&self, label: &str) {
         self.predictions.with_label_values(&[self.model.as_str(), label]).inc();
     }
+
+    /// Count one answer's verdict.
+    pub fn observe_verdict(&self, verdict: crate::decision::Verdict) {
+        self.verdicts.with_label_values(&[self.model.as_str(), verdict.as_str()]).inc();
+    }
 }
 
 // Metric construction only fails for invalid names or label sets, which are constants here.
@@ -115,6 +143,9 @@ const MODEL_INFO_HELP: &str = "Always 1: the served model's version and engine."
 const HTTP_HELP: &str = "HTTP responses, by matched route and status.";
 const DECODED_HELP: &str = "Frames decoded and preprocessed, by thread: \"http\" (small frames, on the thread that \
      received them) or \"pool\" (the decode pool).";
+const VERDICTS_HELP: &str = "Answers by model and verdict (models with a [models.decision] table).";
+const RETAINED_HELP: &str = "Frames eligible for the retain folder, by outcome: written, queue_full or write_failed \
+     (not kept; the answer is unaffected), and evicted (old frames removed to keep the bounds).";
 const IN_FLIGHT_HELP: &str =
     "Classify requests accepted and not yet answered (read when scraped); shutdown drains them.";
 
@@ -171,6 +202,10 @@ impl Metrics {
             model_info: gauge(&r, "model_info", MODEL_INFO_HELP, &["model", "version", "engine"]),
             http_requests: counter(&r, "http_requests_total", HTTP_HELP, &["route", "status"]),
             frames_decoded: counter(&r, "frames_decoded_total", DECODED_HELP, &["model", "thread"]),
+            verdicts: counter(&r, "verdicts_total", VERDICTS_HELP, &["model", "verdict"]),
+            retained: counter(&r, "retained_frames_total", RETAINED_HELP, &["model", "outcome"]),
+            retained_frames: g("retained_stored_frames", "Frames in the model's retain folder now."),
+            retained_bytes: g("retained_stored_bytes", "Bytes (frames and sidecars) in the model's retain folder now."),
             in_flight: {
                 let gauge = must(prometheus::IntGauge::new("requests_in_flight", IN_FLIGHT_HELP));
                 must(r.register(Box::new(gauge.clone())));
@@ -214,7 +249,28 @@ impl Metrics {
             decoded_inline: self.frames_decoded.with_label_values(&[model, "http"]),
             decoded_pool: self.frames_decoded.with_label_values(&[model, "pool"]),
             request_duration: self.request_duration.clone(),
+            verdicts: self.verdicts.clone(),
             model: model.to_string(),
+        }
+    }
+
+    /// Create a decision-table model's verdict series at zero.
+    pub fn expect_verdicts(&self, model: &str) {
+        for v in crate::decision::Verdict::ALL {
+            let _ = self.verdicts.with_label_values(&[model, v.as_str()]);
+        }
+    }
+
+    /// Handles for one model's retained frames, created at zero.
+    pub fn for_retain(&self, model: &str) -> RetainMetrics {
+        let c = |outcome: &str| self.retained.with_label_values(&[model, outcome]);
+        RetainMetrics {
+            written: c("written"),
+            queue_full: c("queue_full"),
+            write_failed: c("write_failed"),
+            evicted: c("evicted"),
+            frames: self.retained_frames.with_label_values(&[model]),
+            bytes: self.retained_bytes.with_label_values(&[model]),
         }
     }
 

@@ -13,10 +13,12 @@ use anyhow::Context as _;
 
 use crate::batch::{Batcher, BatcherGuard, BatchingConfig, Lanes};
 use crate::config::ModelConfig;
+use crate::decision::DecisionTable;
 use crate::metrics::{Metrics, ModelMetrics};
 use crate::model::report::Report;
 use crate::model::{Model, StateWrap, load};
 use crate::preprocess::Pipeline;
+use crate::retain::Retainer;
 use crate::selftest;
 
 /// How a command wants its models loaded.
@@ -51,6 +53,8 @@ pub struct Loaded {
     pub lanes: usize,
     /// The layer report, when asked for.
     pub report: Option<Report>,
+    /// `[models.decision]` checked against the labels: each label's verdict.
+    pub decision: Option<DecisionTable>,
 }
 
 /// The lanes `lanes = "auto"` gives each of `models` models on `cores` cores, with
@@ -84,7 +88,21 @@ impl Loaded {
             Lanes::Fixed(n) => n,
             Lanes::Auto => share_lanes(cores, opts.models, mc.batching.lane_threads),
         };
-        Ok(Loaded { config: mc.clone(), model: Arc::new(model), pipeline: Arc::new(pipeline), lanes, report })
+        let decision = mc
+            .decision
+            .as_ref()
+            .map(|d| DecisionTable::new(d, &model.labels))
+            .transpose()
+            .map_err(|e| anyhow::anyhow!("model {name:?}: [models.decision]: {e}"))?;
+        if let Some(r) = &mc.retain
+            && let Some(unknown) = r.labels.iter().find(|l| !model.labels.contains(l))
+        {
+            anyhow::bail!(
+                "model {name:?}: [models.retain] labels names {unknown:?}, which is not one of the model's labels {:?}",
+                model.labels
+            );
+        }
+        Ok(Loaded { config: mc.clone(), model: Arc::new(model), pipeline: Arc::new(pipeline), lanes, report, decision })
     }
 
     /// Run the model's self-test samples through its pipeline and engine (`None`: it has none).
@@ -112,7 +130,19 @@ impl Loaded {
         let m = &self.model;
         let mm = metrics.for_model(&m.name, &m.version, m.engine().name(), &m.labels);
         let (batcher, guard) = Batcher::start(Arc::clone(m), &self.config.batching, self.lanes, mm.clone(), wrap)?;
+        if self.decision.is_some() {
+            metrics.expect_verdicts(&m.name);
+        }
+        let retain = match &self.config.retain {
+            None => None,
+            Some(r) => Some(Arc::new(
+                Retainer::start(r.clone(), &m.name, metrics.for_retain(&m.name))
+                    .with_context(|| format!("model {:?}: cannot start the retain writer", m.name))?,
+            )),
+        };
         let served = ServedModel {
+            decision: self.decision,
+            retain,
             model: self.model,
             pipeline: self.pipeline,
             batcher,
@@ -144,6 +174,10 @@ pub struct ServedModel {
     pub lanes: usize,
     /// The self-test's result at load, when the model has one.
     pub selftest: Option<selftest::Outcome>,
+    /// Each label's verdict (`[models.decision]`), when configured.
+    pub decision: Option<DecisionTable>,
+    /// The retained-frame writer (`[models.retain]`), when configured.
+    pub retain: Option<Arc<Retainer>>,
 }
 
 #[cfg(test)]

@@ -7,7 +7,7 @@ use anyhow::{Context as _, bail};
 
 use super::{ConfigArg, Outcome};
 use crate::config::{Config, ModelConfig, Overrides};
-use crate::evaluate::{self, dataset::Dataset, html, report, summary};
+use crate::evaluate::{self, dataset::Dataset, html, report, summary, verdicts};
 use crate::metrics::Metrics;
 use crate::model::EngineKind;
 use crate::served::{LoadOptions, Loaded, ServedModel};
@@ -113,7 +113,9 @@ fn score(args: &EvaluateArgs, set: &Dataset, loaded: Vec<Loaded>) -> anyhow::Res
     let mut models = Vec::new();
     let mut guards = Vec::new();
     let mut room = 2 * cores;
-    for l in loaded {
+    for mut l in loaded {
+        // Evaluation frames are not the line's: nothing is retained, and the folder is not touched.
+        l.config.retain = None;
         room += l.lanes * l.config.batching.batch_cap;
         let (served, guard) = l.start(&metrics, None, None)?;
         models.push(Arc::new(served));
@@ -137,10 +139,15 @@ fn score(args: &EvaluateArgs, set: &Dataset, loaded: Vec<Loaded>) -> anyhow::Res
         version: m.model.version.clone(),
         engine: m.model.engine().name().to_string(),
     };
-    let summary = summary::summarise(&preds[0], &labels[0], evaluate::calibrated(&models[0]));
+    let summarise = |i: usize, m: &ServedModel| {
+        let mut s = summary::summarise(&preds[i], &labels[i], evaluate::calibrated(m));
+        s.verdicts = m.decision.as_ref().map(|d| verdicts::figures(&preds[i], d, m.min_score));
+        s
+    };
+    let summary = summarise(0, &models[0]);
     let against = models.get(1).map(|m| report::Against {
         id: id(m),
-        summary: summary::summarise(&preds[1], &labels[1], evaluate::calibrated(m)),
+        summary: summarise(1, m),
         comparison: summary::compare(&preds[0], &preds[1]),
     });
     drop(guards);

@@ -4,6 +4,7 @@ pub mod bench;
 pub mod check;
 pub mod evaluate;
 pub mod preprocess;
+pub mod retained;
 pub mod serve;
 
 use std::path::PathBuf;
@@ -77,6 +78,8 @@ pub enum Command {
     /// Say whether this box keeps up with the line (its frames per second within its budget
     /// per frame) and with what margin; also throughput and latency sweeps and the engine alone.
     Bench(bench::BenchArgs),
+    /// The frames kept for a person ([models.retain]): export the confirmed ones.
+    Retained(retained::RetainedArgs),
 }
 
 /// Where the config comes from (shared by every subcommand).

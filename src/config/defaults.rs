@@ -46,3 +46,9 @@ pub const IMAGENET_STD: [f32; 3] = [0.229, 0.224, 0.225];
 /// `[server] session_minutes`: a page session (after logging in with the admin token) lasts
 /// an hour; a person reviewing frames logs in again after that.
 pub const SESSION_MINUTES: u64 = 60;
+/// `[models.retain] max_frames`.
+pub const RETAIN_MAX_FRAMES: u64 = 10_000;
+/// `[models.retain] max_bytes` (2 GB).
+pub const RETAIN_MAX_BYTES: u64 = 2_000_000_000;
+/// `[models.retain] queue`: frames waiting for the writer thread.
+pub const RETAIN_QUEUE: u64 = 64;

@@ -24,8 +24,10 @@ use std::time::Duration;
 
 pub use crate::access::AccessConfig;
 pub use crate::batch::{BatchingConfig, Lanes};
+pub use crate::decision::DecisionConfig;
 pub use crate::model::{EngineKind, Layout, Library, ScoresMode, Spec, StackMode};
 pub use crate::preprocess::{Channels, Filter, Orientation, PreprocessConfig, ResizeMode, Roi};
+pub use crate::retain::RetainConfig;
 pub use crate::selftest::SelftestConfig;
 pub use crate::source::Source;
 
@@ -100,6 +102,10 @@ pub struct ModelConfig {
     pub min_score: Option<f32>,
     /// The engine that runs the model (`engine`, default tract).
     pub engine: EngineKind,
+    /// `[models.decision]`: label → verdict lists (checked against the labels at load).
+    pub decision: Option<DecisionConfig>,
+    /// `[models.retain]`: which frames are kept, where, within which bounds.
+    pub retain: Option<RetainConfig>,
     /// The onnxruntime shared library: `[onnxruntime] library`, else the environment
     /// variable `ORT_DYLIB_PATH` (given by the CLI); `None`: the system's `libonnxruntime.so`.
     pub onnxruntime_library: Option<Library>,
@@ -252,6 +258,8 @@ impl ModelConfig {
             min_score: None,
             engine: overrides.engine.unwrap_or(overrides.default_engine),
             onnxruntime_library: overrides.env_library(),
+            decision: None,
+            retain: None,
         }
     }
 

@@ -63,6 +63,32 @@ pub(super) struct RawModel {
     pub(super) scores: ScoresMode,
     pub(super) min_score: Option<f32>,
     pub(super) engine: Option<EngineKind>,
+    pub(super) decision: Option<RawDecision>,
+    pub(super) retain: Option<RawRetain>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawDecision {
+    #[serde(default)]
+    pub(super) accept: Vec<String>,
+    #[serde(default)]
+    pub(super) reject: Vec<String>,
+    #[serde(default)]
+    pub(super) no_part: Vec<String>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub(super) struct RawRetain {
+    pub(super) dir: PathBuf,
+    pub(super) verdicts: Option<Vec<String>>,
+    #[serde(default)]
+    pub(super) labels: Vec<String>,
+    pub(super) sample_other: Option<f64>,
+    pub(super) max_frames: Option<u64>,
+    pub(super) max_bytes: Option<u64>,
+    pub(super) queue: Option<u64>,
 }
 
 pub(super) fn default_scores() -> ScoresMode {

@@ -4,13 +4,15 @@
 use std::path::Path;
 use std::time::Duration;
 
-use super::raw::{RawBatching, RawConfig, RawLanes, RawModel, RawPreprocess, RawServer, RawStack};
+use super::raw::{RawBatching, RawConfig, RawLanes, RawModel, RawPreprocess, RawRetain, RawServer, RawStack};
 use super::{Config, ModelConfig, Overrides, ServerConfig, defaults};
 use crate::access::AccessConfig;
 use crate::access::tls::TlsFiles;
 use crate::batch::{BatchingConfig, Lanes};
+use crate::decision::{DecisionConfig, Verdict};
 use crate::model::{Library, StackMode};
 use crate::preprocess::{Channels, PreprocessConfig, ResizeMode, Roi, short_side_below_crop};
+use crate::retain::RetainConfig;
 use crate::selftest::SelftestConfig;
 use crate::source::Source;
 use std::net::SocketAddr;
@@ -38,7 +40,16 @@ pub(super) fn config(
         if models.iter().any(|o| o.name == m.name) {
             return Err(format!("{ctx}: the name {:?} is used twice", m.name));
         }
-        models.push(model(m, &ctx, resolve, overrides, &onnxruntime_library)?);
+        let m = model(m, &ctx, resolve, overrides, &onnxruntime_library)?;
+        let dir = m.retain.as_ref().map(|r| &r.dir);
+        if let Some(other) = models.iter().find(|o| dir.is_some() && o.retain.as_ref().map(|r| &r.dir) == dir) {
+            return Err(format!(
+                "{ctx}: retain.dir is also model {:?}'s: give each model a folder of its own (eviction and export \
+                 work per folder)",
+                other.name
+            ));
+        }
+        models.push(m);
     }
     Ok(Config { origin: origin.to_string(), server, models })
 }
@@ -178,7 +189,15 @@ fn model(
             Some(SelftestConfig { samples: resolve(&t.samples), tolerance })
         }
     };
+    let decision = m.decision.map(|d| DecisionConfig { accept: d.accept, reject: d.reject, no_part: d.no_part });
+    if let Some(d) = &decision {
+        d.check_lists().map_err(|e| format!("{ctx}: {e}"))?;
+    }
+    let retain =
+        m.retain.map(|r| retain(r, decision.is_some(), resolve)).transpose().map_err(|e| format!("{ctx}: {e}"))?;
     Ok(ModelConfig {
+        decision,
+        retain,
         name: m.name,
         onnx: resolve(&m.onnx),
         labels: Some(resolve(&m.labels)),
@@ -189,6 +208,52 @@ fn model(
         min_score,
         engine,
         onnxruntime_library: onnxruntime_library.clone(),
+    })
+}
+
+/// `[models.retain]`: verdict names known (and a decision table to give them), a share, bounds.
+fn retain(r: RawRetain, has_decision: bool, resolve: &dyn Fn(&Path) -> Source) -> Result<RetainConfig, String> {
+    let names =
+        r.verdicts.unwrap_or_else(|| if has_decision { vec!["review".into(), "reject".into()] } else { Vec::new() });
+    let verdicts = names
+        .iter()
+        .map(|n| {
+            Verdict::parse(n).ok_or_else(|| {
+                format!("retain.verdicts: {n:?} is not a verdict; expected some of \"accept\", \"reject\", \"review\", \"no_part\"")
+            })
+        })
+        .collect::<Result<Vec<_>, _>>()?;
+    if !verdicts.is_empty() && !has_decision {
+        return Err("retain.verdicts needs a [models.decision] table (verdicts come from it); without one, keep \
+                    frames by `labels` and `sample_other`"
+            .into());
+    }
+    let sample_other = r.sample_other.unwrap_or(0.0);
+    if !(0.0..=1.0).contains(&sample_other) {
+        return Err(format!(
+            "retain.sample_other = {sample_other}: expected a share 0 ..= 1 (0.01 = one frame in 100)"
+        ));
+    }
+    let max_frames = r.max_frames.unwrap_or(defaults::RETAIN_MAX_FRAMES);
+    let max_bytes = r.max_bytes.unwrap_or(defaults::RETAIN_MAX_BYTES);
+    let queue = r.queue.unwrap_or(defaults::RETAIN_QUEUE);
+    for (key, v) in [("max_frames", max_frames), ("max_bytes", max_bytes), ("queue", queue)] {
+        if v == 0 {
+            return Err(format!("retain.{key} = 0: expected at least 1"));
+        }
+    }
+    let dir = match resolve(&r.dir) {
+        Source::File(p) => p,
+        _ => r.dir,
+    };
+    Ok(RetainConfig {
+        dir,
+        verdicts,
+        labels: r.labels,
+        sample_other,
+        max_frames: usize::try_from(max_frames).unwrap_or(usize::MAX),
+        max_bytes,
+        queue: usize::try_from(queue.min(1 << 20)).unwrap_or(1 << 20),
     })
 }
 

@@ -48,6 +48,9 @@ pub fn page(doc: &Document, root: &Path) -> String {
         "<figure><figcaption>Threshold trade-off: frames sent to review and error among the rest, by min_score</figcaption>{}</figure></div>",
         threshold_curve(s)
     );
+    if let Some(v) = &s.verdicts {
+        verdict_table(&mut o, v);
+    }
     if let Some(sug) = &doc.suggestion {
         let _ = write!(o, "<p><b>Target error {:.2}%:</b> {}</p>", sug.target_error * 100.0, esc(&sug.statement));
     }
@@ -137,6 +140,35 @@ fn summary_table(o: &mut String, doc: &Document) {
         let _ = write!(o, "<tr><th>classes absent from the set</th><td>{}</td></tr>", esc(&doc.absent.join(", ")));
     }
     let _ = write!(o, "<tr><th>engine</th><td>{}</td></tr></table>", esc(&doc.id.engine));
+}
+
+/// Escapes, overkill and review at the model's min_score, and their trade-off.
+fn verdict_table(o: &mut String, v: &crate::evaluate::verdicts::VerdictFigures) {
+    let share = |p: &crate::evaluate::stats::Proportion| {
+        format!("{} of {} ({:.2}%; 95% CI {:.2}–{:.2}%)", p.k, p.n, p.rate * 100.0, p.low * 100.0, p.high * 100.0)
+    };
+    let at = v.min_score.map_or_else(|| "no min_score".to_owned(), |m| format!("min_score {m:.4}"));
+    let _ = write!(
+        o,
+        "<h2>Line verdicts at {at}</h2><table><tr><th>escapes: defective parts let pass</th><td>{}</td></tr>\
+         <tr><th>overkill: good parts stopped</th><td>{}</td></tr><tr><th>held for review</th><td>{}</td></tr></table>\
+         <table><tr><th>min_score</th><th>escapes</th><th>overkill</th><th>review</th></tr>",
+        share(&v.escapes),
+        share(&v.overkill),
+        share(&v.review)
+    );
+    for t in [50, 60, 70, 80, 90, 95, 99] {
+        let p = &v.thresholds[t];
+        let _ = write!(
+            o,
+            "<tr><td>{:.2}</td><td>{:.2}%</td><td>{:.2}%</td><td>{:.2}%</td></tr>",
+            p.min_score,
+            p.escape_rate * 100.0,
+            p.overkill_rate * 100.0,
+            p.review_rate * 100.0
+        );
+    }
+    let _ = write!(o, "</table>");
 }
 
 fn class_table(o: &mut String, s: &Summary) {

@@ -16,6 +16,7 @@ pub mod html;
 pub mod report;
 pub mod stats;
 pub mod summary;
+pub mod verdicts;
 
 use std::sync::Arc;
 

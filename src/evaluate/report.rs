@@ -81,6 +81,9 @@ pub fn render(doc: &Document) -> String {
     } else {
         figures(&mut o, s);
         trade_off(&mut o, s);
+        if let Some(v) = &s.verdicts {
+            verdict_lines(&mut o, v);
+        }
     }
     if !doc.absent.is_empty() {
         let _ = writeln!(o, "  absent from the set (no frames): {}", doc.absent.join(", "));
@@ -183,6 +186,29 @@ fn trade_off(o: &mut String, s: &Summary) {
             pct(p.review),
             pct(p.residual_error),
             p.kept
+        );
+    }
+}
+
+fn verdict_lines(o: &mut String, v: &crate::evaluate::verdicts::VerdictFigures) {
+    let share = |p: &crate::evaluate::stats::Proportion| {
+        format!("{} of {} ({}, 95% CI {}-{})", p.k, p.n, pct(p.rate), pct(p.low), pct(p.high))
+    };
+    let at = v.min_score.map_or_else(|| "no min_score".to_owned(), |m| format!("min_score {m:.4}"));
+    let _ = writeln!(o, "  line verdicts at {at}:");
+    let _ = writeln!(o, "    escapes (defective parts let pass):  {}", share(&v.escapes));
+    let _ = writeln!(o, "    overkill (good parts stopped):       {}", share(&v.overkill));
+    let _ = writeln!(o, "    held for review:                     {}", share(&v.review));
+    let _ = writeln!(o, "    verdict trade-off (escape rate, overkill rate, review rate):");
+    for t in [50, 60, 70, 80, 90, 95, 99] {
+        let p = &v.thresholds[t];
+        let _ = writeln!(
+            o,
+            "      min_score {:.2}: escapes {:>6}, overkill {:>6}, review {:>6}",
+            p.min_score,
+            pct(p.escape_rate),
+            pct(p.overkill_rate),
+            pct(p.review_rate)
         );
     }
 }

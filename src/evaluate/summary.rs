@@ -151,6 +151,9 @@ pub struct Summary {
     pub reliability: Vec<Bin>,
     /// The threshold trade-off, 0.00 to 1.00 in steps of 0.01.
     pub thresholds: Vec<ThresholdPoint>,
+    /// Escapes, overkill and review in the line's terms (models with a decision table).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub verdicts: Option<super::verdicts::VerdictFigures>,
 }
 
 /// Summarise `preds` for `labels`. `calibrated`: the scores are softmax probabilities (ECE is
@@ -212,6 +215,7 @@ pub fn summarise(preds: &[Prediction], labels: &[String], calibrated: bool) -> S
         ece,
         reliability,
         thresholds: (0..=100).map(|i| threshold_point(&tops, f64::from(i) / 100.0)).collect(),
+        verdicts: None,
     }
 }
 

@@ -23,11 +23,57 @@ use serde::{Deserialize, Serialize};
 use super::error::{ApiError, ErrorKind};
 use super::multipart;
 use super::state::{AppState, ServedModel, find};
+use crate::decision::Verdict;
 use crate::model::top_k;
 use crate::preprocess::pool::CpuPool;
+use crate::retain::{MultipartRef, Reason, Sidecar, TopScore, rfc3339};
 
 /// The request header that may shorten the server's deadline, in milliseconds.
 pub const DEADLINE_HEADER: &str = "x-deadline-ms";
+/// The request header naming the physical part (echoed, and stored with a retained frame).
+pub const PART_ID_HEADER: &str = "x-part-id";
+/// The request header naming the camera that took the frame.
+pub const CAMERA_ID_HEADER: &str = "x-camera-id";
+/// Longest part or camera id.
+pub const MAX_ID_LEN: usize = 64;
+
+/// The part and camera ids a request carries.
+#[derive(Debug, Clone, Default)]
+pub struct Ids {
+    /// `X-Part-Id`.
+    pub part: Option<String>,
+    /// `X-Camera-Id`.
+    pub camera: Option<String>,
+}
+
+/// Read `X-Part-Id` and `X-Camera-Id`: 1 to 64 characters of letters, digits and `-_.:/#`.
+///
+/// # Errors
+/// 400 `bad_request` naming the header and what it may hold.
+pub fn ids(headers: &HeaderMap) -> Result<Ids, ApiError> {
+    let one = |name: &str, shown: &str| -> Result<Option<String>, ApiError> {
+        let Some(v) = headers.get(name) else { return Ok(None) };
+        let ok = v.to_str().ok().filter(|t| {
+            (1..=MAX_ID_LEN).contains(&t.len())
+                && t.bytes().all(|b| b.is_ascii_alphanumeric() || b"-_.:/#".contains(&b))
+        });
+        ok.map(|t| Some(t.to_owned())).ok_or_else(|| {
+            ApiError::new(
+                ErrorKind::BadRequest,
+                format!("{shown}: expected 1 to {MAX_ID_LEN} characters of letters, digits and - _ . : / #"),
+            )
+        })
+    };
+    Ok(Ids { part: one(PART_ID_HEADER, "X-Part-Id")?, camera: one(CAMERA_ID_HEADER, "X-Camera-Id")? })
+}
+
+/// What a frame's retained copy needs to know about its request.
+struct Origin<'a> {
+    request_id: &'a str,
+    ids: &'a Ids,
+    received: std::time::SystemTime,
+    part: Option<(usize, &'a str)>,
+}
 
 /// Query parameters.
 #[derive(Debug, Deserialize)]
@@ -70,6 +116,9 @@ pub struct Classified {
     pub score: f32,
     /// Whether `score >= min_score` (always true without a `min_score`).
     pub confident: bool,
+    /// What the line should do with the part (models with a `[models.decision]` table).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub verdict: Option<Verdict>,
     /// The top K classes, best first.
     pub top: Vec<Ranked>,
     /// Timings.
@@ -83,6 +132,12 @@ pub struct Answer {
     pub model: String,
     /// Model version (SHA-256 prefix of the ONNX file).
     pub version: String,
+    /// `X-Part-Id`, echoed.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub part_id: Option<String>,
+    /// `X-Camera-Id`, echoed.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub camera_id: Option<String>,
     /// The classification.
     #[serde(flatten)]
     pub result: Classified,
@@ -119,6 +174,12 @@ pub struct MultiAnswer {
     pub model: String,
     /// Model version.
     pub version: String,
+    /// `X-Part-Id`, echoed (it applies to every part).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub part_id: Option<String>,
+    /// `X-Camera-Id`, echoed.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub camera_id: Option<String>,
     /// One entry per part.
     pub results: Vec<PartResult>,
 }
@@ -162,10 +223,13 @@ pub async fn classify(
     State(state): State<AppState>,
     Path(name): Path<String>,
     headers: HeaderMap,
+    request_id: Option<axum::Extension<super::RequestId>>,
     params: Result<Query<Params>, QueryRejection>,
     body: Body,
 ) -> Result<Response, ApiError> {
     let arrived = Instant::now();
+    let received = std::time::SystemTime::now();
+    let request_id = request_id.map(|axum::Extension(id)| id.0).unwrap_or_default();
     let served = state.readiness.borrow().served(false);
     let served = match served {
         Ok(s) => s,
@@ -179,14 +243,17 @@ pub async fn classify(
     let _in_flight = state.in_flight.enter();
     let result = match deadline(&headers, state.limits.deadline, arrived) {
         Err(e) => Err(refuse(&state, body, e).await),
-        Ok(until) => tokio::time::timeout_at(until.into(), answer(&state, m, &headers, params, body, arrived, until))
-            .await
-            .unwrap_or_else(|_| {
-                Err(ApiError::new(
-                    ErrorKind::Deadline,
-                    format!("the request's deadline of {} ms passed before it was answered", ms(until - arrived)),
-                ))
-            }),
+        Ok(until) => tokio::time::timeout_at(
+            until.into(),
+            answer(&state, m, &headers, params, body, (arrived, until), (&request_id, received)),
+        )
+        .await
+        .unwrap_or_else(|_| {
+            Err(ApiError::new(
+                ErrorKind::Deadline,
+                format!("the request's deadline of {} ms passed before it was answered", ms(until - arrived)),
+            ))
+        }),
     };
     let outcome = match &result {
         Ok(_) => "ok",
@@ -227,18 +294,35 @@ async fn answer(
     headers: &HeaderMap,
     params: Result<Query<Params>, QueryRejection>,
     body: Body,
-    arrived: Instant,
-    until: Instant,
+    (arrived, until): (Instant, Instant),
+    (request_id, received): (&str, std::time::SystemTime),
 ) -> Result<Response, ApiError> {
     // The body first, whatever else is wrong, so that the connection stays usable.
     let body = read_body(state, body).await?;
     let Query(params) = params.map_err(|e| ApiError::new(ErrorKind::BadRequest, e.body_text()))?;
     let top = parse_top(params.top.as_deref(), m.model.labels.len())?;
+    let ids = ids(headers)?;
+    let ids = &ids;
     let content_type = headers.get(axum::http::header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
     let multipart = multipart::boundary(content_type);
     let Some(boundary) = multipart else {
-        let result = classify_one(state, m, body, top, arrived, until, true).await?;
-        let answer = Answer { model: m.model.name.clone(), version: m.model.version.clone(), result };
+        let result = classify_one(
+            state,
+            m,
+            body,
+            top,
+            (arrived, until),
+            true,
+            &Origin { request_id, ids, received, part: None },
+        )
+        .await?;
+        let answer = Answer {
+            model: m.model.name.clone(),
+            version: m.model.version.clone(),
+            part_id: ids.part.clone(),
+            camera_id: ids.camera.clone(),
+            result,
+        };
         return Ok(Json(answer).into_response());
     };
     let boundary = boundary.map_err(|e| ApiError::new(ErrorKind::BadRequest, e))?;
@@ -248,7 +332,8 @@ async fn answer(
     // there instead of one after another on the HTTP thread), and joins the backlog at once;
     // answers keep part order.
     let jobs = parts.into_iter().enumerate().map(|(index, part)| async move {
-        let outcome = classify_one(state, m, part.data, top, arrived, until, false).await;
+        let origin = Origin { request_id, ids, received, part: Some((index, part.name.as_str())) };
+        let outcome = classify_one(state, m, part.data.clone(), top, (arrived, until), false, &origin).await;
         let (result, error) = match outcome {
             Ok(c) => (Some(c), None),
             Err(e) => (None, Some(PartError { kind: e.kind.as_str(), message: e.message })),
@@ -256,7 +341,14 @@ async fn answer(
         PartResult { index, part: part.name, result, error }
     });
     let results = futures_util::future::join_all(jobs).await;
-    Ok(Json(MultiAnswer { model: m.model.name.clone(), version: m.model.version.clone(), results }).into_response())
+    let answer = MultiAnswer {
+        model: m.model.name.clone(),
+        version: m.model.version.clone(),
+        part_id: ids.part.clone(),
+        camera_id: ids.camera.clone(),
+        results,
+    };
+    Ok(Json(answer).into_response())
 }
 
 async fn classify_one(
@@ -264,10 +356,12 @@ async fn classify_one(
     m: &ServedModel,
     image: Bytes,
     top: usize,
-    arrived: Instant,
-    until: Instant,
+    (arrived, until): (Instant, Instant),
     may_decode_here: bool,
+    origin: &Origin<'_>,
 ) -> Result<Classified, ApiError> {
+    // The bytes as received, for the retain folder (a reference count, not a copy).
+    let original = m.retain.as_ref().map(|_| image.clone());
     // A single frame's header is read here, once (under the same panic guard as a decode): a
     // frame the limits refuse never takes a decode thread, and its size decides where it is
     // decoded. A small one is decoded here: handing it to a pool thread and back would cost
@@ -303,10 +397,15 @@ async fn classify_one(
     if !confident {
         m.metrics.low_confidence.inc();
     }
-    Ok(Classified {
+    let verdict = m.decision.as_ref().map(|d| d.verdict(best, score, m.min_score));
+    if let Some(v) = verdict {
+        m.metrics.observe_verdict(v);
+    }
+    let classified = Classified {
         label: labels[best].clone(),
         score,
         confident,
+        verdict,
         top: order.into_iter().map(|i| Ranked { label: labels[i].clone(), score: scored.scores[i] }).collect(),
         timing_ms: Timing {
             decode: ms(decode),
@@ -315,7 +414,38 @@ async fn classify_one(
             infer: ms(scored.infer),
             total: ms(arrived.elapsed()),
         },
-    })
+    };
+    if let (Some(retainer), Some(frame)) = (&m.retain, original)
+        && let Some(reason) = retainer.wants(verdict, &classified.label)
+    {
+        retainer.offer(frame, sidecar(m, &classified, &scored.scores, reason, origin));
+    }
+    Ok(classified)
+}
+
+/// The sidecar of a frame about to be retained.
+fn sidecar(m: &ServedModel, c: &Classified, scores: &[f32], reason: Reason, origin: &Origin<'_>) -> Sidecar {
+    let labels = &m.model.labels;
+    Sidecar {
+        format: crate::retain::FORMAT.into(),
+        format_version: 1,
+        frame: String::new(),
+        bytes: 0,
+        request_id: origin.request_id.to_owned(),
+        part_id: origin.ids.part.clone(),
+        camera_id: origin.ids.camera.clone(),
+        multipart: origin.part.map(|(index, name)| MultipartRef { index, name: name.to_owned() }),
+        received_at: rfc3339(origin.received.duration_since(std::time::UNIX_EPOCH).unwrap_or_default()),
+        model: m.model.name.clone(),
+        version: m.model.version.clone(),
+        label: c.label.clone(),
+        score: c.score,
+        top: top_k(scores, 5).into_iter().map(|i| TopScore { label: labels[i].clone(), score: scores[i] }).collect(),
+        verdict: c.verdict,
+        kept_because: reason,
+        timing_ms: serde_json::to_value(&c.timing_ms).unwrap_or_default(),
+        confirmed: None,
+    }
 }
 
 #[cfg(test)]

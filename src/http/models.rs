@@ -9,6 +9,8 @@ use axum::Json;
 use axum::extract::{Path, State};
 use serde::{Deserialize, Serialize};
 
+use crate::decision::Verdict;
+
 use super::error::ApiError;
 use super::state::{AppState, ServedModel, find};
 use crate::model::{InputType, Layout, ScoreTransform, Stacking};
@@ -46,6 +48,29 @@ pub struct ModelInfo {
     pub batching: BatchingInfo,
     /// The self-test's result at load.
     pub selftest: Option<Outcome>,
+    /// Each label's verdict (`[models.decision]`), when configured.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub decision: Option<std::collections::BTreeMap<String, Verdict>>,
+    /// Which frames are kept, where (`[models.retain]`), when configured.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub retain: Option<RetainInfo>,
+}
+
+/// `[models.retain]` as served.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RetainInfo {
+    /// The folder.
+    pub dir: String,
+    /// Verdicts kept.
+    pub verdicts: Vec<Verdict>,
+    /// Labels kept whatever the verdict.
+    pub labels: Vec<String>,
+    /// Share of other frames kept.
+    pub sample_other: f64,
+    /// Most frames kept.
+    pub max_frames: usize,
+    /// Most bytes kept.
+    pub max_bytes: u64,
 }
 
 /// The image input of [`ModelInfo`].
@@ -131,6 +156,20 @@ impl ModelInfo {
                 lane_threads: b.lane_threads,
             },
             selftest: m.selftest.clone(),
+            decision: m.decision.as_ref().map(|d| {
+                m.model.labels.iter().enumerate().filter_map(|(i, l)| Some((l.clone(), d.of_label(i)?))).collect()
+            }),
+            retain: m.retain.as_ref().map(|r| {
+                let c = r.config();
+                RetainInfo {
+                    dir: c.dir.display().to_string(),
+                    verdicts: c.verdicts.clone(),
+                    labels: c.labels.clone(),
+                    sample_other: c.sample_other,
+                    max_frames: c.max_frames,
+                    max_bytes: c.max_bytes,
+                }
+            }),
         }
     }
 }

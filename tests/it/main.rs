@@ -11,6 +11,7 @@ mod access;
 mod bench;
 mod check;
 mod cli;
+mod decisions;
 mod evaluate;
 mod fault;
 mod load;
