@@ -147,17 +147,19 @@ fn verdict_table(o: &mut String, v: &crate::evaluate::verdicts::VerdictFigures) 
     let share = |p: &crate::evaluate::stats::Proportion| {
         format!("{} of {} ({:.2}%; 95% CI {:.2}–{:.2}%)", p.k, p.n, p.rate * 100.0, p.low * 100.0, p.high * 100.0)
     };
-    let at = v.min_score.map_or_else(|| "no min_score".to_owned(), |m| format!("min_score {m:.4}"));
+    let at = v
+        .min_score
+        .map_or_else(|| "min_score not set: nothing goes to review".to_owned(), |m| format!("at min_score {m:.4}"));
     let _ = write!(
         o,
-        "<h2>Line verdicts at {at}</h2><table><tr><th>escapes: defective parts let pass</th><td>{}</td></tr>\
+        "<h2>Line verdicts ({at})</h2><table><tr><th>escapes: defective parts let pass</th><td>{}</td></tr>\
          <tr><th>overkill: good parts stopped</th><td>{}</td></tr><tr><th>held for review</th><td>{}</td></tr></table>\
          <table><tr><th>min_score</th><th>escapes</th><th>overkill</th><th>review</th></tr>",
         share(&v.escapes),
         share(&v.overkill),
         share(&v.review)
     );
-    for t in [50, 60, 70, 80, 90, 95, 99] {
+    for t in super::report::SHOWN_THRESHOLDS {
         let p = &v.thresholds[t];
         let _ = write!(
             o,

@@ -175,9 +175,12 @@ fn figures(o: &mut String, s: &Summary) {
     }
 }
 
+/// The trade-off rows the text and the page show (hundredths of min_score).
+pub(crate) const SHOWN_THRESHOLDS: [usize; 7] = [50, 60, 70, 80, 90, 95, 99];
+
 fn trade_off(o: &mut String, s: &Summary) {
     let _ = writeln!(o, "  threshold trade-off (top score below min_score goes to review):");
-    for t in [50, 60, 70, 80, 90, 95, 99] {
+    for t in SHOWN_THRESHOLDS {
         let p = &s.thresholds[t];
         let _ = writeln!(
             o,
@@ -194,13 +197,15 @@ fn verdict_lines(o: &mut String, v: &crate::evaluate::verdicts::VerdictFigures) 
     let share = |p: &crate::evaluate::stats::Proportion| {
         format!("{} of {} ({}, 95% CI {}-{})", p.k, p.n, pct(p.rate), pct(p.low), pct(p.high))
     };
-    let at = v.min_score.map_or_else(|| "no min_score".to_owned(), |m| format!("min_score {m:.4}"));
-    let _ = writeln!(o, "  line verdicts at {at}:");
+    let at = v
+        .min_score
+        .map_or_else(|| "min_score not set: nothing goes to review".to_owned(), |m| format!("at min_score {m:.4}"));
+    let _ = writeln!(o, "  line verdicts ({at}):");
     let _ = writeln!(o, "    escapes (defective parts let pass):  {}", share(&v.escapes));
     let _ = writeln!(o, "    overkill (good parts stopped):       {}", share(&v.overkill));
     let _ = writeln!(o, "    held for review:                     {}", share(&v.review));
     let _ = writeln!(o, "    verdict trade-off (escape rate, overkill rate, review rate):");
-    for t in [50, 60, 70, 80, 90, 95, 99] {
+    for t in SHOWN_THRESHOLDS {
         let p = &v.thresholds[t];
         let _ = writeln!(
             o,

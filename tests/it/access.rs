@@ -367,12 +367,10 @@ fn sighup_rotates_tokens_and_certificates_and_the_log_never_shows_a_secret() {
     std::fs::copy(&old.server_cert, &cert).unwrap();
     std::fs::copy(&old.server_key, &key).unwrap();
     let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
-    let config = std::fs::read_to_string(crate::util::root().join("config/lineside.toml")).unwrap().replace(
+    let config = crate::util::washer_text_anywhere().replace(
         "[server]\n",
         "[server]\nadmin_token_file = \"admin.token\"\nclient_token_file = \"client.token\"\ntls_cert = \"server.pem\"\ntls_key = \"server.key\"\n",
     );
-    let models = crate::util::root().join("models");
-    let config = config.replace("../models/", &format!("{}/", models.display()));
     std::fs::write(dir.join("lineside.toml"), config).unwrap();
     let mut child = Command::new(env!("CARGO_BIN_EXE_lineside"))
         .args(["--log-level", "debug", "serve", "--config", "lineside.toml", "--listen", &format!("127.0.0.1:{port}")])

@@ -1,7 +1,6 @@
 //! The `lineside` binary as a user runs it: exit codes, messages, serving from any folder.
 
-use std::process::{Command, Stdio};
-use std::time::Duration;
+use std::process::Command;
 
 use crate::util::{root, samples, temp_dir};
 
@@ -58,28 +57,13 @@ fn check_exits_1_for_an_unservable_model_and_2_for_a_bad_config() {
 #[test]
 fn serve_from_any_folder_answers_and_exits_0_on_sigterm() {
     let dir = temp_dir("serve");
-    let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
-    let mut child = lineside()
-        .args(["serve", "--listen", &format!("127.0.0.1:{port}")])
-        .current_dir(&dir)
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped())
-        .spawn()
-        .unwrap();
+    let (child, port) = crate::util::serve_child(&dir, &["serve"]);
     let base = format!("http://127.0.0.1:{port}");
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
     rt.block_on(async {
-        let c = reqwest::Client::new();
-        for _ in 0..600 {
-            if let Ok(r) = c.get(format!("{base}/readyz")).send().await
-                && r.status() == 200
-            {
-                break;
-            }
-            tokio::time::sleep(Duration::from_millis(100)).await;
-        }
+        crate::util::wait_ready_at(&base).await;
         let s = &samples()[0];
-        let v: serde_json::Value = c
+        let v: serde_json::Value = reqwest::Client::new()
             .post(format!("{base}/classify/washers"))
             .body(s.bytes.clone())
             .send()
@@ -90,11 +74,7 @@ fn serve_from_any_folder_answers_and_exits_0_on_sigterm() {
             .unwrap();
         assert_eq!(v["label"], s.label.as_str(), "{v}");
     });
-    let killed = Command::new("kill").args(["-TERM", &child.id().to_string()]).status().unwrap();
-    assert!(killed.success());
-    let status = child.wait().unwrap();
-    let mut log = String::new();
-    std::io::Read::read_to_string(child.stderr.as_mut().unwrap(), &mut log).unwrap();
-    assert_eq!(status.code(), Some(0), "{log}");
+    let (code, log) = crate::util::stop_child(child);
+    assert_eq!(code, Some(0), "{log}");
     assert!(log.contains("shutting down"), "{log}");
 }

@@ -4,7 +4,7 @@
 
 use std::collections::HashMap;
 use std::path::Path;
-use std::process::{Command, Stdio};
+use std::process::Command;
 use std::time::Duration;
 
 use crate::util::{
@@ -289,33 +289,18 @@ async fn under_load_the_newest_frames_are_kept_and_every_frame_is_accounted_for(
 fn an_unwritable_retain_folder_loses_frames_not_answers() {
     let dir = temp_dir("retain-unwritable");
     std::fs::write(dir.join("a-file"), "not a folder").unwrap();
-    let models = crate::util::root().join("models");
-    let text = std::fs::read_to_string(crate::util::root().join("config/lineside.toml"))
-        .unwrap()
-        .replace("../models/", &format!("{}/", models.display()));
+    let text = crate::util::washer_text_anywhere();
     std::fs::write(
         dir.join("lineside.toml"),
         format!("{text}\n[models.retain]\ndir = \"a-file/retained\"\nverdicts = [\"reject\"]\n"),
     )
     .unwrap();
-    let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
-    let mut child = Command::new(env!("CARGO_BIN_EXE_lineside"))
-        .args(["serve", "--config", "lineside.toml", "--listen", &format!("127.0.0.1:{port}")])
-        .current_dir(&dir)
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped())
-        .spawn()
-        .unwrap();
+    let (child, port) = crate::util::serve_child(&dir, &["serve", "--config", "lineside.toml"]);
     let base = format!("http://127.0.0.1:{port}");
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
     let failed = rt.block_on(async {
         let c = reqwest::Client::new();
-        for _ in 0..600 {
-            if c.get(format!("{base}/readyz")).send().await.is_ok_and(|r| r.status() == 200) {
-                break;
-            }
-            tokio::time::sleep(Duration::from_millis(100)).await;
-        }
+        crate::util::wait_ready_at(&base).await;
         let burr = samples().into_iter().find(|s| s.label == "burr").unwrap();
         for _ in 0..20 {
             let r = c.post(format!("{base}/classify/washers")).body(burr.bytes.clone()).send().await.unwrap();
@@ -333,11 +318,8 @@ fn an_unwritable_retain_folder_loses_frames_not_answers() {
         }
         failed
     });
-    assert!(Command::new("kill").args(["-TERM", &child.id().to_string()]).status().unwrap().success());
-    let status = child.wait().unwrap();
-    let mut log = String::new();
-    std::io::Read::read_to_string(child.stderr.as_mut().unwrap(), &mut log).unwrap();
-    assert_eq!(status.code(), Some(0), "{log}");
+    let (code, log) = crate::util::stop_child(child);
+    assert_eq!(code, Some(0), "{log}");
     assert_eq!(failed, 20.0, "every eligible frame counted as not written");
     assert!(log.contains("cannot use the retain folder") && log.contains("a-file/retained"), "{log}");
     let lines = log.lines().filter(|l| l.contains("could not be written")).count();
@@ -378,9 +360,7 @@ async fn confirmed_frames_export_into_a_set_evaluate_reads() {
         v["confirmed"] = confirmed.into();
         std::fs::write(p, serde_json::to_vec_pretty(&v).unwrap()).unwrap();
     }
-    let text = std::fs::read_to_string(crate::util::root().join("config/lineside.toml"))
-        .unwrap()
-        .replace("../models/", &format!("{}/", crate::util::root().join("models").display()));
+    let text = crate::util::washer_text_anywhere();
     let config = dir.join("lineside.toml");
     std::fs::write(&config, format!("{text}\n[models.retain]\ndir = \"retained\"\nlabels = [\"burr\"]\n")).unwrap();
     let out = dir.join("set");

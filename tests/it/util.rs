@@ -400,3 +400,50 @@ impl TestApp {
         self.send("GET", path, Vec::new()).await
     }
 }
+
+/// The documented washer config's text with its model paths made absolute, for a config file
+/// written into a test's own folder.
+pub(crate) fn washer_text_anywhere() -> String {
+    std::fs::read_to_string(root().join("config/lineside.toml"))
+        .unwrap()
+        .replace("../models/", &format!("{}/", root().join("models").display()))
+}
+
+/// `lineside serve` as a child process in `dir` with `args`, on a free loopback port, its
+/// stderr piped (the caller reads the log); returns it and the port.
+pub(crate) fn serve_child(dir: &Path, args: &[&str]) -> (std::process::Child, u16) {
+    let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
+    let child = std::process::Command::new(env!("CARGO_BIN_EXE_lineside"))
+        .args(args)
+        .args(["--listen", &format!("127.0.0.1:{port}")])
+        .current_dir(dir)
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    (child, port)
+}
+
+/// Poll `base`/readyz until 200 (bounded at 60 s: a server that never gets ready fails the
+/// test at its next request instead of hanging it).
+pub(crate) async fn wait_ready_at(base: &str) {
+    let c = reqwest::Client::new();
+    for _ in 0..600 {
+        if c.get(format!("{base}/readyz")).send().await.is_ok_and(|r| r.status() == 200) {
+            return;
+        }
+        tokio::time::sleep(Duration::from_millis(100)).await;
+    }
+}
+
+/// SIGTERM `child`, wait for it, and return its exit code and its whole stderr.
+pub(crate) fn stop_child(mut child: std::process::Child) -> (Option<i32>, String) {
+    let killed = std::process::Command::new("kill").args(["-TERM", &child.id().to_string()]).status().unwrap();
+    assert!(killed.success());
+    let status = child.wait().unwrap();
+    let mut log = String::new();
+    if let Some(e) = child.stderr.as_mut() {
+        std::io::Read::read_to_string(e, &mut log).unwrap();
+    }
+    (status.code(), log)
+}
