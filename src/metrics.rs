@@ -60,6 +60,7 @@ pub struct Metrics {
     frames_decoded: IntCounterVec,
     verdicts: IntCounterVec,
     retained: IntCounterVec,
+    retained_evicted: IntCounterVec,
     retained_frames: IntGaugeVec,
     retained_bytes: IntGaugeVec,
     in_flight: prometheus::IntGauge,
@@ -75,7 +76,9 @@ pub struct RetainMetrics {
     pub queue_full: IntCounter,
     /// Frames not kept: writing failed (disk full, permissions, folder missing).
     pub write_failed: IntCounter,
-    /// Old frames removed to keep `max_frames` and `max_bytes`.
+    /// Frames not kept: the writer thread is gone (a fault; the log says why).
+    pub writer_stopped: IntCounter,
+    /// Old frames removed to keep `max_frames` and `max_bytes` (`lineside_retained_evicted_total`).
     pub evicted: IntCounter,
     /// Frames in the folder now.
     pub frames: IntGauge,
@@ -144,8 +147,8 @@ const HTTP_HELP: &str = "HTTP responses, by matched route and status.";
 const DECODED_HELP: &str = "Frames decoded and preprocessed, by thread: \"http\" (small frames, on the thread that \
      received them) or \"pool\" (the decode pool).";
 const VERDICTS_HELP: &str = "Answers by model and verdict (models with a [models.decision] table).";
-const RETAINED_HELP: &str = "Frames eligible for the retain folder, by outcome: written, queue_full or write_failed \
-     (not kept; the answer is unaffected), and evicted (old frames removed to keep the bounds).";
+const RETAINED_HELP: &str = "Frames eligible for the retain folder, by outcome: written, or not kept (the answer is \
+     unaffected): queue_full, write_failed, writer_stopped.";
 const IN_FLIGHT_HELP: &str =
     "Classify requests accepted and not yet answered (read when scraped); shutdown drains them.";
 
@@ -204,6 +207,10 @@ impl Metrics {
             frames_decoded: counter(&r, "frames_decoded_total", DECODED_HELP, &["model", "thread"]),
             verdicts: counter(&r, "verdicts_total", VERDICTS_HELP, &["model", "verdict"]),
             retained: counter(&r, "retained_frames_total", RETAINED_HELP, &["model", "outcome"]),
+            retained_evicted: c(
+                "retained_evicted_total",
+                "Old retained frames removed to keep max_frames and max_bytes.",
+            ),
             retained_frames: g("retained_stored_frames", "Frames in the model's retain folder now."),
             retained_bytes: g("retained_stored_bytes", "Bytes (frames and sidecars) in the model's retain folder now."),
             in_flight: {
@@ -268,7 +275,8 @@ impl Metrics {
             written: c("written"),
             queue_full: c("queue_full"),
             write_failed: c("write_failed"),
-            evicted: c("evicted"),
+            writer_stopped: c("writer_stopped"),
+            evicted: self.retained_evicted.with_label_values(&[model]),
             frames: self.retained_frames.with_label_values(&[model]),
             bytes: self.retained_bytes.with_label_values(&[model]),
         }

@@ -308,7 +308,28 @@ fn loopback_only(headers: &HeaderMap, peer: Option<IpAddr>) -> Result<Grant, Den
     if cross_site(headers) {
         return Err(Denied::Forbidden("a page of another site may not use admin actions".into()));
     }
+    // A page served under another name that resolves to 127.0.0.1 (DNS rebinding) is
+    // same-origin to itself: only requests addressed to this box by a loopback name pass.
+    if let Some(host) = headers.get(header::HOST) {
+        let host = host.to_str().unwrap_or("");
+        if !loopback_host(host) {
+            return Err(Denied::Forbidden(format!(
+                "admin actions without an admin token must be addressed to 127.0.0.1, [::1] or localhost, not {host:?}"
+            )));
+        }
+    }
     Ok(Grant::Loopback)
+}
+
+/// Whether a `Host` value names this box's loopback (with or without a port).
+fn loopback_host(host: &str) -> bool {
+    let name = match host.strip_prefix('[') {
+        Some(rest) => rest.split(']').next().unwrap_or(""),
+        None => {
+            host.rsplit_once(':').filter(|(_, port)| port.bytes().all(|b| b.is_ascii_digit())).map_or(host, |(h, _)| h)
+        }
+    };
+    name == "127.0.0.1" || name == "::1" || name.eq_ignore_ascii_case("localhost")
 }
 
 /// A browser's request started by a page of another origin.

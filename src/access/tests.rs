@@ -77,6 +77,13 @@ fn without_an_admin_token_other_sites_pages_are_refused_even_on_loopback() {
     assert!(forbidden(a.admin(&null, &post, LOCAL, NOW)));
     let fetch = headers(&[("sec-fetch-site", "cross-site")]);
     assert!(forbidden(a.admin(&fetch, &post, LOCAL, NOW)));
+    // DNS rebinding: another site's name pointed at 127.0.0.1 is same-origin to itself.
+    let rebound = headers(&[("host", "evil.example:8080"), ("origin", "http://evil.example:8080")]);
+    assert!(forbidden(a.admin(&rebound, &post, LOCAL, NOW)));
+    for host in ["127.0.0.1", "127.0.0.1:8080", "localhost:8080", "LOCALHOST", "[::1]:8080", "[::1]"] {
+        assert_eq!(a.admin(&headers(&[("host", host)]), &post, LOCAL, NOW), Ok(Grant::Loopback), "{host}");
+    }
+    assert!(forbidden(a.admin(&headers(&[("host", "127.0.0.1.evil.example")]), &post, LOCAL, NOW)));
 }
 
 #[test]

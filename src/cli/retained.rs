@@ -50,7 +50,13 @@ pub fn run(args: RetainedArgs) -> anyhow::Result<Outcome> {
     let Some(retain) = &mc.retain else {
         anyhow::bail!("model {:?} in {} has no [models.retain] table: nothing is retained", mc.name, config.origin);
     };
-    let summary = crate::retain::export::export(&retain.dir, &args.out).map_err(anyhow::Error::msg)?;
+    // The model's labels, so that a mistyped confirmation is not exported as a new class.
+    let labels = match &mc.labels {
+        Some(src) => Some(crate::model::labels::parse(&src.read()?, &src.display()).map_err(anyhow::Error::msg)?),
+        None => None,
+    };
+    let summary =
+        crate::retain::export::export(&retain.dir, &args.out, labels.as_deref()).map_err(anyhow::Error::msg)?;
     if args.json {
         println!("{}", serde_json::to_string_pretty(&summary)?);
         return Ok(Outcome::Ok);
@@ -69,6 +75,9 @@ pub fn run(args: RetainedArgs) -> anyhow::Result<Outcome> {
     println!("{} frame(s) wait for a person to confirm their label", summary.unconfirmed);
     if summary.bad_label > 0 {
         println!("{} confirmed with a label that cannot be a folder name (skipped)", summary.bad_label);
+    }
+    for (label, n) in &summary.unknown_label {
+        println!("{n} confirmed as {label:?}, which is not one of the model's labels (skipped: correct the sidecar)");
     }
     if summary.unreadable > 0 {
         println!("{} sidecar(s) unreadable or without their frame (skipped)", summary.unreadable);

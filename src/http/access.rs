@@ -108,8 +108,11 @@ pub async fn login(State(state): State<AppState>, req: Request) -> Result<Respon
         .get(header::CONTENT_TYPE)
         .and_then(|v| v.to_str().ok())
         .is_some_and(|v| v.starts_with("application/json"));
-    let body = axum::body::to_bytes(req.into_body(), 4096)
+    let body = tokio::time::timeout(state.limits.body_timeout, axum::body::to_bytes(req.into_body(), 4096))
         .await
+        .map_err(|_| {
+            ApiError::new(ErrorKind::BodyTimeout, "the login body did not arrive within server.body_timeout_ms")
+        })?
         .map_err(|_| ApiError::new(ErrorKind::BadRequest, "the login body must be under 4 kB"))?;
     let (token, next) = if json {
         let login: Login = serde_json::from_slice(&body)
@@ -135,7 +138,7 @@ pub async fn login(State(state): State<AppState>, req: Request) -> Result<Respon
         }
     };
     tracing::info!(peer = %shown(peer), expires_at = s.expires, "logged in");
-    let max_age = s.expires.saturating_sub(now());
+    let max_age = state.access.session_length().as_secs();
     let cookie = format!(
         "{}={}; Path=/; HttpOnly; SameSite=Strict; Max-Age={max_age}{}",
         session::COOKIE,
@@ -158,7 +161,17 @@ pub async fn login(State(state): State<AppState>, req: Request) -> Result<Respon
 /// login page (never another site: `//host` and schemes are refused).
 fn next_path(next: Option<&str>) -> String {
     match next {
-        Some(p) if p.starts_with('/') && !p.starts_with("//") && !p.contains('\\') && p.len() <= 512 => p.to_owned(),
+        // Visible ASCII only: browsers drop tabs and newlines from URLs, so "/\t/host" would
+        // become "//host", another site.
+        Some(p)
+            if p.starts_with('/')
+                && !p.starts_with("//")
+                && !p.contains('\\')
+                && p.len() <= 512
+                && p.bytes().all(|b| b.is_ascii_graphic()) =>
+        {
+            p.to_owned()
+        }
         _ => "/login".to_owned(),
     }
 }
@@ -325,7 +338,9 @@ mod tests {
     #[test]
     fn only_paths_of_this_server_are_followed_after_login() {
         assert_eq!(next_path(Some("/review?x=1")), "/review?x=1");
-        for outside in ["//evil.example/", "https://evil.example/", "/\\evil.example", "review", ""] {
+        for outside in
+            ["//evil.example/", "https://evil.example/", "/\\evil.example", "review", "", "/\t/evil.example", "/\n/x"]
+        {
             assert_eq!(next_path(Some(outside)), "/login", "{outside}");
         }
         assert_eq!(next_path(None), "/login");

@@ -360,7 +360,9 @@ async fn classify_one(
     may_decode_here: bool,
     origin: &Origin<'_>,
 ) -> Result<Classified, ApiError> {
-    // The bytes as received, for the retain folder (a reference count, not a copy).
+    // The bytes as received, for the retain folder: a reference count, not a copy, for a
+    // single frame; a multipart part is copied when kept, so that a queued frame does not hold
+    // the whole request body.
     let original = m.retain.as_ref().map(|_| image.clone());
     // A single frame's header is read here, once (under the same panic guard as a decode): a
     // frame the limits refuse never takes a decode thread, and its size decides where it is
@@ -418,6 +420,7 @@ async fn classify_one(
     if let (Some(retainer), Some(frame)) = (&m.retain, original)
         && let Some(reason) = retainer.wants(verdict, &classified.label)
     {
+        let frame = if origin.part.is_some() { Bytes::copy_from_slice(&frame) } else { frame };
         retainer.offer(frame, sidecar(m, &classified, &scored.scores, reason, origin));
     }
     Ok(classified)

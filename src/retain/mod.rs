@@ -128,7 +128,13 @@ pub struct Retainer {
     metrics: RetainMetrics,
     throttle: std::sync::Arc<Throttle>,
     random: AtomicU64,
+    /// Bytes of frames waiting for the writer (bounded by [`QUEUE_BYTES`] besides `queue`).
+    queued_bytes: std::sync::Arc<AtomicU64>,
 }
+
+/// Most bytes of frames waiting for the writer, whatever `queue` allows: 64 frames of the
+/// largest body would otherwise hold 64 x `body_limit_bytes`.
+pub const QUEUE_BYTES: u64 = 64 << 20;
 
 impl std::fmt::Debug for Retainer {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
@@ -146,12 +152,25 @@ impl Retainer {
     pub fn start(config: RetainConfig, model: &str, metrics: RetainMetrics) -> std::io::Result<Retainer> {
         let (tx, rx) = crossbeam_channel::bounded::<Job>(config.queue);
         let throttle = std::sync::Arc::new(Throttle::default());
-        let writer = Writer { config: config.clone(), metrics: metrics.clone(), throttle: throttle.clone() };
+        let queued_bytes = std::sync::Arc::new(AtomicU64::new(0));
+        let writer = Writer {
+            config: config.clone(),
+            metrics: metrics.clone(),
+            throttle: throttle.clone(),
+            queued_bytes: queued_bytes.clone(),
+        };
         let name = format!("lineside-retain-{model}");
         std::thread::Builder::new().name(name.chars().take(15).collect()).spawn(move || writer.run(&rx))?;
         let mut seed = [0u8; 8];
         let _ = getrandom::fill(&mut seed);
-        Ok(Retainer { config, tx, metrics, throttle, random: AtomicU64::new(u64::from_le_bytes(seed) | 1) })
+        Ok(Retainer {
+            config,
+            tx,
+            metrics,
+            throttle,
+            random: AtomicU64::new(u64::from_le_bytes(seed) | 1),
+            queued_bytes,
+        })
     }
 
     /// The settings.
@@ -181,22 +200,40 @@ impl Retainer {
         (x.wrapping_mul(0x2545_f491_4f6c_dd1d) >> 11) as f64 / (1u64 << 53) as f64
     }
 
-    /// Hand a frame to the writer without waiting: when its queue is full, the frame is not
-    /// kept (counted, and logged at most once a minute).
+    /// Hand a frame to the writer without waiting: when its queue is full (in frames or in
+    /// bytes), the frame is not kept (counted, and logged at most once a minute).
     pub fn offer(&self, frame: Bytes, sidecar: Sidecar) {
         let extension = extension_of(&frame);
-        if let Err(crossbeam_channel::TrySendError::Full(_) | crossbeam_channel::TrySendError::Disconnected(_)) =
-            self.tx.try_send(Job { frame, sidecar, extension })
-        {
-            self.metrics.queue_full.inc();
-            self.throttle.warn("queue", || {
-                tracing::warn!(
-                    dir = %self.config.dir.display(),
-                    queue = self.config.queue,
-                    "retain queue full: frames are not being kept (the disk is slower than the line); answers are unaffected"
-                );
-            });
+        let len = frame.len() as u64;
+        if self.queued_bytes.fetch_add(len, Ordering::SeqCst) + len > QUEUE_BYTES {
+            self.queued_bytes.fetch_sub(len, Ordering::SeqCst);
+            return self.queue_full();
         }
+        match self.tx.try_send(Job { frame, sidecar, extension }) {
+            Ok(()) => {}
+            Err(crossbeam_channel::TrySendError::Full(_)) => {
+                self.queued_bytes.fetch_sub(len, Ordering::SeqCst);
+                self.queue_full();
+            }
+            Err(crossbeam_channel::TrySendError::Disconnected(_)) => {
+                self.queued_bytes.fetch_sub(len, Ordering::SeqCst);
+                self.metrics.writer_stopped.inc();
+                self.throttle.warn("stopped", || {
+                    tracing::error!(dir = %self.config.dir.display(), "the retain writer has stopped: frames are not being kept");
+                });
+            }
+        }
+    }
+
+    fn queue_full(&self) {
+        self.metrics.queue_full.inc();
+        self.throttle.warn("queue", || {
+            tracing::warn!(
+                dir = %self.config.dir.display(),
+                queue = self.config.queue,
+                "retain queue full: frames are not being kept (the disk is slower than the line); answers are unaffected"
+            );
+        });
     }
 }
 
@@ -238,16 +275,23 @@ struct Writer {
     config: RetainConfig,
     metrics: RetainMetrics,
     throttle: std::sync::Arc<Throttle>,
+    queued_bytes: std::sync::Arc<AtomicU64>,
 }
 
 impl Writer {
+    /// Open the folder, applying the bounds to what is there (counted as evicted).
+    fn open(&self) -> std::io::Result<store::Store> {
+        let s = store::Store::open(&self.config.dir, self.config.max_frames, self.config.max_bytes)?;
+        self.metrics.evicted.inc_by(s.evicted_at_open() as u64);
+        self.metrics.frames.set(s.frames() as i64);
+        self.metrics.bytes.set(s.bytes() as i64);
+        Ok(s)
+    }
+
     fn run(self, rx: &crossbeam_channel::Receiver<Job>) {
-        let mut store = match store::Store::open(&self.config.dir, self.config.max_frames, self.config.max_bytes) {
+        let mut store = match self.open() {
             Ok(s) => {
                 tracing::info!(dir = %self.config.dir.display(), frames = s.frames(), bytes = s.bytes(), "retained frames found");
-                self.metrics.evicted.inc_by(s.evicted_at_open() as u64);
-                self.metrics.frames.set(s.frames() as i64);
-                self.metrics.bytes.set(s.bytes() as i64);
                 Some(s)
             }
             Err(e) => {
@@ -256,10 +300,11 @@ impl Writer {
             }
         };
         for job in rx {
+            self.queued_bytes.fetch_sub(job.frame.len() as u64, Ordering::SeqCst);
             // A folder that failed at start is tried again with each frame (it may have been
             // mounted or fixed since).
             if store.is_none() {
-                store = store::Store::open(&self.config.dir, self.config.max_frames, self.config.max_bytes).ok();
+                store = self.open().ok();
             }
             let result = match store.as_mut() {
                 Some(s) => s.write(&job.frame, job.sidecar, job.extension),

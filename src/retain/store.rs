@@ -192,21 +192,34 @@ fn remove_if_present(path: &Path) {
 /// # Errors
 /// The folder cannot be listed.
 pub fn read_all(dir: &Path) -> std::io::Result<(Vec<(PathBuf, Sidecar)>, usize)> {
-    let mut stems: Vec<String> = std::fs::read_dir(dir)?
-        .filter_map(Result::ok)
-        .filter_map(|e| e.file_name().to_str().and_then(|n| n.strip_suffix(".json")).map(str::to_owned))
-        .filter(|s| is_our_stem(s))
-        .collect();
+    // Frame names come from the folder's listing, never from the sidecar (which a person
+    // edits): a sidecar cannot point outside the folder.
+    let (mut stems, mut frames) = (Vec::new(), std::collections::HashMap::new());
+    for entry in std::fs::read_dir(dir)?.filter_map(Result::ok) {
+        let Some(name) = entry.file_name().to_str().map(str::to_owned) else { continue };
+        let Some((stem, ext)) = name.rsplit_once('.') else { continue };
+        if !is_our_stem(stem) {
+            continue;
+        }
+        if ext == "json" {
+            stems.push(stem.to_owned());
+        } else if entry.file_type().is_ok_and(|t| t.is_file()) {
+            frames.insert(stem.to_owned(), name);
+        }
+    }
     stems.sort();
     let (mut records, mut unreadable) = (Vec::new(), 0);
     for stem in stems {
         let parsed = std::fs::read(dir.join(format!("{stem}.json")))
             .ok()
             .and_then(|b| serde_json::from_slice::<Sidecar>(&b).ok())
-            .filter(|s| s.format == super::FORMAT && dir.join(&s.frame).is_file());
-        match parsed {
-            Some(s) => records.push((dir.join(&s.frame), s)),
-            None => unreadable += 1,
+            .filter(|s| s.format == super::FORMAT);
+        match (parsed, frames.remove(&stem)) {
+            (Some(mut s), Some(frame)) => {
+                s.frame = frame;
+                records.push((dir.join(&s.frame), s));
+            }
+            _ => unreadable += 1,
         }
     }
     Ok((records, unreadable))
@@ -286,6 +299,21 @@ pub(crate) mod tests {
         assert_eq!(Store::open(&d, 10, 1_000_000).unwrap().frames(), 0);
         assert_eq!(read_all(&d).unwrap(), (Vec::new(), 1));
         assert!(!lone_frame.exists(), "a frame cut off from its sidecar by a crash is removed");
+    }
+
+    #[test]
+    fn a_sidecar_cannot_point_outside_the_folder() {
+        let d = dir("escape");
+        let mut s = Store::open(&d, 10, 1_000_000).unwrap();
+        s.write(b"\x89PNG....", sidecar("good"), "png").unwrap();
+        let (records, _) = read_all(&d).unwrap();
+        let json = records[0].0.with_extension("json");
+        let mut side: Sidecar = serde_json::from_slice(&std::fs::read(&json).unwrap()).unwrap();
+        side.frame = "../../etc/passwd".into();
+        std::fs::write(&json, serde_json::to_vec(&side).unwrap()).unwrap();
+        let (records, _) = read_all(&d).unwrap();
+        assert_eq!(records[0].0, d.join(records[0].1.frame.as_str()));
+        assert!(is_our_stem(records[0].1.frame.split('.').next().unwrap()), "{}", records[0].1.frame);
     }
 
     #[test]

@@ -327,7 +327,7 @@ async fn mutual_tls_admits_only_clients_with_a_certificate_from_the_ca() {
     let started = std::time::Instant::now();
     let e = https_client(&pki, false).get(format!("{https}/readyz")).send().await.unwrap_err();
     assert!(!e.is_timeout(), "{e:?}");
-    assert!(started.elapsed() < Duration::from_secs(20));
+    assert!(started.elapsed() < Duration::from_secs(5), "refused promptly, not after a timeout");
     // A certificate from another CA: refused too.
     let mut pem = std::fs::read(&other.client_cert).unwrap();
     pem.extend(std::fs::read(&other.client_key).unwrap());
@@ -442,16 +442,16 @@ fn sighup_rotates_tokens_and_certificates_and_the_log_never_shows_a_secret() {
         // A bad rotation (an emptied file) keeps the token in force.
         std::fs::write(&admin, "").unwrap();
         hup();
-        let r = fresh.get(format!("{base}/session")).bearer_auth(new_token).send().await.unwrap();
-        assert_eq!(r.status(), 200);
-        // The failed rotation is logged (the signal is handled apart from requests: wait for
-        // its line, bounded).
+        // The signal is handled apart from requests: wait for the failed re-read's log line
+        // (bounded), then check that the token in force did not change.
         for _ in 0..300 {
             if log.lock().unwrap().contains("previous token stays") {
                 break;
             }
             tokio::time::sleep(Duration::from_millis(100)).await;
         }
+        let r = fresh.get(format!("{base}/session")).bearer_auth(new_token).send().await.unwrap();
+        assert_eq!(r.status(), 200);
     });
     assert!(Command::new("kill").args(["-TERM", &child.id().to_string()]).status().unwrap().success());
     let status = child.wait().unwrap();

@@ -90,6 +90,7 @@ async fn every_label_takes_its_verdict_and_low_scores_go_to_review() {
         .await;
     let v = r.json();
     assert_eq!((v["part_id"].as_str(), v["camera_id"].as_str()), (Some("W-000123"), Some("cam-2")), "{v}");
+    assert_eq!(v["results"].as_array().unwrap().len(), singles.len(), "one result per part");
     for (part, single) in v["results"].as_array().unwrap().iter().zip(&singles) {
         assert_eq!(part["verdict"], single["verdict"], "{part} vs {single}");
     }
@@ -175,7 +176,7 @@ async fn settled(server: &TestServer, eligible: f64) -> HashMap<String, f64> {
     let c = reqwest::Client::new();
     for _ in 0..600 {
         let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
-        let done: f64 = ["written", "queue_full", "write_failed"]
+        let done: f64 = ["written", "queue_full", "write_failed", "writer_stopped"]
             .iter()
             .map(|o| metric(&m, &format!(r#"lineside_retained_frames_total{{model="washers",outcome="{o}"}}"#)))
             .sum();
@@ -224,10 +225,10 @@ async fn under_load_the_newest_frames_are_kept_and_every_frame_is_accounted_for(
     assert!(eligible > 100.0, "more eligible frames than max_frames: {eligible}");
     let m = settled(&server, eligible).await;
     let count = |o: &str| metric(&m, &format!(r#"lineside_retained_frames_total{{model="washers",outcome="{o}"}}"#));
-    let (written, dropped) = (count("written"), count("queue_full") + count("write_failed"));
+    let (written, dropped) = (count("written"), count("queue_full") + count("write_failed") + count("writer_stopped"));
     assert_eq!(written + dropped, eligible, "written + dropped = eligible");
     assert!(written >= 100.0, "at least max_frames written: {written}");
-    assert_eq!(count("evicted"), written - 100.0);
+    assert_eq!(metric(&m, r#"lineside_retained_evicted_total{model="washers"}"#), written - 100.0);
     assert_eq!(metric(&m, r#"lineside_retained_stored_frames{model="washers"}"#), 100.0);
     // The folder: 100 frames with valid sidecars whose bytes are the frame sent for that part.
     let by_part: HashMap<&str, &str> = answers.iter().map(|(p, n, _)| (p.as_str(), n.as_str())).collect();
@@ -261,24 +262,24 @@ async fn under_load_the_newest_frames_are_kept_and_every_frame_is_accounted_for(
     let mut stems_sorted = stems.clone();
     stems_sorted.sort();
     let server = TestServer::start(retaining(&retained, "verdicts = [\"reject\"]\nmax_frames = 10")).await;
+    // Nothing is sent: the writer applies the new bound to what it finds when it starts.
     let c = reqwest::Client::new();
+    let mut m = HashMap::new();
     for _ in 0..600 {
-        let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
-        if metric(&m, r#"lineside_retained_stored_frames{model="washers"}"#) == 10.0 {
+        m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
+        if metric(&m, r#"lineside_retained_evicted_total{model="washers"}"#) == 90.0 {
             break;
         }
-        // The gauge is set after the first write: send one rejected frame.
-        let burr = all.iter().find(|s| s.label == "burr").unwrap();
-        c.post(server.url("/classify/washers")).body(burr.bytes.clone()).send().await.unwrap();
         tokio::time::sleep(Duration::from_millis(50)).await;
     }
-    let left: Vec<String> = std::fs::read_dir(&retained)
+    assert_eq!(metric(&m, r#"lineside_retained_evicted_total{model="washers"}"#), 90.0);
+    assert_eq!(metric(&m, r#"lineside_retained_stored_frames{model="washers"}"#), 10.0);
+    let mut left: Vec<String> = std::fs::read_dir(&retained)
         .unwrap()
         .filter_map(|e| e.unwrap().file_name().to_str()?.strip_suffix(".json").map(str::to_owned))
         .collect();
-    assert_eq!(left.len(), 10);
-    let oldest_left = left.iter().min().unwrap();
-    assert!(stems_sorted[..stems_sorted.len() - 10].iter().all(|s| s < oldest_left), "the oldest went first");
+    left.sort();
+    assert_eq!(left, stems_sorted[90..], "the ten newest stay");
     server.stop().await.unwrap();
 }
 
