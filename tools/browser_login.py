@@ -15,6 +15,17 @@ import sys
 from selenium import webdriver
 from selenium.webdriver.chrome.service import Service
 from selenium.webdriver.common.by import By
+from selenium.webdriver.support import expected_conditions
+from selenium.webdriver.support.ui import WebDriverWait
+
+
+def submit(driver):
+    """Click the form's button and wait (up to 30 s) until the browser has left the page
+    (the old button goes stale): reading the next page before that races the navigation."""
+    button = driver.find_element(By.CSS_SELECTOR, "button[type=submit]")
+    button.click()
+    WebDriverWait(driver, 30).until(expected_conditions.staleness_of(button))
+    WebDriverWait(driver, 30).until(lambda d: d.execute_script("return document.readyState") == "complete")
 
 
 def main():
@@ -33,11 +44,11 @@ def main():
         seen["form_title"] = driver.title
         driver.save_screenshot(f"{shots}/login.png")
         driver.find_element(By.ID, "token").send_keys("not-the-token-0000000")
-        driver.find_element(By.CSS_SELECTOR, "button[type=submit]").click()
+        submit(driver)
         seen["after_wrong"] = driver.find_element(By.TAG_NAME, "main").text
         driver.save_screenshot(f"{shots}/login-wrong.png")
         driver.find_element(By.ID, "token").send_keys(token)
-        driver.find_element(By.CSS_SELECTOR, "button[type=submit]").click()
+        submit(driver)
         seen["landed_on"] = driver.current_url
         seen["script_sees_cookie"] = driver.execute_script("return document.cookie")
         fetch = """
