@@ -19,6 +19,7 @@
 //! | [`batch`] | per-model backlog, inference lanes, pass formation, deadlines at the lane |
 //! | [`decision`] | a label and score become the line's verdict: accept, reject, review, no_part |
 //! | [`retain`] | the frames a person must see, kept off the request path within bounds; their export |
+//! | [`reload`] | a model's new version loaded, checked and self-tested beside the serving one, swapped in |
 //! | [`selftest`] | sample images through the serving path at load, against expectations |
 //! | [`served`] | the one loading path every command uses; a served model's lanes |
 //! | [`evaluate`] | labelled frames scored through the serving path; the figures, reports and baseline |
@@ -46,6 +47,7 @@ pub mod logging;
 pub mod metrics;
 pub mod model;
 pub mod preprocess;
+pub mod reload;
 pub mod retain;
 pub mod selftest;
 pub mod served;

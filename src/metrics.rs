@@ -59,6 +59,7 @@ pub struct Metrics {
     http_requests: IntCounterVec,
     frames_decoded: IntCounterVec,
     verdicts: IntCounterVec,
+    reloads: IntCounterVec,
     retained: IntCounterVec,
     retained_evicted: IntCounterVec,
     retained_frames: IntGaugeVec,
@@ -206,6 +207,7 @@ impl Metrics {
             http_requests: counter(&r, "http_requests_total", HTTP_HELP, &["route", "status"]),
             frames_decoded: counter(&r, "frames_decoded_total", DECODED_HELP, &["model", "thread"]),
             verdicts: counter(&r, "verdicts_total", VERDICTS_HELP, &["model", "verdict"]),
+            reloads: counter(&r, "reloads_total", "Model reloads, by model and outcome (ok, failed).", &["model", "outcome"]),
             retained: counter(&r, "retained_frames_total", RETAINED_HELP, &["model", "outcome"]),
             retained_evicted: c(
                 "retained_evicted_total",
@@ -239,6 +241,22 @@ impl Metrics {
         for label in labels {
             let _ = self.predictions.with_label_values(&[model, label.as_str()]);
         }
+        // One version a model: a reloaded model's previous version series goes.
+        let stale: Vec<Vec<String>> = self
+            .model_info
+            .collect()
+            .iter()
+            .flat_map(|f| f.get_metric())
+            .map(|m| m.get_label().iter().map(|l| l.value().to_owned()).collect::<Vec<String>>())
+            .filter(|labels| labels.first().map(String::as_str) == Some(model))
+            .collect();
+        for labels in stale {
+            let refs: Vec<&str> = labels.iter().map(String::as_str).collect();
+            let _ = self.model_info.remove_label_values(&refs);
+        }
+        for outcome in ["ok", "failed"] {
+            let _ = self.reloads.with_label_values(&[model, outcome]);
+        }
         self.model_info.with_label_values(&[model, version, engine]).set(1);
         ModelMetrics {
             backlog_depth: self.backlog_depth.with_label_values(&[model]),
@@ -259,6 +277,11 @@ impl Metrics {
             verdicts: self.verdicts.clone(),
             model: model.to_string(),
         }
+    }
+
+    /// Count one reload of `model` that ended `outcome` (`ok` or `failed`).
+    pub fn count_reload(&self, model: &str, outcome: &str) {
+        self.reloads.with_label_values(&[model, outcome]).inc();
     }
 
     /// Create a decision-table model's verdict series at zero.

@@ -28,6 +28,7 @@ use crate::config::Config;
 use crate::http::access::Transport;
 use crate::http::state::{AppState, InFlight, Readiness, RequestIds, RequestLimits, Served};
 use crate::logging::LogControl;
+use crate::reload::Reloader;
 use crate::metrics::Metrics;
 use crate::model::StateWrap;
 use crate::preprocess::pool::CpuPool;
@@ -44,6 +45,9 @@ pub struct RunOptions {
     pub wrap_lanes: Option<StateWrap>,
     /// The running logger's filter, for `PUT /log-filter` (the CLI passes it).
     pub log: Option<Arc<LogControl>>,
+    /// The command line's overrides, applied again when a reload reads the config file
+    /// (`None`: the environment's defaults, as `lineside` without flags).
+    pub overrides: Option<crate::config::Overrides>,
 }
 
 /// Serve `config` on `listener` until `shutdown` resolves, then drain.
@@ -69,7 +73,14 @@ pub async fn run(
     warn_about_access(&access, &listener);
     let metrics = Metrics::new();
     let (ready_tx, ready_rx) = watch::channel(Readiness::Loading("waiting to start".into()));
-    let state = app_state(&config, ready_rx, metrics.clone(), Arc::clone(&access), options.log.clone())?;
+    let overrides = match options.overrides.clone() {
+        Some(o) => o,
+        None => crate::cli::base_overrides()?,
+    };
+    let reloader =
+        Arc::new(Reloader::new(ready_tx.clone(), &config, overrides, metrics.clone(), options.wrap_lanes.clone()));
+    let mut state = app_state(&config, ready_rx, metrics.clone(), Arc::clone(&access), options.log.clone())?;
+    state.reloader = Some(Arc::clone(&reloader));
     let in_flight = Arc::clone(&state.in_flight);
     let app = crate::http::router(state);
     let mut loaded_rx = spawn_loader(config.clone(), ready_tx.clone(), metrics, options);
@@ -113,7 +124,8 @@ pub async fn run(
         "listening"
     );
 
-    let Ended { served, guards, failure } = serve_until(&listener, &accept, &mut loaded_rx, &ready_tx, shutdown).await;
+    let Ended { served, failure } =
+        serve_until(&listener, &accept, &mut loaded_rx, &ready_tx, &reloader, shutdown).await;
 
     // Drain: not ready at once, new classify requests refused with `draining`, the listener
     // still open, until every accepted request is answered or drain_ms passes.
@@ -123,7 +135,7 @@ pub async fn run(
     }
     // Stops the lanes; anything still queued is answered `draining`. Give those answers a
     // moment to be written before the connections close.
-    drop(guards);
+    reloader.stop_all();
     let tail = tokio::time::Instant::now() + ANSWER_TAIL;
     while in_flight.count() > 0 && tokio::time::Instant::now() < tail {
         tokio::time::sleep(POLL).await;
@@ -146,8 +158,6 @@ pub async fn run(
 struct Ended {
     /// The models, if they loaded.
     served: Option<Arc<Served>>,
-    /// Their lanes' guards.
-    guards: Vec<BatcherGuard>,
     /// A failed load ends serving at once.
     failure: Option<anyhow::Error>,
 }
@@ -158,9 +168,10 @@ async fn serve_until(
     accept: &impl Fn(tokio::net::TcpStream, SocketAddr),
     loaded_rx: &mut oneshot::Receiver<anyhow::Result<Loaded>>,
     ready_tx: &watch::Sender<Readiness>,
+    reloader: &Reloader,
     shutdown: impl Future<Output = ()>,
 ) -> Ended {
-    let mut ended = Ended { served: None, guards: Vec::new(), failure: None };
+    let mut ended = Ended { served: None, failure: None };
     let mut load_pending = true;
     tokio::pin!(shutdown);
     loop {
@@ -174,7 +185,7 @@ async fn serve_until(
                 match loaded.unwrap_or_else(|_| Err(anyhow::anyhow!("model loader vanished"))) {
                     Ok(loaded) => {
                         ended.served = Some(loaded.served.clone());
-                        ended.guards = loaded.guards;
+                        reloader.adopt(loaded.guards);
                         announce(ready_tx, loaded.served, &loaded.selftest_failures);
                     }
                     Err(e) => {
@@ -241,6 +252,7 @@ fn app_state(
         request_ids: Arc::new(RequestIds::new()),
         access,
         log,
+        reloader: None,
     })
 }
 
@@ -406,7 +418,7 @@ pub fn ready_app(config: &Config, wrap: Option<&StateWrap>) -> anyhow::Result<(a
         Arc::new(Access::load(config.server.access.clone()).map_err(anyhow::Error::msg)?),
         None,
     )?;
-    Ok((crate::http::router(state), loaded.guards))
+    Ok((crate::http::router(state), loaded.guards.into_iter().map(|(_, g)| g).collect()))
 }
 
 /// How often the drain looks at the in-flight count.
@@ -423,7 +435,7 @@ async fn backoff(e: std::io::Error) {
 /// What the loader hands the server.
 struct Loaded {
     served: Arc<Served>,
-    guards: Vec<BatcherGuard>,
+    guards: Vec<(String, BatcherGuard)>,
     selftest_failures: Vec<String>,
 }
 
@@ -449,8 +461,8 @@ fn load_all(config: &Config, metrics: &Metrics, wrap: Option<&StateWrap>) -> any
             selftest_failures.extend(outcome.failures.iter().map(|f| format!("model {:?}: {f}", mc.name)));
         }
         let (entry, guard) = loaded.start(metrics, wrap, selftest)?;
-        guards.push(guard);
-        served.insert(mc.name.clone(), entry);
+        guards.push((mc.name.clone(), guard));
+        served.insert(mc.name.clone(), Arc::new(entry));
     }
     Ok(Loaded { served: Arc::new(served), guards, selftest_failures })
 }

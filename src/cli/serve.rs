@@ -62,16 +62,14 @@ impl BatchingArgs {
 /// # Errors
 /// Config errors, a port that cannot be bound, a model that fails to load.
 pub fn run(args: ServeArgs, log: Option<std::sync::Arc<crate::logging::LogControl>>) -> anyhow::Result<Outcome> {
-    let config = Config::load(
-        args.config.config.as_deref(),
-        &Overrides {
-            listen: args.listen,
-            batching: args.batching.overrides(),
-            engine: args.engine,
-            http_threads: args.http_threads,
-            ..super::base_overrides()?
-        },
-    )?;
+    let overrides = Overrides {
+        listen: args.listen,
+        batching: args.batching.overrides(),
+        engine: args.engine,
+        http_threads: args.http_threads,
+        ..super::base_overrides()?
+    };
+    let config = Config::load(args.config.config.as_deref(), &overrides)?;
     // One HTTP thread by default: on a small box the lanes own the cores, and every extra
     // async worker is one more thread to wake per request (docs/performance.md).
     let runtime = tokio::runtime::Builder::new_multi_thread()
@@ -84,7 +82,7 @@ pub fn run(args: ServeArgs, log: Option<std::sync::Arc<crate::logging::LogContro
         let addr = config.server.listen;
         let listener = tokio::net::TcpListener::bind(addr).await.with_context(|| format!("cannot listen on {addr}"))?;
         tracing::info!(config = %config.origin, "starting");
-        let options = crate::server::RunOptions { log, ..Default::default() };
+        let options = crate::server::RunOptions { log, overrides: Some(overrides), ..Default::default() };
         crate::server::run(config, listener, crate::shutdown::signal(), options).await
     })?;
     Ok(Outcome::Ok)

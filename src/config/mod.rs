@@ -39,6 +39,8 @@ pub const BUILTIN_NAME: &str = "<built-in washer config>";
 pub struct Config {
     /// Where the config was read from (a path, or [`BUILTIN_NAME`]).
     pub origin: String,
+    /// The file it was read from (`None`: the built-in config); reloads read it again.
+    pub path: Option<PathBuf>,
     /// Server-wide settings.
     pub server: ServerConfig,
     /// The models to serve, in config order; names are unique.
@@ -104,6 +106,8 @@ pub struct ModelConfig {
     pub engine: EngineKind,
     /// `[models.decision]`: label → verdict lists (checked against the labels at load).
     pub decision: Option<DecisionConfig>,
+    /// `sha256`: the ONNX file's digest it must have (lowercase hex); another is refused.
+    pub sha256: Option<String>,
     /// `[models.retain]`: which frames are kept, where, within which bounds.
     pub retain: Option<RetainConfig>,
     /// The onnxruntime shared library: `[onnxruntime] library`, else the environment
@@ -174,7 +178,9 @@ impl Config {
         let text = std::fs::read_to_string(path).with_context(|| format!("cannot read config {}", path.display()))?;
         let base = path.parent().unwrap_or(Path::new("."));
         let origin = path.display().to_string();
-        Self::from_toml(&text, &origin, &|p| Source::File(base.join(p)), overrides)
+        let mut config = Self::from_toml(&text, &origin, &|p| Source::File(base.join(p)), overrides)?;
+        config.path = Some(path.to_path_buf());
+        Ok(config)
     }
 
     /// The built-in washer config, with its files embedded.
@@ -260,6 +266,7 @@ impl ModelConfig {
             onnxruntime_library: overrides.env_library(),
             decision: None,
             retain: None,
+            sha256: None,
         }
     }
 
@@ -274,6 +281,7 @@ impl ModelConfig {
             onnxruntime_library: self.onnxruntime_library.clone(),
             stack: self.batching.stack,
             batch_cap: self.batching.batch_cap,
+            sha256: self.sha256.clone(),
         }
     }
 }

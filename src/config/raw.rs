@@ -64,6 +64,7 @@ pub(super) struct RawModel {
     pub(super) min_score: Option<f32>,
     pub(super) engine: Option<EngineKind>,
     pub(super) decision: Option<RawDecision>,
+    pub(super) sha256: Option<String>,
     pub(super) retain: Option<RawRetain>,
 }
 

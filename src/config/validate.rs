@@ -51,7 +51,7 @@ pub(super) fn config(
         }
         models.push(m);
     }
-    Ok(Config { origin: origin.to_string(), server, models })
+    Ok(Config { origin: origin.to_string(), path: None, server, models })
 }
 
 /// `[server]`, with the command line's overrides.
@@ -195,7 +195,17 @@ fn model(
     }
     let retain =
         m.retain.map(|r| retain(r, decision.is_some(), resolve)).transpose().map_err(|e| format!("{ctx}: {e}"))?;
+    let sha256 = match m.sha256 {
+        Some(h) if h.len() == 64 && h.bytes().all(|b| b.is_ascii_hexdigit()) => Some(h.to_ascii_lowercase()),
+        Some(h) => {
+            return Err(format!(
+                "{ctx}: sha256 = {h:?}: expected the 64 hex digits of the ONNX file's SHA-256 (`sha256sum model.onnx`)"
+            ));
+        }
+        None => None,
+    };
     Ok(ModelConfig {
+        sha256,
         decision,
         retain,
         name: m.name,

@@ -53,6 +53,10 @@ pub enum ErrorKind {
     Unauthorized,
     /// Wrong credentials, or a peer that may not do this at all.
     Forbidden,
+    /// A reload of this model is already running (`POST /models/{model}/reload`).
+    Busy,
+    /// The new version failed to load, check or self-test; the old one still serves.
+    ReloadFailed,
     /// A fault inside lineside (details in the server log).
     Internal,
 }
@@ -78,6 +82,8 @@ impl ErrorKind {
         ErrorKind::Stalled,
         ErrorKind::Unauthorized,
         ErrorKind::Forbidden,
+        ErrorKind::Busy,
+        ErrorKind::ReloadFailed,
         ErrorKind::Internal,
     ];
 
@@ -98,6 +104,8 @@ impl ErrorKind {
             ErrorKind::MethodNotAllowed => StatusCode::METHOD_NOT_ALLOWED,
             ErrorKind::Unauthorized => StatusCode::UNAUTHORIZED,
             ErrorKind::Forbidden => StatusCode::FORBIDDEN,
+            ErrorKind::Busy => StatusCode::CONFLICT,
+            ErrorKind::ReloadFailed => StatusCode::UNPROCESSABLE_ENTITY,
             ErrorKind::Internal => StatusCode::INTERNAL_SERVER_ERROR,
         }
     }
@@ -123,6 +131,8 @@ impl ErrorKind {
             ErrorKind::Stalled => "stalled",
             ErrorKind::Unauthorized => "unauthorized",
             ErrorKind::Forbidden => "forbidden",
+            ErrorKind::Busy => "busy",
+            ErrorKind::ReloadFailed => "reload_failed",
             ErrorKind::Internal => "internal",
         }
     }
@@ -208,6 +218,19 @@ impl From<crate::access::Denied> for ApiError {
     }
 }
 
+impl From<crate::reload::ReloadError> for ApiError {
+    fn from(e: crate::reload::ReloadError) -> Self {
+        use crate::reload::ReloadError as R;
+        let kind = match &e {
+            R::Busy(_) => ErrorKind::Busy,
+            R::Unknown(_) => ErrorKind::UnknownModel,
+            R::NotServing(_) => ErrorKind::NotReady,
+            R::Failed(_) => ErrorKind::ReloadFailed,
+        };
+        ApiError::new(kind, e.to_string())
+    }
+}
+
 impl From<PreprocessError> for ApiError {
     fn from(e: PreprocessError) -> Self {
         let kind = match &e {
@@ -276,6 +299,8 @@ mod tests {
             (ErrorKind::Stalled, 503, "stalled"),
             (ErrorKind::Unauthorized, 401, "unauthorized"),
             (ErrorKind::Forbidden, 403, "forbidden"),
+            (ErrorKind::Busy, 409, "busy"),
+            (ErrorKind::ReloadFailed, 422, "reload_failed"),
             (ErrorKind::Internal, 500, "internal"),
         ];
         for (kind, status, name) in table {

@@ -11,7 +11,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::decision::Verdict;
 
-use super::error::ApiError;
+use super::error::{ApiError, ErrorKind};
 use super::state::{AppState, ServedModel, find};
 use crate::model::{InputType, Layout, ScoreTransform, Stacking};
 use crate::preprocess::PreprocessConfig;
@@ -54,6 +54,9 @@ pub struct ModelInfo {
     /// Which frames are kept, where (`[models.retain]`), when configured.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub retain: Option<RetainInfo>,
+    /// The last reload: when, outcome, reason, the version serving, who asked.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub last_reload: Option<serde_json::Value>,
 }
 
 /// `[models.retain]` as served.
@@ -159,6 +162,7 @@ impl ModelInfo {
             decision: m.decision.as_ref().map(|d| {
                 m.model.labels.iter().enumerate().filter_map(|(i, l)| Some((l.clone(), d.of_label(i)?))).collect()
             }),
+            last_reload: None,
             retain: m.retain.as_ref().map(|r| {
                 let c = r.config();
                 RetainInfo {
@@ -187,8 +191,31 @@ pub async fn list(State(state): State<AppState>) -> Result<Json<ModelList>, ApiE
     Ok(Json(ModelList { models: s.values().map(ModelInfo::of).collect() }))
 }
 
-/// One model.
+/// One model, with its last reload.
 pub async fn one(State(state): State<AppState>, Path(name): Path<String>) -> Result<Json<ModelInfo>, ApiError> {
     let s = state.readiness.borrow().served(true)?;
-    Ok(Json(ModelInfo::of(find(&s, &name)?)))
+    let mut info = ModelInfo::of(find(&s, &name)?);
+    info.last_reload =
+        state.reloader.as_ref().and_then(|r| r.status(&name)).and_then(|st| serde_json::to_value(st).ok());
+    Ok(Json(info))
+}
+
+/// `POST /models/{model}/reload` (admin): load the model's files and config entry as they are
+/// now beside the serving version, and swap it in when it checks and self-tests; 200 with the
+/// outcome, or the error (the old version serves on).
+pub async fn reload(
+    State(state): State<AppState>,
+    Path(name): Path<String>,
+    peer: Option<axum::Extension<crate::access::Peer>>,
+) -> Result<Json<crate::reload::ReloadStatus>, ApiError> {
+    let reloader = state
+        .reloader
+        .clone()
+        .ok_or_else(|| ApiError::new(ErrorKind::NotFound, "this server cannot reload models"))?;
+    // The model must be served now: a reload does not add models.
+    let served = state.readiness.borrow().served(false)?;
+    find(&served, &name)?;
+    drop(served);
+    let peer = peer.map_or_else(|| "unknown".to_owned(), |axum::Extension(p)| p.0.to_string());
+    Ok(Json(reloader.reload(&name, crate::reload::Trigger::Route { peer }).await?))
 }

@@ -17,7 +17,7 @@ use crate::preprocess::pool::CpuPool;
 pub use crate::served::ServedModel;
 
 /// Every served model, by name.
-pub type Served = BTreeMap<String, ServedModel>;
+pub type Served = BTreeMap<String, Arc<ServedModel>>;
 
 /// Where the server is in its life.
 #[derive(Clone)]
@@ -34,6 +34,16 @@ pub enum Readiness {
 }
 
 impl Readiness {
+    /// The state in words (for messages).
+    pub fn describe(&self) -> String {
+        match self {
+            Readiness::Loading(what) => format!("loading ({what})"),
+            Readiness::Ready(_) => "ready".into(),
+            Readiness::Failed(why) => format!("failed ({why})"),
+            Readiness::Draining(_) => "draining".into(),
+        }
+    }
+
     /// The served models, for a handler that needs them: `not_ready` while loading or after
     /// a failure, and `draining` on shutdown unless `while_draining` (read-only endpoints).
     ///
@@ -57,7 +67,7 @@ impl Readiness {
 /// # Errors
 /// No model by that name.
 pub fn find<'a>(served: &'a Served, name: &str) -> Result<&'a ServedModel, ApiError> {
-    served.get(name).ok_or_else(|| {
+    served.get(name).map(|m| &**m).ok_or_else(|| {
         let known: Vec<&str> = served.keys().map(String::as_str).collect();
         ApiError::new(ErrorKind::UnknownModel, format!("no model named {name:?}; this server has {known:?}"))
     })
@@ -82,6 +92,8 @@ pub struct AppState {
     pub access: Arc<crate::access::Access>,
     /// The running logger's filter (`None` where no logger is installed, e.g. in tests).
     pub log: Option<Arc<crate::logging::LogControl>>,
+    /// Model reloads (`None` for an app without an accept loop, e.g. `ready_app`).
+    pub reloader: Option<Arc<crate::reload::Reloader>>,
 }
 
 /// The `[server]` settings a request is held to.

@@ -38,6 +38,8 @@ pub struct Spec {
     pub stack: StackMode,
     /// `[models.batching] batch_cap`: the pass size stacking is calibrated at.
     pub batch_cap: usize,
+    /// `sha256`: the file must have this digest (lowercase hex).
+    pub sha256: Option<String>,
 }
 
 /// The onnxruntime shared library to load, and where its path came from (for messages).
@@ -94,6 +96,14 @@ struct Opened {
 fn open(cfg: &Spec) -> anyhow::Result<Opened> {
     let file = cfg.onnx.display();
     let bytes = cfg.onnx.read()?;
+    if let Some(pinned) = &cfg.sha256 {
+        let digest: String = Sha256::digest(&bytes).iter().map(|b| format!("{b:02x}")).collect();
+        anyhow::ensure!(
+            &digest == pinned,
+            "{file}: its SHA-256 is {digest}, but the config pins sha256 = {pinned:?}: this is not the file the config \
+             names (a wrong or half-copied file); copy the right one, or update the pin"
+        );
+    }
     let version = sha12(&bytes);
     let labels = match &cfg.labels {
         Some(src) => Some(labels::parse(&src.read()?, &src.display()).map_err(anyhow::Error::msg)?),

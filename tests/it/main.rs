@@ -16,6 +16,7 @@ mod evaluate;
 mod fault;
 mod load;
 mod preprocess;
+mod reload;
 mod reference;
 mod serve;
 mod util;
