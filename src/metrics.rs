@@ -242,13 +242,17 @@ impl Metrics {
             let _ = self.predictions.with_label_values(&[model, label.as_str()]);
         }
         // One version a model: a reloaded model's previous version series goes.
-        let stale: Vec<Vec<String>> = self
-            .model_info
-            .collect()
+        // The exposition sorts labels by name: read them by name, in the family's order.
+        let stale: Vec<Vec<String>> = prometheus::core::Collector::collect(&self.model_info)
             .iter()
             .flat_map(|f| f.get_metric())
-            .map(|m| m.get_label().iter().map(|l| l.value().to_owned()).collect::<Vec<String>>())
-            .filter(|labels| labels.first().map(String::as_str) == Some(model))
+            .map(|m| {
+                let value = |name: &str| {
+                    m.get_label().iter().find(|l| l.name() == name).map(|l| l.value().to_owned()).unwrap_or_default()
+                };
+                ["model", "version", "engine"].map(value).to_vec()
+            })
+            .filter(|labels| labels[0] == model)
             .collect();
         for labels in stale {
             let refs: Vec<&str> = labels.iter().map(String::as_str).collect();

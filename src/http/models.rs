@@ -188,7 +188,7 @@ pub struct ModelList {
 /// Every served model.
 pub async fn list(State(state): State<AppState>) -> Result<Json<ModelList>, ApiError> {
     let s = state.readiness.borrow().served(true)?;
-    Ok(Json(ModelList { models: s.values().map(ModelInfo::of).collect() }))
+    Ok(Json(ModelList { models: s.values().map(|m| ModelInfo::of(m)).collect() }))
 }
 
 /// One model, with its last reload.
