@@ -207,7 +207,12 @@ impl Metrics {
             http_requests: counter(&r, "http_requests_total", HTTP_HELP, &["route", "status"]),
             frames_decoded: counter(&r, "frames_decoded_total", DECODED_HELP, &["model", "thread"]),
             verdicts: counter(&r, "verdicts_total", VERDICTS_HELP, &["model", "verdict"]),
-            reloads: counter(&r, "reloads_total", "Model reloads, by model and outcome (ok, failed).", &["model", "outcome"]),
+            reloads: counter(
+                &r,
+                "reloads_total",
+                "Model reloads, by model and outcome (ok, failed).",
+                &["model", "outcome"],
+            ),
             retained: counter(&r, "retained_frames_total", RETAINED_HELP, &["model", "outcome"]),
             retained_evicted: c(
                 "retained_evicted_total",

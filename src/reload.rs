@@ -1,6 +1,7 @@
-//! Model reloads without stopping the line (work in progress on branch reload-wip: the
-//! route, the swap and the retirement of the old version; SIGHUP's config diff, the watch
-//! key and the background-priority warm-up are not done yet).
+//! Model reloads without stopping the line: `POST /models/{model}/reload` and SIGHUP (which
+//! reloads every model whose config entry or files changed, loads new ones and retires
+//! removed ones). Not done yet (docs/reload.md says so): the `watch` key, warming the new
+//! version at background priority, and keeping calibration decisions across a reload.
 //!
 //! A reload re-reads the model's config entry and files, loads, checks and self-tests the new
 //! version beside the serving one (on a blocking thread), starts its lanes, and only then
@@ -79,6 +80,30 @@ pub struct Reloader {
     guards: Mutex<BTreeMap<String, BatcherGuard>>,
     running: Mutex<Vec<String>>,
     status: Mutex<BTreeMap<String, ReloadStatus>>,
+    /// Each served model's fingerprint (config entry and files) when it was loaded.
+    fingerprints: Mutex<BTreeMap<String, [u8; 32]>>,
+    /// The `[server]` settings in force, to name the ones a SIGHUP cannot change.
+    server: String,
+}
+
+/// A model's config entry and the bytes of its files (ONNX, labels, self-test samples):
+/// what a SIGHUP compares to decide whether to reload it. `None` when a file cannot be read
+/// (the reload then says why).
+pub fn fingerprint(mc: &crate::config::ModelConfig) -> Option<[u8; 32]> {
+    use sha2::{Digest as _, Sha256};
+    let mut h = Sha256::new();
+    h.update(format!("{mc:?}").as_bytes());
+    h.update(mc.onnx.read().ok()?);
+    if let Some(l) = &mc.labels {
+        h.update(l.read().ok()?);
+    }
+    if let Some(st) = &mc.selftest {
+        for (name, bytes) in st.samples.read_dir().ok()? {
+            h.update(name.as_bytes());
+            h.update(bytes);
+        }
+    }
+    Some(h.finalize().into())
 }
 
 impl Reloader {
@@ -100,6 +125,69 @@ impl Reloader {
             guards: Mutex::new(BTreeMap::new()),
             running: Mutex::new(Vec::new()),
             status: Mutex::new(BTreeMap::new()),
+            fingerprints: Mutex::new(
+                config.models.iter().filter_map(|m| Some((m.name.clone(), fingerprint(m)?))).collect(),
+            ),
+            server: format!("{:?}", config.server),
+        }
+    }
+
+    /// SIGHUP: read the config file again; reload every model whose entry or files changed,
+    /// load models that are new, retire models that are gone; name `[server]` changes that
+    /// need a restart. Each model's outcome is logged and shown on `/models/{model}`.
+    pub async fn on_hangup(self: &Arc<Self>) {
+        let config = match self.read_config() {
+            Ok(c) => c,
+            Err(e) => {
+                tracing::error!(cause = %format!("{e:#}"), "SIGHUP: the config does not read; nothing reloaded");
+                return;
+            }
+        };
+        if format!("{:?}", config.server) != self.server {
+            tracing::warn!(
+                "SIGHUP: [server] settings changed; they take effect at the next restart (models reload now)"
+            );
+        }
+        for mc in &config.models {
+            let known = lock(&self.fingerprints).get(&mc.name).copied();
+            if known.is_some() && known == fingerprint(mc) {
+                continue;
+            }
+            let _ = self.reload(&mc.name, Trigger::Signal).await;
+        }
+        let gone: Vec<String> = match &*self.ready.borrow() {
+            Readiness::Ready(s) => s.keys().filter(|n| config.models.iter().all(|m| &m.name != *n)).cloned().collect(),
+            _ => Vec::new(),
+        };
+        for name in gone {
+            self.retire_model(&name);
+        }
+    }
+
+    /// Stop serving `model` (removed from the config): requests already holding it finish.
+    fn retire_model(&self, model: &str) {
+        let mut old = None;
+        self.ready.send_if_modified(|r| match r {
+            Readiness::Ready(served) => {
+                let mut map = (**served).clone();
+                old = map.remove(model);
+                *served = Arc::new(map);
+                old.is_some()
+            }
+            _ => false,
+        });
+        lock(&self.fingerprints).remove(model);
+        if let (Some(old), Some(guard)) = (old, lock(&self.guards).remove(model)) {
+            tracing::info!(model, "SIGHUP: model removed from the config; it no longer serves");
+            tokio::spawn(retire(old, guard, self.drain.max(Duration::from_secs(1))));
+        }
+    }
+
+    /// The config as it is now: the file the server started from, or the built-in one.
+    fn read_config(&self) -> anyhow::Result<Config> {
+        match &self.config_path {
+            Some(p) => Config::from_file(p, &self.overrides),
+            None => Config::builtin(&self.overrides),
         }
     }
 
@@ -150,7 +238,9 @@ impl Reloader {
         };
         match &outcome {
             Ok(()) => tracing::info!(model, version = %serving, ?trigger, "model reloaded"),
-            Err(e) => tracing::error!(model, serving = %serving, ?trigger, reason = %e, "reload failed; the old version serves"),
+            Err(e) => {
+                tracing::error!(model, serving = %serving, ?trigger, reason = %e, "reload failed; the old version serves")
+            }
         }
         self.metrics.count_reload(model, status.outcome);
         if !matches!(outcome, Err(ReloadError::Busy(_) | ReloadError::Unknown(_) | ReloadError::NotServing(_))) {
@@ -168,14 +258,15 @@ impl Reloader {
 
     /// Read the config again, load, check and self-test the new version, start its lanes.
     fn load_new(&self, model: &str) -> Result<(ServedModel, BatcherGuard), ReloadError> {
-        let config = Config::load(self.config_path.as_deref(), &self.overrides)
-            .map_err(|e| ReloadError::Failed(format!("the config no longer reads: {e:#}")))?;
+        let config =
+            self.read_config().map_err(|e| ReloadError::Failed(format!("the config no longer reads: {e:#}")))?;
         let mc = config.named(model).map_err(|e| ReloadError::Unknown(format!("{e:#}")))?;
         let old_labels = match &*self.ready.borrow() {
             Readiness::Ready(s) => s.get(model).map(|m| m.model.labels.clone()),
             other => return Err(ReloadError::NotServing(other.describe())),
         };
         let opts = LoadOptions { max_pixels: config.server.max_pixels, models: config.models.len(), report: false };
+        let print = fingerprint(mc);
         let loaded = Loaded::load(mc, &opts).map_err(|e| ReloadError::Failed(format!("{e:#}")))?;
         if let Some(old) = old_labels
             && old.len() != loaded.model.labels.len()
@@ -194,7 +285,13 @@ impl Reloader {
         {
             return Err(ReloadError::Failed(format!("self-test failed: {}", outcome.failures.join("; "))));
         }
-        loaded.start(&self.metrics, self.wrap.as_ref(), selftest).map_err(|e| ReloadError::Failed(format!("{e:#}")))
+        let started = loaded
+            .start(&self.metrics, self.wrap.as_ref(), selftest)
+            .map_err(|e| ReloadError::Failed(format!("{e:#}")))?;
+        if let Some(p) = print {
+            lock(&self.fingerprints).insert(model.to_owned(), p);
+        }
+        Ok(started)
     }
 
     /// Swap the new version in, in one step; retire the old one once nothing holds it.

@@ -28,10 +28,10 @@ use crate::config::Config;
 use crate::http::access::Transport;
 use crate::http::state::{AppState, InFlight, Readiness, RequestIds, RequestLimits, Served};
 use crate::logging::LogControl;
-use crate::reload::Reloader;
 use crate::metrics::Metrics;
 use crate::model::StateWrap;
 use crate::preprocess::pool::CpuPool;
+use crate::reload::Reloader;
 use crate::served::{LoadOptions, Loaded as LoadedModel};
 use axum::http::Request;
 
@@ -84,7 +84,7 @@ pub async fn run(
     let in_flight = Arc::clone(&state.in_flight);
     let app = crate::http::router(state);
     let mut loaded_rx = spawn_loader(config.clone(), ready_tx.clone(), metrics, options);
-    let hangups = spawn_hangup_handler(hangup_signal, Arc::clone(&access));
+    let hangups = spawn_hangup_handler(hangup_signal, Arc::clone(&access), Arc::clone(&reloader));
 
     let mut builder = Builder::new(TokioExecutor::new());
     builder.http1().timer(TokioTimer::new()).header_read_timeout(config.server.header_timeout);
@@ -332,6 +332,7 @@ fn hangup_signal() -> Option<()> {
 fn spawn_hangup_handler(
     signal: Option<tokio::signal::unix::Signal>,
     access: Arc<Access>,
+    reloader: Arc<Reloader>,
 ) -> tokio::task::JoinHandle<()> {
     tokio::spawn(async move {
         let Some(mut hangups) = signal else { return };
@@ -340,12 +341,17 @@ fn spawn_hangup_handler(
                 Ok(()) => tracing::info!("SIGHUP: token and certificate files read again"),
                 Err(e) => tracing::error!(cause = %e, "SIGHUP: reading the access files again failed"),
             }
+            reloader.on_hangup().await;
         }
     })
 }
 
 #[cfg(not(unix))]
-fn spawn_hangup_handler(_signal: Option<()>, _access: Arc<Access>) -> tokio::task::JoinHandle<()> {
+fn spawn_hangup_handler(
+    _signal: Option<()>,
+    _access: Arc<Access>,
+    _reloader: Arc<Reloader>,
+) -> tokio::task::JoinHandle<()> {
     tokio::spawn(async {})
 }
 

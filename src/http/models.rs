@@ -208,10 +208,8 @@ pub async fn reload(
     Path(name): Path<String>,
     peer: Option<axum::Extension<crate::access::Peer>>,
 ) -> Result<Json<crate::reload::ReloadStatus>, ApiError> {
-    let reloader = state
-        .reloader
-        .clone()
-        .ok_or_else(|| ApiError::new(ErrorKind::NotFound, "this server cannot reload models"))?;
+    let reloader =
+        state.reloader.clone().ok_or_else(|| ApiError::new(ErrorKind::NotFound, "this server cannot reload models"))?;
     // The model must be served now: a reload does not add models.
     let served = state.readiness.borrow().served(false)?;
     find(&served, &name)?;

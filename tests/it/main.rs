@@ -16,7 +16,7 @@ mod evaluate;
 mod fault;
 mod load;
 mod preprocess;
-mod reload;
 mod reference;
+mod reload;
 mod serve;
 mod util;

@@ -150,9 +150,74 @@ async fn broken_files_and_a_pin_mismatch_keep_the_old_version_serving() {
     let r = c.post(server.url("/classify/washers")).body(samples()[0].bytes.clone()).send().await.unwrap();
     assert_eq!(r.status(), 200);
     let info: serde_json::Value = c.get(server.url("/models/washers")).send().await.unwrap().json().await.unwrap();
-    assert_eq!((info["last_reload"]["outcome"].as_str(), info["last_reload"]["serving"].as_str()), (Some("failed"), Some(old.as_str())));
+    assert_eq!(
+        (info["last_reload"]["outcome"].as_str(), info["last_reload"]["serving"].as_str()),
+        (Some("failed"), Some(old.as_str()))
+    );
     // An unknown model: 404.
     let r = c.post(server.url("/models/nosuch/reload")).send().await.unwrap();
     crate::util::expect_error(r, 404, "unknown_model").await;
     server.stop().await.unwrap();
+}
+
+/// The real binary and a real SIGHUP: a changed model file is reloaded, a model added to the
+/// config is loaded, a model removed from it stops serving; the unchanged stays as it was.
+#[test]
+fn sighup_reloads_changed_models_adds_new_ones_and_retires_removed_ones() {
+    let dir = temp_dir("reload-sighup");
+    let (config_path, _) = bundle(&dir, "");
+    let text = std::fs::read_to_string(&config_path).unwrap();
+    let section = &text[text.find("[[models]]").unwrap()..];
+    let second = section.replacen("name = \"washers\"", "name = \"washers2\"", 1);
+    let (child, port) = crate::util::serve_child(&dir, &["serve", "--config", "lineside.toml"]);
+    let base = format!("http://127.0.0.1:{port}");
+    let hup = || {
+        assert!(std::process::Command::new("kill").args(["-HUP", &child.id().to_string()]).status().unwrap().success())
+    };
+    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
+    rt.block_on(async {
+        crate::util::wait_ready_at(&base).await;
+        let c = reqwest::Client::new();
+        let info = |name: &'static str| {
+            let (c, base) = (c.clone(), base.clone());
+            async move {
+                let r = c.get(format!("{base}/models/{name}")).send().await.unwrap();
+                (r.status().as_u16(), r.json::<serde_json::Value>().await.unwrap())
+            }
+        };
+        let old = info("washers").await.1["version"].as_str().unwrap().to_owned();
+        let next = dir.join("next.onnx");
+        retagged(&dir.join("classifier.onnx"), &next, "signal");
+        replace_atomically(&dir.join("classifier.onnx"), &std::fs::read(&next).unwrap());
+        std::fs::write(&config_path, format!("{text}\n{second}")).unwrap();
+        hup();
+        let mut seen = (0, serde_json::Value::Null);
+        for _ in 0..600 {
+            seen = info("washers2").await;
+            if seen.0 == 200 && info("washers").await.1["version"] != old.as_str() {
+                break;
+            }
+            tokio::time::sleep(Duration::from_millis(100)).await;
+        }
+        assert_eq!(seen.0, 200, "washers2 was added: {}", seen.1);
+        let w = info("washers").await.1;
+        assert_ne!(w["version"], old.as_str(), "the changed file was reloaded: {w}");
+        assert_eq!(w["last_reload"]["trigger"]["by"], "signal", "{w}");
+        assert_eq!(c.get(format!("{base}/readyz")).send().await.unwrap().status(), 200);
+        // washers2 removed again: it stops serving, washers stays.
+        std::fs::write(&config_path, &text).unwrap();
+        hup();
+        for _ in 0..600 {
+            if info("washers2").await.0 == 404 {
+                break;
+            }
+            tokio::time::sleep(Duration::from_millis(100)).await;
+        }
+        assert_eq!(info("washers2").await.0, 404);
+        let r = c.post(format!("{base}/classify/washers")).body(samples()[0].bytes.clone()).send().await.unwrap();
+        assert_eq!(r.status(), 200);
+    });
+    let (code, log) = crate::util::stop_child(child);
+    assert_eq!(code, Some(0), "{log}");
+    assert!(log.contains("model reloaded") && log.contains("Signal"), "{log}");
 }
