@@ -166,21 +166,43 @@ impl Reloader {
 
     /// Stop serving `model` (removed from the config): requests already holding it finish.
     fn retire_model(&self, model: &str) {
-        let mut old = None;
-        self.ready.send_if_modified(|r| match r {
-            Readiness::Ready(served) => {
-                let mut map = (**served).clone();
-                old = map.remove(model);
-                *served = Arc::new(map);
-                old.is_some()
-            }
-            _ => false,
-        });
+        let old = self.edit_served(|map| map.remove(model)).ok().flatten();
         lock(&self.fingerprints).remove(model);
         if let (Some(old), Some(guard)) = (old, lock(&self.guards).remove(model)) {
             tracing::info!(model, "SIGHUP: model removed from the config; it no longer serves");
-            tokio::spawn(retire(old, guard, self.drain.max(Duration::from_secs(1))));
+            self.retire_later(old, guard);
         }
+    }
+
+    /// Change the served map in one step: a copy edited by `edit` is published, unless `edit`
+    /// returns `None` (nothing changed). `Err` names the server's state when it is not serving.
+    fn edit_served<T>(
+        &self,
+        edit: impl FnOnce(&mut crate::http::state::Served) -> Option<T>,
+    ) -> Result<Option<T>, String> {
+        let mut out = Err(String::new());
+        self.ready.send_if_modified(|r| match r {
+            Readiness::Ready(served) => {
+                let mut map = (**served).clone();
+                let edited = edit(&mut map);
+                let changed = edited.is_some();
+                if changed {
+                    *served = Arc::new(map);
+                }
+                out = Ok(edited);
+                changed
+            }
+            other => {
+                out = Err(other.describe());
+                false
+            }
+        });
+        out
+    }
+
+    /// Stop `old`'s lanes once no request holds it (bounded by `drain_ms`, at least 1 s).
+    fn retire_later(&self, old: Arc<ServedModel>, guard: BatcherGuard) {
+        tokio::spawn(retire(old, guard, self.drain.max(Duration::from_secs(1))));
     }
 
     /// The config as it is now: the file the server started from, or the built-in one.
@@ -297,27 +319,12 @@ impl Reloader {
     /// Swap the new version in, in one step; retire the old one once nothing holds it.
     fn swap(&self, model: &str, new: ServedModel, guard: BatcherGuard) -> Result<(), ReloadError> {
         let new = Arc::new(new);
-        let mut old = None;
-        let mut not_serving = None;
-        self.ready.send_if_modified(|r| match r {
-            Readiness::Ready(served) => {
-                let mut map = (**served).clone();
-                old = map.insert(model.to_owned(), Arc::clone(&new));
-                *served = Arc::new(map);
-                true
-            }
-            other => {
-                not_serving = Some(other.describe());
-                false
-            }
-        });
-        if let Some(why) = not_serving {
-            return Err(ReloadError::NotServing(why));
-        }
+        // `Some(previous)`: always a change (the new version goes in whether or not one served).
+        let old =
+            self.edit_served(|map| Some(map.insert(model.to_owned(), new))).map_err(ReloadError::NotServing)?.flatten();
         let old_guard = lock(&self.guards).insert(model.to_owned(), guard);
         if let (Some(old), Some(old_guard)) = (old, old_guard) {
-            let drain = self.drain.max(Duration::from_secs(1));
-            tokio::spawn(retire(old, old_guard, drain));
+            self.retire_later(old, old_guard);
         }
         Ok(())
     }
