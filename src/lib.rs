@@ -19,7 +19,8 @@
 //! | [`batch`] | per-model backlog, inference lanes, pass formation, deadlines at the lane |
 //! | [`decision`] | a label and score become the line's verdict: accept, reject, review, no_part |
 //! | [`retain`] | the frames a person must see, kept off the request path within bounds; their export |
-//! | [`reload`] | a model's new version loaded, checked and self-tested beside the serving one, swapped in |
+//! | [`reload`] | a model's new version loaded, checked and self-tested beside the serving one, swapped in; file watching |
+//! | [`background`] | work off the lanes (a reload's load and self-test) on a thread at idle CPU priority |
 //! | [`selftest`] | sample images through the serving path at load, against expectations |
 //! | [`served`] | the one loading path every command uses; a served model's lanes |
 //! | [`evaluate`] | labelled frames scored through the serving path; the figures, reports and baseline |
@@ -36,6 +37,7 @@
 //! qualified sign-off of accept/reject decisions.
 
 pub mod access;
+pub mod background;
 pub mod batch;
 pub mod bench;
 pub mod cli;

@@ -1,13 +1,15 @@
-//! Model reloads without stopping the line: `POST /models/{model}/reload` and SIGHUP (which
+//! Model reloads without stopping the line: `POST /models/{model}/reload`, SIGHUP (which
 //! reloads every model whose config entry or files changed, loads new ones and retires
-//! removed ones). Not done yet (docs/reload.md says so): the `watch` key, warming the new
-//! version at background priority, and keeping calibration decisions across a reload.
+//! removed ones), and `watch = true` (a model's files polled, reloaded once a change has
+//! settled).
 //!
-//! A reload re-reads the model's config entry and files, loads, checks and self-tests the new
-//! version beside the serving one (on a blocking thread), starts its lanes, and only then
-//! swaps it into the served map in one step. Requests that already hold the old map finish on
-//! the old version; its lanes stop once no request holds it (bounded by `drain_ms`), and its
-//! memory goes with them. A failed reload changes nothing that serves.
+//! A reload re-reads the model's config entry and files, loads, checks, warms and self-tests
+//! the new version beside the serving one on a thread at idle CPU priority
+//! ([`crate::background`]: it takes only the time live requests leave), keeping the serving
+//! version's calibrated stacking decision, then starts its lanes from an ordinary thread and
+//! only then swaps it into the served map in one step. Requests that already hold the old map
+//! finish on the old version; its lanes stop once no request holds it (bounded by
+//! `drain_ms`), and its memory goes with them. A failed reload changes nothing that serves.
 
 use std::collections::BTreeMap;
 use std::sync::{Arc, Mutex};
@@ -34,6 +36,8 @@ pub enum Trigger {
     },
     /// SIGHUP.
     Signal,
+    /// The model's files changed (`watch = true`).
+    Watch,
 }
 
 /// The last reload of a model, as `GET /models/{model}` shows it.
@@ -84,6 +88,71 @@ pub struct Reloader {
     fingerprints: Mutex<BTreeMap<String, [u8; 32]>>,
     /// The `[server]` settings in force, to name the ones a SIGHUP cannot change.
     server: String,
+    /// Models with `watch = true`, by name.
+    watched: Mutex<BTreeMap<String, Watched>>,
+}
+
+/// What a watched model's files looked like: each file's path with its length, modification
+/// time and inode (`None` while it cannot be read, e.g. in the middle of a rename).
+type Stamp = Vec<(std::path::PathBuf, Option<(u64, std::time::SystemTime, u64)>)>;
+
+/// How often watched files are looked at. A change is loaded once it has been seen unchanged
+/// at two looks in a row (it settled for one interval).
+pub const WATCH_POLL: Duration = Duration::from_secs(1);
+
+/// One watched model.
+struct Watched {
+    /// Its config entry (which files to look at).
+    config: crate::config::ModelConfig,
+    /// The files as they were when the serving version was read.
+    loaded: Stamp,
+    /// A change seen at the last look, waiting to settle.
+    seen: Option<Stamp>,
+    /// The files as they were at the last reload this watch asked for (not asked again for
+    /// files that already failed).
+    tried: Option<Stamp>,
+}
+
+/// The stamp of a model's files on disk (the ONNX file, the labels, each self-test sample);
+/// `None` for a model whose files are compiled in.
+fn stamp(mc: &crate::config::ModelConfig) -> Option<Stamp> {
+    use crate::source::Source;
+    fn of(path: &std::path::Path) -> Option<(u64, std::time::SystemTime, u64)> {
+        use std::os::unix::fs::MetadataExt as _;
+        let m = std::fs::metadata(path).ok()?;
+        Some((m.len(), m.modified().ok()?, m.ino()))
+    }
+    let Source::File(onnx) = &mc.onnx else { return None };
+    let mut files = vec![onnx.clone()];
+    if let Some(Source::File(l)) = &mc.labels {
+        files.push(l.clone());
+    }
+    if let Some(st) = &mc.selftest
+        && let Source::File(dir) = &st.samples
+    {
+        files.push(dir.clone());
+        let mut entries: Vec<_> =
+            std::fs::read_dir(dir).into_iter().flatten().filter_map(|e| e.ok().map(|e| e.path())).collect();
+        entries.sort();
+        files.extend(entries);
+    }
+    Some(
+        files
+            .into_iter()
+            .map(|f| {
+                let s = of(&f);
+                (f, s)
+            })
+            .collect(),
+    )
+}
+
+/// What a reload prepared at idle priority: the new version loaded, checked and self-tested.
+struct Prepared {
+    loaded: Loaded,
+    selftest: Option<crate::selftest::Outcome>,
+    print: Option<[u8; 32]>,
+    stamp: Option<Stamp>,
 }
 
 /// A model's config entry and the bytes of its files (ONNX, labels, self-test samples):
@@ -129,7 +198,60 @@ impl Reloader {
                 config.models.iter().filter_map(|m| Some((m.name.clone(), fingerprint(m)?))).collect(),
             ),
             server: format!("{:?}", config.server),
+            watched: Mutex::new(
+                config
+                    .models
+                    .iter()
+                    .filter(|m| m.watch)
+                    .filter_map(|m| {
+                        let loaded = stamp(m)?;
+                        Some((m.name.clone(), Watched { config: m.clone(), loaded, seen: None, tried: None }))
+                    })
+                    .collect(),
+            ),
         }
+    }
+
+    /// Look at the watched models' files every [`WATCH_POLL`] and reload a model whose files
+    /// changed and then stayed unchanged for one interval. Files that fail to load are not
+    /// tried again until they change.
+    pub fn spawn_watcher(self: &Arc<Self>) -> tokio::task::JoinHandle<()> {
+        let this = Arc::clone(self);
+        tokio::spawn(async move {
+            loop {
+                tokio::time::sleep(WATCH_POLL).await;
+                let scan = Arc::clone(&this);
+                let due = tokio::task::spawn_blocking(move || scan.settled_changes()).await.unwrap_or_default();
+                for name in due {
+                    if let Err(ReloadError::Busy(_) | ReloadError::NotServing(_)) =
+                        this.reload(&name, Trigger::Watch).await
+                    {
+                        // Not tried: look again at the next interval.
+                        if let Some(w) = lock(&this.watched).get_mut(&name) {
+                            w.tried = None;
+                        }
+                    }
+                }
+            }
+        })
+    }
+
+    /// The watched models whose files changed and have settled since the last look.
+    fn settled_changes(&self) -> Vec<String> {
+        let mut due = Vec::new();
+        for (name, w) in lock(&self.watched).iter_mut() {
+            let Some(now) = stamp(&w.config) else { continue };
+            if now == w.loaded {
+                w.seen = None;
+            } else if w.seen.as_ref() != Some(&now) {
+                w.seen = Some(now);
+            } else if w.tried.as_ref() != Some(&now) {
+                tracing::info!(model = %name, "watched files changed and settled; reloading");
+                w.tried = Some(now);
+                due.push(name.clone());
+            }
+        }
+        due
     }
 
     /// SIGHUP: read the config file again; reload every model whose entry or files changed,
@@ -148,12 +270,25 @@ impl Reloader {
                 "SIGHUP: [server] settings changed; they take effect at the next restart (models reload now)"
             );
         }
-        for mc in &config.models {
-            let known = lock(&self.fingerprints).get(&mc.name).copied();
-            if known.is_some() && known == fingerprint(mc) {
-                continue;
-            }
-            let _ = self.reload(&mc.name, Trigger::Signal).await;
+        // Reading and hashing the files is background work too.
+        let (this, models) = (Arc::clone(self), config.models.clone());
+        let changed = crate::background::run_idle("reload-scan", move || {
+            models
+                .iter()
+                .filter(|mc| {
+                    let known = lock(&this.fingerprints).get(&mc.name).copied();
+                    known.is_none() || known != fingerprint(mc)
+                })
+                .map(|mc| mc.name.clone())
+                .collect::<Vec<_>>()
+        })
+        .await
+        .unwrap_or_else(|e| {
+            tracing::error!(cause = %format!("{e:#}"), "SIGHUP: comparing the models' files failed; reloading all");
+            config.models.iter().map(|m| m.name.clone()).collect()
+        });
+        for name in changed {
+            let _ = self.reload(&name, Trigger::Signal).await;
         }
         let gone: Vec<String> = match &*self.ready.borrow() {
             Readiness::Ready(s) => s.keys().filter(|n| config.models.iter().all(|m| &m.name != *n)).cloned().collect(),
@@ -168,6 +303,7 @@ impl Reloader {
     fn retire_model(&self, model: &str) {
         let old = self.edit_served(|map| map.remove(model)).ok().flatten();
         lock(&self.fingerprints).remove(model);
+        lock(&self.watched).remove(model);
         if let (Some(old), Some(guard)) = (old, lock(&self.guards).remove(model)) {
             tracing::info!(model, "SIGHUP: model removed from the config; it no longer serves");
             self.retire_later(old, guard);
@@ -240,15 +376,7 @@ impl Reloader {
             }
             running.push(model.to_owned());
         }
-        let this = Arc::clone(self);
-        let name = model.to_owned();
-        let result = tokio::task::spawn_blocking(move || this.load_new(&name))
-            .await
-            .unwrap_or_else(|e| Err(ReloadError::Failed(format!("the reload panicked: {e}"))));
-        let outcome = match result {
-            Ok((new, guard)) => self.swap(model, new, guard),
-            Err(e) => Err(e),
-        };
+        let outcome = self.load_and_swap(model).await;
         lock(&self.running).retain(|m| m != model);
         let serving = self.serving_version(model).unwrap_or_default();
         let status = ReloadStatus {
@@ -278,28 +406,77 @@ impl Reloader {
         }
     }
 
-    /// Read the config again, load, check and self-test the new version, start its lanes.
-    fn load_new(&self, model: &str) -> Result<(ServedModel, BatcherGuard), ReloadError> {
+    /// Prepare the new version at idle priority, start its lanes from an ordinary thread (lanes
+    /// started from the idle thread would inherit its priority for good), swap it in.
+    async fn load_and_swap(self: &Arc<Self>, model: &str) -> Result<(), ReloadError> {
+        let (this, name) = (Arc::clone(self), model.to_owned());
+        let prepared = crate::background::run_idle(&format!("reload-{model}"), move || this.prepare(&name))
+            .await
+            .unwrap_or_else(|e| Err(ReloadError::Failed(format!("{e:#}"))))?;
+        let this = Arc::clone(self);
+        let (print, stamp, watch, config) =
+            (prepared.print, prepared.stamp.clone(), prepared.loaded.config.watch, prepared.loaded.config.clone());
+        let (new, guard) = tokio::task::spawn_blocking(move || {
+            prepared
+                .loaded
+                .start(&this.metrics, this.wrap.as_ref(), prepared.selftest)
+                .map_err(|e| ReloadError::Failed(format!("{e:#}")))
+        })
+        .await
+        .unwrap_or_else(|e| Err(ReloadError::Failed(format!("starting the lanes panicked: {e}"))))?;
+        self.swap(model, new, guard)?;
+        if let Some(p) = print {
+            lock(&self.fingerprints).insert(model.to_owned(), p);
+        }
+        let mut watched = lock(&self.watched);
+        match stamp {
+            Some(loaded) if watch => {
+                watched.insert(model.to_owned(), Watched { config, loaded, seen: None, tried: None });
+            }
+            _ => {
+                watched.remove(model);
+            }
+        }
+        Ok(())
+    }
+
+    /// Read the config again; load, check, warm and self-test the new version (on the idle
+    /// thread; nothing here starts a thread that outlives it).
+    fn prepare(&self, model: &str) -> Result<Prepared, ReloadError> {
         let config =
             self.read_config().map_err(|e| ReloadError::Failed(format!("the config no longer reads: {e:#}")))?;
         let mc = config.named(model).map_err(|e| ReloadError::Unknown(format!("{e:#}")))?;
-        let old_labels = match &*self.ready.borrow() {
-            Readiness::Ready(s) => s.get(model).map(|m| m.model.labels.clone()),
+        let serving = match &*self.ready.borrow() {
+            Readiness::Ready(s) => s.get(model).cloned(),
             other => return Err(ReloadError::NotServing(other.describe())),
         };
-        let opts = LoadOptions { max_pixels: config.server.max_pixels, models: config.models.len(), report: false };
+        // The stacking decision calibrated for the serving version stays, when it was made
+        // for the same engine and pass size: calibrating again would time it under live load.
+        let kept_stacking = serving
+            .as_ref()
+            .filter(|s| s.model.engine() == mc.engine && s.batching.batch_cap == mc.batching.batch_cap)
+            .map(|s| s.model.stacking.clone());
+        let opts = LoadOptions {
+            max_pixels: config.server.max_pixels,
+            models: config.models.len(),
+            report: false,
+            kept_stacking,
+        };
+        // Stamp before reading: a change made while loading is seen at the next look.
+        let stamp = stamp(mc);
         let print = fingerprint(mc);
         let loaded = Loaded::load(mc, &opts).map_err(|e| ReloadError::Failed(format!("{e:#}")))?;
-        if let Some(old) = old_labels
-            && old.len() != loaded.model.labels.len()
+        if let Some(old) = &serving
+            && old.model.labels.len() != loaded.model.labels.len()
         {
             return Err(ReloadError::Failed(format!(
                 "the new version has {} classes where the serving one has {}: clients and the decision table expect \
                  the serving set; a model with other classes needs a restart with its config",
                 loaded.model.labels.len(),
-                old.len()
+                old.model.labels.len()
             )));
         }
+        drop(serving);
         // The self-test files as they are now: a retrained model ships its own expected scores.
         let selftest = loaded.selftest().map_err(|e| ReloadError::Failed(format!("{e:#}")))?;
         if let Some(outcome) = &selftest
@@ -307,13 +484,7 @@ impl Reloader {
         {
             return Err(ReloadError::Failed(format!("self-test failed: {}", outcome.failures.join("; "))));
         }
-        let started = loaded
-            .start(&self.metrics, self.wrap.as_ref(), selftest)
-            .map_err(|e| ReloadError::Failed(format!("{e:#}")))?;
-        if let Some(p) = print {
-            lock(&self.fingerprints).insert(model.to_owned(), p);
-        }
-        Ok(started)
+        Ok(Prepared { loaded, selftest, print, stamp })
     }
 
     /// Swap the new version in, in one step; retire the old one once nothing holds it.
@@ -342,4 +513,58 @@ async fn retire(old: Arc<ServedModel>, guard: BatcherGuard, drain: Duration) {
 
 fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
     m.lock().unwrap_or_else(std::sync::PoisonError::into_inner)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn reloader() -> (Arc<Reloader>, Config) {
+        let config = Config::builtin(&Overrides::default()).unwrap();
+        let (tx, _rx) = watch::channel(Readiness::Loading("test".into()));
+        (Arc::new(Reloader::new(tx, &config, Overrides::default(), Metrics::new(), None)), config)
+    }
+
+    #[tokio::test]
+    async fn a_reload_while_one_runs_for_the_same_model_is_refused_not_queued() {
+        let (r, _) = reloader();
+        lock(&r.running).push("washers".into());
+        let e = r.reload("washers", Trigger::Signal).await.unwrap_err();
+        assert!(matches!(e, ReloadError::Busy(ref m) if m == "washers"), "{e:?}");
+        assert!(e.to_string().contains("already running"), "{e}");
+        // Refused before anything else: the running reload's entry stays, no status is kept.
+        assert_eq!(*lock(&r.running), vec!["washers".to_owned()]);
+        assert!(r.status("washers").is_none());
+        // Once the first has ended, the next goes ahead (here to "not serving": nothing loaded).
+        lock(&r.running).clear();
+        let e = r.reload("washers", Trigger::Signal).await.unwrap_err();
+        assert!(matches!(e, ReloadError::NotServing(_)), "{e:?}");
+        assert!(lock(&r.running).is_empty(), "the running mark is removed whatever the outcome");
+    }
+
+    #[test]
+    fn a_watch_reloads_a_change_only_once_it_has_settled_and_never_retries_the_same_files() {
+        let dir = std::env::temp_dir().join(format!("lineside-watch-unit-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let onnx = dir.join("m.onnx");
+        std::fs::write(&onnx, b"first").unwrap();
+        let (r, config) = reloader();
+        let mut mc = config.models[0].clone();
+        mc.onnx = crate::source::Source::File(onnx.clone());
+        mc.labels = None;
+        mc.selftest = None;
+        let loaded = stamp(&mc).unwrap();
+        lock(&r.watched).insert("m".into(), Watched { config: mc, loaded, seen: None, tried: None });
+        assert!(r.settled_changes().is_empty(), "nothing changed");
+        std::fs::write(dir.join("next"), b"second, longer").unwrap();
+        std::fs::rename(dir.join("next"), &onnx).unwrap();
+        assert!(r.settled_changes().is_empty(), "a change just seen waits one interval");
+        assert_eq!(r.settled_changes(), vec!["m".to_owned()], "unchanged at the next look: reload");
+        assert!(r.settled_changes().is_empty(), "the same files are not tried twice");
+        std::fs::write(dir.join("next"), b"third").unwrap();
+        std::fs::rename(dir.join("next"), &onnx).unwrap();
+        assert!(r.settled_changes().is_empty());
+        assert_eq!(r.settled_changes(), vec!["m".to_owned()], "new files are tried");
+        let _ = std::fs::remove_dir_all(&dir);
+    }
 }

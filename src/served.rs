@@ -30,12 +30,14 @@ pub struct LoadOptions {
     pub models: usize,
     /// Also build the layer report (`lineside check`).
     pub report: bool,
+    /// The stacking decision calibrated when this model was loaded before (a reload keeps it).
+    pub kept_stacking: Option<crate::model::Stacking>,
 }
 
 impl LoadOptions {
     /// One model alone on the box, no report, any frame size.
     pub fn single() -> LoadOptions {
-        LoadOptions { max_pixels: u64::MAX, models: 1, report: false }
+        LoadOptions { max_pixels: u64::MAX, models: 1, report: false, kept_stacking: None }
     }
 }
 
@@ -74,7 +76,7 @@ impl Loaded {
     /// does not fit it: each message names the model, the file and what to change.
     pub fn load(mc: &ModelConfig, opts: &LoadOptions) -> anyhow::Result<Loaded> {
         let name = &mc.name;
-        let spec = mc.spec();
+        let spec = crate::model::load::Spec { kept_stacking: opts.kept_stacking.clone(), ..mc.spec() };
         let (model, report) = if opts.report {
             let (m, r) = load::load_with_report(&spec).with_context(|| format!("model {name:?}"))?;
             (m, Some(r))

@@ -85,6 +85,7 @@ pub async fn run(
     let app = crate::http::router(state);
     let mut loaded_rx = spawn_loader(config.clone(), ready_tx.clone(), metrics, options);
     let hangups = spawn_hangup_handler(hangup_signal, Arc::clone(&access), Arc::clone(&reloader));
+    let watcher = reloader.spawn_watcher();
 
     let mut builder = Builder::new(TokioExecutor::new());
     builder.http1().timer(TokioTimer::new()).header_read_timeout(config.server.header_timeout);
@@ -142,6 +143,7 @@ pub async fn run(
     }
     drop(listener);
     hangups.abort();
+    watcher.abort();
     if tokio::time::timeout(ANSWER_TAIL, graceful.shutdown()).await.is_err() {
         tracing::warn!("connections still open after the drain; closing them");
     }
@@ -326,8 +328,8 @@ fn hangup_signal() -> Option<()> {
     None
 }
 
-/// SIGHUP re-reads the token files and certificates (the model reload will hang off the
-/// same signal). A part that fails keeps its previous value and the log says why.
+/// SIGHUP re-reads the token files and certificates, then the config for the models
+/// ([`Reloader::on_hangup`]). A part that fails keeps its previous value and the log says why.
 #[cfg(unix)]
 fn spawn_hangup_handler(
     signal: Option<tokio::signal::unix::Signal>,
@@ -450,7 +452,12 @@ fn load_all(config: &Config, metrics: &Metrics, wrap: Option<&StateWrap>) -> any
     let mut served = Served::new();
     let mut guards = Vec::new();
     let mut selftest_failures = Vec::new();
-    let opts = LoadOptions { max_pixels: config.server.max_pixels, models: config.models.len(), report: false };
+    let opts = LoadOptions {
+        max_pixels: config.server.max_pixels,
+        models: config.models.len(),
+        report: false,
+        kept_stacking: None,
+    };
     for mc in &config.models {
         let loaded = LoadedModel::load(mc, &opts)?;
         let model = &loaded.model;

@@ -108,6 +108,8 @@ pub struct ModelConfig {
     pub decision: Option<DecisionConfig>,
     /// `sha256`: the ONNX file's digest it must have (lowercase hex); another is refused.
     pub sha256: Option<String>,
+    /// `watch`: reload when the model's files change (docs/reload.md).
+    pub watch: bool,
     /// `[models.retain]`: which frames are kept, where, within which bounds.
     pub retain: Option<RetainConfig>,
     /// The onnxruntime shared library: `[onnxruntime] library`, else the environment
@@ -267,6 +269,7 @@ impl ModelConfig {
             decision: None,
             retain: None,
             sha256: None,
+            watch: false,
         }
     }
 
@@ -282,6 +285,7 @@ impl ModelConfig {
             stack: self.batching.stack,
             batch_cap: self.batching.batch_cap,
             sha256: self.sha256.clone(),
+            kept_stacking: None,
         }
     }
 }

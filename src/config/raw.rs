@@ -66,6 +66,8 @@ pub(super) struct RawModel {
     pub(super) decision: Option<RawDecision>,
     pub(super) sha256: Option<String>,
     pub(super) retain: Option<RawRetain>,
+    #[serde(default)]
+    pub(super) watch: bool,
 }
 
 #[derive(Debug, Default, Deserialize)]

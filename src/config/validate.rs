@@ -206,6 +206,7 @@ fn model(
     };
     Ok(ModelConfig {
         sha256,
+        watch: m.watch,
         decision,
         retain,
         name: m.name,

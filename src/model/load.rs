@@ -40,6 +40,9 @@ pub struct Spec {
     pub batch_cap: usize,
     /// `sha256`: the file must have this digest (lowercase hex).
     pub sha256: Option<String>,
+    /// A stacking decision calibrated at an earlier load of this model (a reload keeps it
+    /// instead of timing again under live load); used only where `stack` leaves it to calibration.
+    pub kept_stacking: Option<super::Stacking>,
 }
 
 /// The onnxruntime shared library to load, and where its path came from (for messages).
@@ -170,7 +173,7 @@ fn load_inner(cfg: &Spec, want_report: bool) -> anyhow::Result<(Model, Option<Re
         .runner()
         .and_then(|mut r| r.run(&zeros))
         .with_context(|| format!("{}: warm-up inference failed", model.file))?;
-    model.stacking = decide_stacking(&model, cfg.stack, cfg.batch_cap)?;
+    model.stacking = decide_stacking(&model, cfg.stack, cfg.batch_cap, cfg.kept_stacking.as_ref())?;
     model.load_time = start.elapsed();
     if model.contract.batch == super::BatchAxis::Fixed(1) && cfg.batch_cap > 1 {
         // Passes run as consecutive batch-1 runs, so gathering still works; only stacking
@@ -206,7 +209,8 @@ pub fn time_stacked(cfg: &Spec, model: &Model, batch: usize) -> anyhow::Result<O
 /// images takes at most 0.9x the time per image of `cap` single runs (a stacked pass delays
 /// its first answer, so it must pay for itself). The two ways alternate after a warm-up of
 /// each, and each keeps its best round (2 to 5 rounds, about 1.5 s at most); one thread.
-fn decide_stacking(model: &Model, mode: StackMode, cap: usize) -> anyhow::Result<Stacking> {
+/// A decision calibrated at an earlier load (`kept`: a reload) is kept, marked `"kept"`.
+fn decide_stacking(model: &Model, mode: StackMode, cap: usize, kept: Option<&Stacking>) -> anyhow::Result<Stacking> {
     if !model.plan.can_stack() {
         anyhow::ensure!(
             mode != StackMode::Always,
@@ -230,6 +234,10 @@ fn decide_stacking(model: &Model, mode: StackMode, cap: usize) -> anyhow::Result
         StackMode::Never => return Ok(Stacking::single("config")),
         StackMode::Auto if cap < 2 => return Ok(Stacking::single("config")),
         StackMode::Auto => {}
+    }
+    if let Some(k) = kept.filter(|k| k.decided_by == "calibrated" || k.decided_by == "kept") {
+        tracing::info!(model = %model.name, stacked = k.stacked, "kept the stacking decision of the previous load");
+        return Ok(Stacking { decided_by: "kept".into(), ..k.clone() });
     }
     let mut runner = model.runner()?;
     let input = model.constant_input(0.5);

@@ -50,7 +50,8 @@ pub struct Stacking {
     /// Stacked (`true`) or image by image.
     pub stacked: bool,
     /// Why: `"engine"` (it cannot stack), `"model"` (the batch axis is fixed at 1),
-    /// `"config"` (`stack = true | false`), `"calibrated"` (timed at load).
+    /// `"config"` (`stack = true | false`), `"calibrated"` (timed at load), `"kept"` (timed at
+    /// an earlier load and kept by a reload).
     pub decided_by: std::borrow::Cow<'static, str>,
     /// The calibration's time per image run one at a time, in ms.
     #[serde(skip_serializing_if = "Option::is_none")]
