@@ -20,7 +20,7 @@
 //! | [`decision`] | a label and score become the line's verdict: accept, reject, review, no_part |
 //! | [`retain`] | the frames a person must see, kept off the request path within bounds; their export |
 //! | [`reload`] | a model's new version loaded, checked and self-tested beside the serving one, swapped in; file watching |
-//! | [`background`] | work off the lanes (a reload's load and self-test) on a thread at idle CPU priority |
+//! | [`background`] | work off the lanes (a reload's load and self-test) on a thread at low CPU priority |
 //! | [`selftest`] | sample images through the serving path at load, against expectations |
 //! | [`served`] | the one loading path every command uses; a served model's lanes |
 //! | [`evaluate`] | labelled frames scored through the serving path; the figures, reports and baseline |

@@ -4,8 +4,8 @@
 //! settled).
 //!
 //! A reload re-reads the model's config entry and files, loads, checks, warms and self-tests
-//! the new version beside the serving one on a thread at idle CPU priority
-//! ([`crate::background`]: it takes only the time live requests leave), keeping the serving
+//! the new version beside the serving one on a thread at low CPU priority
+//! ([`crate::background`]: live requests come first), keeping the serving
 //! version's calibrated stacking decision, then starts its lanes from an ordinary thread and
 //! only then swaps it into the served map in one step. Requests that already hold the old map
 //! finish on the old version; its lanes stop once no request holds it (bounded by
@@ -147,7 +147,7 @@ fn stamp(mc: &crate::config::ModelConfig) -> Option<Stamp> {
     )
 }
 
-/// What a reload prepared at idle priority: the new version loaded, checked and self-tested.
+/// What a reload prepared at low priority: the new version loaded, checked and self-tested.
 struct Prepared {
     loaded: Loaded,
     selftest: Option<crate::selftest::Outcome>,
@@ -272,7 +272,7 @@ impl Reloader {
         }
         // Reading and hashing the files is background work too.
         let (this, models) = (Arc::clone(self), config.models.clone());
-        let changed = crate::background::run_idle("reload-scan", move || {
+        let changed = crate::background::run_background("reload-scan", move || {
             models
                 .iter()
                 .filter(|mc| {
@@ -406,11 +406,11 @@ impl Reloader {
         }
     }
 
-    /// Prepare the new version at idle priority, start its lanes from an ordinary thread (lanes
-    /// started from the idle thread would inherit its priority for good), swap it in.
+    /// Prepare the new version at low priority, start its lanes from an ordinary thread (lanes
+    /// started from the background thread would inherit its priority for good), swap it in.
     async fn load_and_swap(self: &Arc<Self>, model: &str) -> Result<(), ReloadError> {
         let (this, name) = (Arc::clone(self), model.to_owned());
-        let prepared = crate::background::run_idle(&format!("reload-{model}"), move || this.prepare(&name))
+        let prepared = crate::background::run_background(&format!("reload-{model}"), move || this.prepare(&name))
             .await
             .unwrap_or_else(|e| Err(ReloadError::Failed(format!("{e:#}"))))?;
         let this = Arc::clone(self);
@@ -440,8 +440,8 @@ impl Reloader {
         Ok(())
     }
 
-    /// Read the config again; load, check, warm and self-test the new version (on the idle
-    /// thread; nothing here starts a thread that outlives it).
+    /// Read the config again; load, check, warm and self-test the new version (on the
+    /// background thread; nothing here starts a thread that outlives it).
     fn prepare(&self, model: &str) -> Result<Prepared, ReloadError> {
         let config =
             self.read_config().map_err(|e| ReloadError::Failed(format!("the config no longer reads: {e:#}")))?;

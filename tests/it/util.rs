@@ -409,11 +409,25 @@ pub(crate) fn washer_text_anywhere() -> String {
         .replace("../models/", &format!("{}/", root().join("models").display()))
 }
 
-/// `lineside serve` as a child process in `dir` with `args`, on a free loopback port, its
-/// stderr piped (the caller reads the log); returns it and the port.
-pub(crate) fn serve_child(dir: &Path, args: &[&str]) -> (std::process::Child, u16) {
+/// `lineside serve` as a child process, its stderr read as it comes (a child whose log pipe
+/// filled up would block in its next log line: a server under load logs).
+pub(crate) struct ServeChild {
+    child: std::process::Child,
+    log: std::thread::JoinHandle<String>,
+}
+
+impl std::ops::Deref for ServeChild {
+    type Target = std::process::Child;
+    fn deref(&self) -> &std::process::Child {
+        &self.child
+    }
+}
+
+/// `lineside serve` as a child process in `dir` with `args`, on a free loopback port; returns
+/// it and the port ([`stop_child`] gives its log).
+pub(crate) fn serve_child(dir: &Path, args: &[&str]) -> (ServeChild, u16) {
     let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
-    let child = std::process::Command::new(env!("CARGO_BIN_EXE_lineside"))
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_lineside"))
         .args(args)
         .args(["--listen", &format!("127.0.0.1:{port}")])
         .current_dir(dir)
@@ -421,7 +435,13 @@ pub(crate) fn serve_child(dir: &Path, args: &[&str]) -> (std::process::Child, u1
         .stderr(std::process::Stdio::piped())
         .spawn()
         .unwrap();
-    (child, port)
+    let mut stderr = child.stderr.take().unwrap();
+    let log = std::thread::spawn(move || {
+        let mut bytes = Vec::new();
+        let _ = std::io::Read::read_to_end(&mut stderr, &mut bytes);
+        String::from_utf8_lossy(&bytes).into_owned()
+    });
+    (ServeChild { child, log }, port)
 }
 
 /// Poll `base`/readyz until 200 (bounded at 60 s: a server that never gets ready fails the
@@ -437,13 +457,9 @@ pub(crate) async fn wait_ready_at(base: &str) {
 }
 
 /// SIGTERM `child`, wait for it, and return its exit code and its whole stderr.
-pub(crate) fn stop_child(mut child: std::process::Child) -> (Option<i32>, String) {
+pub(crate) fn stop_child(mut child: ServeChild) -> (Option<i32>, String) {
     let killed = std::process::Command::new("kill").args(["-TERM", &child.id().to_string()]).status().unwrap();
     assert!(killed.success());
-    let status = child.wait().unwrap();
-    let mut log = String::new();
-    if let Some(e) = child.stderr.as_mut() {
-        std::io::Read::read_to_string(e, &mut log).unwrap();
-    }
-    (status.code(), log)
+    let status = child.child.wait().unwrap();
+    (status.code(), child.log.join().unwrap())
 }
