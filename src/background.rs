@@ -52,6 +52,19 @@ pub async fn run_background<T: Send + 'static>(
     }
 }
 
+/// Hand the allocator's free memory back to the system (glibc's `malloc_trim`, which
+/// releases free pages in every arena, not only at a heap's top). Without it, each reload of
+/// a large model left the memory of its load and of the version it replaced resident:
+/// measured with ResNet-18 (46.8 MB of ONNX), 132 MB after start grew to 972 MB after 15
+/// reloads. A no-op off glibc.
+pub fn release_free_memory() {
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    // SAFETY: malloc_trim takes a size and touches only the allocator's own state.
+    unsafe {
+        libc::malloc_trim(0);
+    }
+}
+
 /// The calling thread's nice value (Linux; 0 elsewhere).
 pub fn nice() -> i32 {
     #[cfg(target_os = "linux")]

@@ -484,6 +484,8 @@ impl Reloader {
         {
             return Err(ReloadError::Failed(format!("self-test failed: {}", outcome.failures.join("; "))));
         }
+        // Loading leaves the parse and the planning's intermediate copies freed but resident.
+        crate::background::release_free_memory();
         Ok(Prepared { loaded, selftest, print, stamp })
     }
 
@@ -507,8 +509,15 @@ async fn retire(old: Arc<ServedModel>, guard: BatcherGuard, drain: Duration) {
     while Arc::strong_count(&old) > 1 && tokio::time::Instant::now() < until {
         tokio::time::sleep(Duration::from_millis(20)).await;
     }
+    let model = Arc::downgrade(&old.model);
     drop(guard);
     drop(old);
+    // The lanes end after the pass they are running; the model's memory goes with the last.
+    let until = tokio::time::Instant::now() + drain;
+    while model.strong_count() > 0 && tokio::time::Instant::now() < until {
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+    let _ = crate::background::run_background("reload-trim", crate::background::release_free_memory).await;
 }
 
 fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
