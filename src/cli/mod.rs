@@ -17,8 +17,12 @@ pub const ENGINE_ENV: &str = "LINESIDE_ENGINE";
 /// Environment variable naming the onnxruntime library when the config names none.
 pub const ORT_LIBRARY_ENV: &str = "ORT_DYLIB_PATH";
 
+/// Environment variable naming the config file when no `--config` is given.
+pub const CONFIG_ENV: &str = "LINESIDE_CONFIG";
+
 /// The overrides every subcommand starts from: what the environment says, read here once
-/// (`LINESIDE_ENGINE`, `ORT_DYLIB_PATH`); no other module reads the environment.
+/// (`LINESIDE_ENGINE`, `ORT_DYLIB_PATH`, `LINESIDE_CONFIG`, `LINESIDE_SERVER_*`,
+/// `LINESIDE_MODEL_*`); no other module reads the environment.
 ///
 /// # Errors
 /// `LINESIDE_ENGINE` names no engine (the message lists the allowed ones).
@@ -28,7 +32,16 @@ pub fn base_overrides() -> anyhow::Result<Overrides> {
         _ => EngineKind::Tract,
     };
     let onnxruntime_library = std::env::var_os(ORT_LIBRARY_ENV).filter(|v| !v.is_empty()).map(PathBuf::from);
-    Ok(Overrides { default_engine, onnxruntime_library, ..Overrides::default() })
+    let config_file = std::env::var_os(CONFIG_ENV).filter(|v| !v.is_empty()).map(PathBuf::from);
+    let mut env = Vec::new();
+    for (name, value) in std::env::vars_os() {
+        let Some(name) = name.to_str().filter(|n| crate::config::env::is_config_variable(n)) else { continue };
+        let value = value.into_string().map_err(|_| anyhow::anyhow!("{name}: the value is not UTF-8"))?;
+        env.push((name.to_owned(), value));
+    }
+    // In a stable order, so that an error names the same variable every time.
+    env.sort();
+    Ok(Overrides { default_engine, onnxruntime_library, config_file, env, ..Overrides::default() })
 }
 
 /// The model `name` of `config`, or its only one; `flag` is the option that names a model.
@@ -85,8 +98,9 @@ pub enum Command {
 /// Where the config comes from (shared by every subcommand).
 #[derive(Debug, clap::Args)]
 pub struct ConfigArg {
-    /// Config file (TOML). Default: ./config/lineside.toml if present, else the built-in
-    /// washer demo.
+    /// Config file (TOML). Default: the file LINESIDE_CONFIG names, else
+    /// ./config/lineside.toml if present, else the built-in washer demo. LINESIDE_SERVER_* and
+    /// LINESIDE_MODEL_* variables override its keys (docs/configuration.md).
     #[arg(long, value_name = "FILE")]
     pub config: Option<PathBuf>,
 }

@@ -13,6 +13,7 @@
 
 mod builtin;
 pub mod defaults;
+pub mod env;
 mod raw;
 #[cfg(test)]
 mod tests;
@@ -133,6 +134,11 @@ pub struct Overrides {
     pub default_engine: EngineKind,
     /// The onnxruntime library when the config names none (the CLI reads `ORT_DYLIB_PATH`).
     pub onnxruntime_library: Option<PathBuf>,
+    /// The config file when no `--config` is given (the CLI reads `LINESIDE_CONFIG`).
+    pub config_file: Option<PathBuf>,
+    /// `LINESIDE_SERVER_*` and `LINESIDE_MODEL_*` variables (name, value), applied over the
+    /// file and under the flags ([`env`]).
+    pub env: Vec<(String, String)>,
 }
 
 /// Batching keys set from the command line for every model; checked like the file's.
@@ -156,15 +162,15 @@ impl Overrides {
 }
 
 impl Config {
-    /// Load the config the CLI asks for: `path`, else `./config/lineside.toml` if present,
-    /// else the built-in washer default.
+    /// Load the config the CLI asks for: `path` (`--config`), else `LINESIDE_CONFIG`, else
+    /// `./config/lineside.toml` if present, else the built-in washer default.
     ///
     /// # Errors
     /// An unreadable file, a TOML syntax error or unknown key (with its line), or a value
     /// that fails validation (naming the key).
     pub fn load(path: Option<&Path>, overrides: &Overrides) -> anyhow::Result<Config> {
         let local = Path::new("config/lineside.toml");
-        match path {
+        match path.or(overrides.config_file.as_deref()) {
             Some(p) => Self::from_file(p, overrides),
             None if local.is_file() => Self::from_file(local, overrides),
             None => Self::builtin(overrides),
@@ -203,7 +209,18 @@ impl Config {
         resolve: &dyn Fn(&Path) -> Source,
         overrides: &Overrides,
     ) -> anyhow::Result<Config> {
+        // The file alone first: its own mistakes are named with their line.
         let raw: raw::RawConfig = toml::from_str(text).map_err(|e| anyhow::anyhow!("{origin}: {e}"))?;
+        let raw = if overrides.env.is_empty() {
+            raw
+        } else {
+            let mut table: toml::Table = toml::from_str(text).map_err(|e| anyhow::anyhow!("{origin}: {e}"))?;
+            env::apply(&mut table, &overrides.env)
+                .map_err(|e| anyhow::anyhow!("{origin} with the environment: {e}"))?;
+            toml::Value::Table(table)
+                .try_into()
+                .map_err(|e| anyhow::anyhow!("{origin} with the environment's LINESIDE_ variables: {e}"))?
+        };
         validate::config(raw, origin, resolve, overrides).map_err(|e| anyhow::anyhow!("{origin}: {e}"))
     }
 

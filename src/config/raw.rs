@@ -70,6 +70,24 @@ pub(super) struct RawModel {
     pub(super) watch: bool,
 }
 
+/// The per-model keys the environment may set (`config::env`), each optional: only to check
+/// that a variable's value is one the key takes. The nested ones by their last name.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+#[allow(dead_code)] // read by serde only
+pub(super) struct RawModelKeys {
+    onnx: Option<PathBuf>,
+    labels: Option<PathBuf>,
+    sha256: Option<String>,
+    min_score: Option<f32>,
+    engine: Option<EngineKind>,
+    scores: Option<ScoresMode>,
+    watch: Option<bool>,
+    lanes: Option<RawLanes>,
+    samples: Option<PathBuf>,
+    dir: Option<PathBuf>,
+}
+
 #[derive(Debug, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub(super) struct RawDecision {

@@ -3,8 +3,7 @@
 use super::*;
 
 fn parse(text: &str) -> Result<Config, String> {
-    Config::from_toml(text, "test.toml", &|p| Source::File(PathBuf::from("/base").join(p)), &Overrides::default())
-        .map_err(|e| format!("{e:#}"))
+    parse_env(text, &Overrides::default())
 }
 
 const MINIMAL: &str = r#"
@@ -188,4 +187,81 @@ fn imagenet_statistics_follow_the_channel_order() {
     let p = parse(&crop).unwrap().models[0].preprocess.clone();
     assert_eq!((p.short_side, p.roi), (Some(36), Some(Roi { x: 1, y: 2, w: 3, h: 4 })));
     assert_eq!((p.min_side, p.orientation, p.pad_value), (8, Orientation::Exif, 0));
+}
+
+fn with_env(vars: &[(&str, &str)]) -> Overrides {
+    Overrides { env: vars.iter().map(|(n, v)| ((*n).to_owned(), (*v).to_owned())).collect(), ..Overrides::default() }
+}
+
+fn parse_env(text: &str, o: &Overrides) -> Result<Config, String> {
+    Config::from_toml(text, "test.toml", &|p| Source::File(PathBuf::from("/base").join(p)), o)
+        .map_err(|e| format!("{e:#}"))
+}
+
+#[test]
+fn the_environment_sets_server_keys_over_the_file_and_flags_over_the_environment() {
+    let text = format!(
+        "[server]\ndrain_ms = 5000\nlisten = \"127.0.0.1:7000\"\n{}",
+        &MINIMAL[MINIMAL.find("[[models]]").unwrap()..]
+    );
+    let o = with_env(&[
+        ("LINESIDE_SERVER_DRAIN_MS", "15000"),
+        ("LINESIDE_SERVER_LISTEN", "0.0.0.0:8080"),
+        ("LINESIDE_SERVER_READY_BACKLOG", "0.5"),
+        ("LINESIDE_SERVER_ADMIN_TOKEN_FILE", "secrets/admin.token"),
+    ]);
+    let c = parse_env(&text, &o).unwrap();
+    assert_eq!(c.server.drain, Duration::from_millis(15_000), "environment over file");
+    assert_eq!(c.server.listen.to_string(), "0.0.0.0:8080");
+    assert!((c.server.ready_backlog - 0.5).abs() < 1e-12);
+    // A flag over the environment.
+    let flagged = Overrides { listen: Some("127.0.0.1:9100".into()), ..o };
+    assert_eq!(parse_env(&text, &flagged).unwrap().server.listen.to_string(), "127.0.0.1:9100");
+    // The file alone.
+    assert_eq!(parse_env(&text, &Overrides::default()).unwrap().server.drain, Duration::from_millis(5000));
+}
+
+#[test]
+fn the_environment_sets_a_models_files_and_keys_checked_like_the_file() {
+    let two = format!(
+        "{MINIMAL}\n{}",
+        MINIMAL[MINIMAL.find("[[models]]").unwrap()..].replacen("name = \"m\"", "name = \"m-2\"", 1)
+    );
+    let o = with_env(&[
+        ("LINESIDE_MODEL_M_2_ONNX", "station7/model.onnx"),
+        ("LINESIDE_MODEL_M_2_MIN_SCORE", "0.8"),
+        ("LINESIDE_MODEL_M_2_WATCH", "true"),
+        ("LINESIDE_MODEL_M_2_LANES", "3"),
+        ("LINESIDE_MODEL_M_2_SELFTEST_SAMPLES", "station7/samples"),
+        ("LINESIDE_MODEL_M_SHA256", &"ab".repeat(32)),
+    ]);
+    let c = parse_env(&two, &o).unwrap();
+    let (m, m2) = (c.model("m").unwrap(), c.model("m-2").unwrap());
+    // Paths as if written in the file: relative to its folder.
+    assert_eq!(m2.onnx.display(), "/base/station7/model.onnx");
+    assert_eq!(m2.min_score, Some(0.8));
+    assert!(m2.watch && !m.watch);
+    assert_eq!(m2.batching.lanes, crate::batch::Lanes::Fixed(3));
+    assert_eq!(m2.selftest.as_ref().unwrap().samples.display(), "/base/station7/samples");
+    assert_eq!(m.sha256.as_deref(), Some("ab".repeat(32).as_str()));
+    assert_eq!(m.onnx.display(), "/base/m.onnx", "model m keeps its file");
+}
+
+#[test]
+fn a_variable_that_names_nothing_or_a_wrong_value_is_refused_naming_it() {
+    for (var, value, needle) in [
+        ("LINESIDE_SERVER_DRAIN_SECONDS", "10", "LINESIDE_SERVER_DRAIN_SECONDS: there is no key \"drain_seconds\""),
+        ("LINESIDE_SERVER_DRAIN_MS", "soon", "LINESIDE_SERVER_DRAIN_MS=\"soon\": not a value drain_ms takes"),
+        (
+            "LINESIDE_MODEL_OTHER_ONNX",
+            "x.onnx",
+            "LINESIDE_MODEL_OTHER_ONNX: names no model of the config (its models: LINESIDE_MODEL_M_…)",
+        ),
+        ("LINESIDE_MODEL_M_MINSCORE", "0.5", "model \"m\" has no key \"MINSCORE\""),
+        ("LINESIDE_MODEL_M_MIN_SCORE", "high", "LINESIDE_MODEL_M_MIN_SCORE=\"high\": not a value min_score takes"),
+        ("LINESIDE_MODEL_M_MIN_SCORE", "1.5", "min_score"),
+    ] {
+        let err = parse_env(MINIMAL, &with_env(&[(var, value)])).unwrap_err();
+        assert!(err.contains(needle), "{var}={value}: {err}");
+    }
 }

@@ -78,3 +78,36 @@ fn serve_from_any_folder_answers_and_exits_0_on_sigterm() {
     assert_eq!(code, Some(0), "{log}");
     assert!(log.contains("shutting down"), "{log}");
 }
+
+/// One image, many stations: the real binary takes its config file from LINESIDE_CONFIG, a
+/// model's key and a `[server]` key from LINESIDE_MODEL_* / LINESIDE_SERVER_*, and a flag
+/// beats the environment (the config's listen address, then the environment's, then
+/// `--listen`, which the server answers on); a mistyped variable stops it, naming the variable.
+#[test]
+fn serve_reads_its_config_from_the_environment_under_the_flags() {
+    let dir = temp_dir("serve-env");
+    std::fs::write(dir.join("station.toml"), crate::util::washer_text_anywhere()).unwrap();
+    let config = dir.join("station.toml").display().to_string();
+    let env = [
+        ("LINESIDE_CONFIG", config.as_str()),
+        ("LINESIDE_MODEL_WASHERS_MIN_SCORE", "0.75"),
+        ("LINESIDE_SERVER_LISTEN", "127.0.0.1:1"),
+        ("LINESIDE_SERVER_DEADLINE_MS", "4321"),
+    ];
+    let (child, port) = crate::util::serve_child_with(&dir, &["serve"], &env);
+    let base = format!("http://127.0.0.1:{port}");
+    let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
+    rt.block_on(async {
+        crate::util::wait_ready_at(&base).await;
+        let v: serde_json::Value = reqwest::get(format!("{base}/models/washers")).await.unwrap().json().await.unwrap();
+        assert_eq!(v["min_score"], 0.75, "{v}");
+        let file = v["file"].as_str().unwrap();
+        assert!(file.ends_with("classifier.onnx") && !file.contains("embedded"), "LINESIDE_CONFIG's file: {v}");
+    });
+    let (code, log) = crate::util::stop_child(child);
+    assert_eq!(code, Some(0), "{log}");
+    let out = lineside().arg("check").envs(env).env("LINESIDE_MODEL_WASHERS_MINSCORE", "0.5").output().unwrap();
+    let text = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{text}");
+    assert!(text.contains("LINESIDE_MODEL_WASHERS_MINSCORE") && text.contains("MIN_SCORE"), "{text}");
+}

@@ -426,8 +426,14 @@ impl std::ops::Deref for ServeChild {
 /// `lineside serve` as a child process in `dir` with `args`, on a free loopback port; returns
 /// it and the port ([`stop_child`] gives its log).
 pub(crate) fn serve_child(dir: &Path, args: &[&str]) -> (ServeChild, u16) {
+    serve_child_with(dir, args, &[])
+}
+
+/// As [`serve_child`], with these environment variables set.
+pub(crate) fn serve_child_with(dir: &Path, args: &[&str], env: &[(&str, &str)]) -> (ServeChild, u16) {
     let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
     let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_lineside"))
+        .envs(env.iter().copied())
         .args(args)
         .args(["--listen", &format!("127.0.0.1:{port}")])
         .current_dir(dir)
