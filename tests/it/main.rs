@@ -12,6 +12,7 @@ mod bench;
 mod check;
 mod cli;
 mod decisions;
+mod deploy;
 mod evaluate;
 mod fault;
 mod load;
