@@ -80,11 +80,15 @@ pub fn nice() -> i32 {
     }
 }
 
-/// Raise the calling thread's nice value to [`BACKGROUND_NICE`] (lowering one's own priority
-/// needs no privilege).
+/// Raise the calling thread's nice value to [`BACKGROUND_NICE`], unless it is already that
+/// high (lowering one's own priority needs no privilege).
 fn lower_priority() {
     #[cfg(target_os = "linux")]
     {
+        // A process already started at a lower priority (a unit's `Nice=15`) keeps it.
+        if nice() >= BACKGROUND_NICE {
+            return;
+        }
         // SAFETY: as in `nice`; setpriority changes only this thread.
         let rc = unsafe { libc::setpriority(libc::PRIO_PROCESS, libc::gettid() as libc::id_t, BACKGROUND_NICE) };
         if rc != 0 {

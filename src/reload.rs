@@ -12,6 +12,7 @@
 //! `drain_ms`), and its memory goes with them. A failed reload changes nothing that serves.
 
 use std::collections::BTreeMap;
+use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::Duration;
 
@@ -90,11 +91,38 @@ pub struct Reloader {
     server: String,
     /// Models with `watch = true`, by name.
     watched: Mutex<BTreeMap<String, Watched>>,
+    /// Counts SIGHUPs; a reload prepared before the one that removed its model is not swapped in.
+    generation: AtomicU64,
+    /// Models removed from the config, with the SIGHUP's generation that removed them.
+    removed: Mutex<BTreeMap<String, u64>>,
+}
+
+/// Marks a model's reload as running; the mark goes when this is dropped, however the reload
+/// ends (also when the route's client leaves and its future is dropped).
+struct Running<'a> {
+    reloader: &'a Reloader,
+    model: String,
+}
+
+impl Drop for Running<'_> {
+    fn drop(&mut self) {
+        lock(&self.reloader.running).retain(|m| m != &self.model);
+    }
 }
 
 /// What a watched model's files looked like: each file's path with its length, modification
 /// time and inode (`None` while it cannot be read, e.g. in the middle of a rename).
-type Stamp = Vec<(std::path::PathBuf, Option<(u64, std::time::SystemTime, u64)>)>;
+type Stamp = Vec<(std::path::PathBuf, Option<FileStamp>)>;
+
+/// One file's length, modification time, inode and change time (a rename over it changes
+/// the inode or the change time even when length and modification time repeat).
+type FileStamp = (u64, std::time::SystemTime, u64, i64, i64);
+
+fn file_stamp(path: &std::path::Path) -> Option<FileStamp> {
+    use std::os::unix::fs::MetadataExt as _;
+    let m = std::fs::metadata(path).ok()?;
+    Some((m.len(), m.modified().ok()?, m.ino(), m.ctime(), m.ctime_nsec()))
+}
 
 /// How often watched files are looked at. A change is loaded once it has been seen unchanged
 /// at two looks in a row (it settled for one interval).
@@ -108,20 +136,15 @@ struct Watched {
     loaded: Stamp,
     /// A change seen at the last look, waiting to settle.
     seen: Option<Stamp>,
-    /// The files as they were at the last reload this watch asked for (not asked again for
-    /// files that already failed).
-    tried: Option<Stamp>,
+    /// The files, and the config file, as they were at the last reload this watch asked for
+    /// (not asked again for files that already failed, until they or the config change).
+    tried: Option<(Stamp, Option<FileStamp>)>,
 }
 
 /// The stamp of a model's files on disk (the ONNX file, the labels, each self-test sample);
 /// `None` for a model whose files are compiled in.
 fn stamp(mc: &crate::config::ModelConfig) -> Option<Stamp> {
     use crate::source::Source;
-    fn of(path: &std::path::Path) -> Option<(u64, std::time::SystemTime, u64)> {
-        use std::os::unix::fs::MetadataExt as _;
-        let m = std::fs::metadata(path).ok()?;
-        Some((m.len(), m.modified().ok()?, m.ino()))
-    }
     let Source::File(onnx) = &mc.onnx else { return None };
     let mut files = vec![onnx.clone()];
     if let Some(Source::File(l)) = &mc.labels {
@@ -140,7 +163,7 @@ fn stamp(mc: &crate::config::ModelConfig) -> Option<Stamp> {
         files
             .into_iter()
             .map(|f| {
-                let s = of(&f);
+                let s = file_stamp(&f);
                 (f, s)
             })
             .collect(),
@@ -149,6 +172,8 @@ fn stamp(mc: &crate::config::ModelConfig) -> Option<Stamp> {
 
 /// What a reload prepared at low priority: the new version loaded, checked and self-tested.
 struct Prepared {
+    /// The SIGHUP generation when the config was read.
+    generation: u64,
     loaded: Loaded,
     selftest: Option<crate::selftest::Outcome>,
     print: Option<[u8; 32]>,
@@ -198,6 +223,8 @@ impl Reloader {
                 config.models.iter().filter_map(|m| Some((m.name.clone(), fingerprint(m)?))).collect(),
             ),
             server: format!("{:?}", config.server),
+            generation: AtomicU64::new(0),
+            removed: Mutex::new(BTreeMap::new()),
             watched: Mutex::new(
                 config
                     .models
@@ -223,7 +250,7 @@ impl Reloader {
                 let scan = Arc::clone(&this);
                 let due = tokio::task::spawn_blocking(move || scan.settled_changes()).await.unwrap_or_default();
                 for name in due {
-                    if let Err(ReloadError::Busy(_) | ReloadError::NotServing(_)) =
+                    if let Err(ReloadError::Busy(_) | ReloadError::NotServing(_) | ReloadError::Unknown(_)) =
                         this.reload(&name, Trigger::Watch).await
                     {
                         // Not tried: look again at the next interval.
@@ -238,17 +265,28 @@ impl Reloader {
 
     /// The watched models whose files changed and have settled since the last look.
     fn settled_changes(&self) -> Vec<String> {
+        if !matches!(&*self.ready.borrow(), Readiness::Ready(_)) {
+            return Vec::new(); // loading, failed or draining: nothing to reload into
+        }
+        // Look at the files without holding the lock (a slow mount must not stall reloads).
+        let configs: Vec<_> = lock(&self.watched).iter().map(|(n, w)| (n.clone(), w.config.clone())).collect();
+        let looks: Vec<_> = configs.into_iter().map(|(n, c)| (n, stamp(&c))).collect();
+        let config_file = self.config_path.as_deref().and_then(file_stamp);
         let mut due = Vec::new();
-        for (name, w) in lock(&self.watched).iter_mut() {
-            let Some(now) = stamp(&w.config) else { continue };
+        let mut watched = lock(&self.watched);
+        for (name, now) in looks {
+            let (Some(now), Some(w)) = (now, watched.get_mut(&name)) else { continue };
             if now == w.loaded {
                 w.seen = None;
             } else if w.seen.as_ref() != Some(&now) {
                 w.seen = Some(now);
-            } else if w.tried.as_ref() != Some(&now) {
-                tracing::info!(model = %name, "watched files changed and settled; reloading");
-                w.tried = Some(now);
-                due.push(name.clone());
+            } else {
+                let attempt = (now, config_file);
+                if w.tried.as_ref() != Some(&attempt) {
+                    tracing::info!(model = %name, "watched files changed and settled; reloading");
+                    w.tried = Some(attempt);
+                    due.push(name);
+                }
             }
         }
         due
@@ -258,6 +296,7 @@ impl Reloader {
     /// load models that are new, retire models that are gone; name `[server]` changes that
     /// need a restart. Each model's outcome is logged and shown on `/models/{model}`.
     pub async fn on_hangup(self: &Arc<Self>) {
+        let generation = self.generation.fetch_add(1, Ordering::SeqCst) + 1;
         let config = match self.read_config() {
             Ok(c) => c,
             Err(e) => {
@@ -287,7 +326,18 @@ impl Reloader {
             tracing::error!(cause = %format!("{e:#}"), "SIGHUP: comparing the models' files failed; reloading all");
             config.models.iter().map(|m| m.name.clone()).collect()
         });
+        let mut busy = Vec::new();
         for name in changed {
+            if let Err(ReloadError::Busy(_)) = self.reload(&name, Trigger::Signal).await {
+                busy.push(name);
+            }
+        }
+        // A reload that was running read the config before this signal: once it has ended,
+        // reload again so that what the signal announced is not lost.
+        for name in busy {
+            while lock(&self.running).contains(&name) {
+                tokio::time::sleep(Duration::from_millis(50)).await;
+            }
             let _ = self.reload(&name, Trigger::Signal).await;
         }
         let gone: Vec<String> = match &*self.ready.borrow() {
@@ -295,16 +345,25 @@ impl Reloader {
             _ => Vec::new(),
         };
         for name in gone {
-            self.retire_model(&name);
+            self.retire_model(&name, generation);
         }
     }
 
     /// Stop serving `model` (removed from the config): requests already holding it finish.
-    fn retire_model(&self, model: &str) {
-        let old = self.edit_served(|map| map.remove(model)).ok().flatten();
+    fn retire_model(&self, model: &str, generation: u64) {
+        // The map, the lanes' guards and the removal mark change together, under the map's
+        // lock, so that a reload's swap cannot interleave.
+        let old = self
+            .edit_served(|map| {
+                lock(&self.removed).insert(model.to_owned(), generation);
+                let old = map.remove(model)?;
+                Some((old, lock(&self.guards).remove(model)))
+            })
+            .ok()
+            .flatten();
         lock(&self.fingerprints).remove(model);
         lock(&self.watched).remove(model);
-        if let (Some(old), Some(guard)) = (old, lock(&self.guards).remove(model)) {
+        if let Some((old, Some(guard))) = old {
             tracing::info!(model, "SIGHUP: model removed from the config; it no longer serves");
             self.retire_later(old, guard);
         }
@@ -376,8 +435,17 @@ impl Reloader {
             }
             running.push(model.to_owned());
         }
+        let running = Running { reloader: self, model: model.to_owned() };
         let outcome = self.load_and_swap(model).await;
-        lock(&self.running).retain(|m| m != model);
+        drop(running);
+        let outcome = match outcome {
+            Err(e @ (ReloadError::Unknown(_) | ReloadError::NotServing(_))) => {
+                // Nothing was tried: not a failed reload (not counted, not the model's status).
+                tracing::warn!(model, ?trigger, reason = %e, "reload not done");
+                return Err(e);
+            }
+            other => other,
+        };
         let serving = self.serving_version(model).unwrap_or_default();
         let status = ReloadStatus {
             at: crate::http::access::now(),
@@ -393,9 +461,7 @@ impl Reloader {
             }
         }
         self.metrics.count_reload(model, status.outcome);
-        if !matches!(outcome, Err(ReloadError::Busy(_) | ReloadError::Unknown(_) | ReloadError::NotServing(_))) {
-            lock(&self.status).insert(model.to_owned(), status.clone());
-        }
+        lock(&self.status).insert(model.to_owned(), status.clone());
         outcome.map(|()| status)
     }
 
@@ -416,7 +482,11 @@ impl Reloader {
         let this = Arc::clone(self);
         let (print, stamp, watch, config) =
             (prepared.print, prepared.stamp.clone(), prepared.loaded.config.watch, prepared.loaded.config.clone());
+        let generation = prepared.generation;
         let (new, guard) = tokio::task::spawn_blocking(move || {
+            // Loading left the parse and the planning's copies freed but resident; handed back
+            // here, at ordinary priority (the trim takes the allocator's locks in turn).
+            crate::background::release_free_memory();
             prepared
                 .loaded
                 .start(&this.metrics, this.wrap.as_ref(), prepared.selftest)
@@ -424,7 +494,7 @@ impl Reloader {
         })
         .await
         .unwrap_or_else(|e| Err(ReloadError::Failed(format!("starting the lanes panicked: {e}"))))?;
-        self.swap(model, new, guard)?;
+        self.swap(model, new, guard, generation)?;
         if let Some(p) = print {
             lock(&self.fingerprints).insert(model.to_owned(), p);
         }
@@ -443,6 +513,7 @@ impl Reloader {
     /// Read the config again; load, check, warm and self-test the new version (on the
     /// background thread; nothing here starts a thread that outlives it).
     fn prepare(&self, model: &str) -> Result<Prepared, ReloadError> {
+        let generation = self.generation.load(Ordering::SeqCst);
         let config =
             self.read_config().map_err(|e| ReloadError::Failed(format!("the config no longer reads: {e:#}")))?;
         let mc = config.named(model).map_err(|e| ReloadError::Unknown(format!("{e:#}")))?;
@@ -484,19 +555,31 @@ impl Reloader {
         {
             return Err(ReloadError::Failed(format!("self-test failed: {}", outcome.failures.join("; "))));
         }
-        // Loading leaves the parse and the planning's intermediate copies freed but resident.
-        crate::background::release_free_memory();
-        Ok(Prepared { loaded, selftest, print, stamp })
+        Ok(Prepared { generation, loaded, selftest, print, stamp })
     }
 
-    /// Swap the new version in, in one step; retire the old one once nothing holds it.
-    fn swap(&self, model: &str, new: ServedModel, guard: BatcherGuard) -> Result<(), ReloadError> {
+    /// Swap the new version in, in one step (the map and the lanes' guards together, under the
+    /// map's lock); retire the old one once nothing holds it. Refused when a SIGHUP removed
+    /// the model after this reload read the config.
+    fn swap(&self, model: &str, new: ServedModel, guard: BatcherGuard, generation: u64) -> Result<(), ReloadError> {
         let new = Arc::new(new);
-        // `Some(previous)`: always a change (the new version goes in whether or not one served).
-        let old =
-            self.edit_served(|map| Some(map.insert(model.to_owned(), new))).map_err(ReloadError::NotServing)?.flatten();
-        let old_guard = lock(&self.guards).insert(model.to_owned(), guard);
-        if let (Some(old), Some(old_guard)) = (old, old_guard) {
+        let mut removed = false;
+        let old = self
+            .edit_served(|map| {
+                if lock(&self.removed).get(model).is_some_and(|&g| g > generation) {
+                    removed = true;
+                    return None;
+                }
+                let old = map.insert(model.to_owned(), new);
+                Some((old, lock(&self.guards).insert(model.to_owned(), guard)))
+            })
+            .map_err(ReloadError::NotServing)?;
+        if removed {
+            return Err(ReloadError::Unknown(format!(
+                "model {model:?} was removed from the config while it reloaded; it stays removed"
+            )));
+        }
+        if let Some((Some(old), Some(old_guard))) = old {
             self.retire_later(old, old_guard);
         }
         Ok(())
@@ -517,7 +600,7 @@ async fn retire(old: Arc<ServedModel>, guard: BatcherGuard, drain: Duration) {
     while model.strong_count() > 0 && tokio::time::Instant::now() < until {
         tokio::time::sleep(Duration::from_millis(20)).await;
     }
-    let _ = crate::background::run_background("reload-trim", crate::background::release_free_memory).await;
+    let _ = tokio::task::spawn_blocking(crate::background::release_free_memory).await;
 }
 
 fn lock<T>(m: &Mutex<T>) -> std::sync::MutexGuard<'_, T> {
@@ -567,10 +650,14 @@ mod tests {
         assert!(r.settled_changes().is_empty(), "nothing changed");
         std::fs::write(dir.join("next"), b"second, longer").unwrap();
         std::fs::rename(dir.join("next"), &onnx).unwrap();
+        assert!(r.settled_changes().is_empty() && r.settled_changes().is_empty(), "not serving: nothing to reload");
+        r.ready.send_replace(Readiness::Ready(Arc::new(crate::http::state::Served::new())));
+        std::fs::write(dir.join("next"), b"second, longer").unwrap();
+        std::fs::rename(dir.join("next"), &onnx).unwrap();
         assert!(r.settled_changes().is_empty(), "a change just seen waits one interval");
         assert_eq!(r.settled_changes(), vec!["m".to_owned()], "unchanged at the next look: reload");
         assert!(r.settled_changes().is_empty(), "the same files are not tried twice");
-        std::fs::write(dir.join("next"), b"third").unwrap();
+        std::fs::write(dir.join("next"), b"the third, longest of all").unwrap();
         std::fs::rename(dir.join("next"), &onnx).unwrap();
         assert!(r.settled_changes().is_empty());
         assert_eq!(r.settled_changes(), vec!["m".to_owned()], "new files are tried");

@@ -125,13 +125,18 @@ pub async fn run(
         "listening"
     );
 
-    let Ended { served, failure } =
+    let Ended { loaded, failure } =
         serve_until(&listener, &accept, &mut loaded_rx, &ready_tx, &reloader, shutdown).await;
 
     // Drain: not ready at once, new classify requests refused with `draining`, the listener
-    // still open, until every accepted request is answered or drain_ms passes.
-    if let Some(s) = served {
-        let _ = ready_tx.send(Readiness::Draining(s));
+    // still open, until every accepted request is answered or drain_ms passes. The map
+    // drained is the one serving now (reloads may have replaced the one loaded at start).
+    if loaded {
+        let now = match &*ready_tx.borrow() {
+            Readiness::Ready(s) => Arc::clone(s),
+            _ => Arc::new(Served::new()),
+        };
+        let _ = ready_tx.send(Readiness::Draining(now));
         drain(&listener, &accept, &in_flight, config.server.drain).await;
     }
     // Stops the lanes; anything still queued is answered `draining`. Give those answers a
@@ -158,8 +163,9 @@ pub async fn run(
 
 /// How the serving loop ended.
 struct Ended {
-    /// The models, if they loaded.
-    served: Option<Arc<Served>>,
+    /// Whether the models loaded (the map itself is not kept here: holding it would keep
+    /// every model's first version in memory after a reload replaced it).
+    loaded: bool,
     /// A failed load ends serving at once.
     failure: Option<anyhow::Error>,
 }
@@ -173,7 +179,7 @@ async fn serve_until(
     reloader: &Reloader,
     shutdown: impl Future<Output = ()>,
 ) -> Ended {
-    let mut ended = Ended { served: None, failure: None };
+    let mut ended = Ended { loaded: false, failure: None };
     let mut load_pending = true;
     tokio::pin!(shutdown);
     loop {
@@ -186,7 +192,7 @@ async fn serve_until(
                 load_pending = false;
                 match loaded.unwrap_or_else(|_| Err(anyhow::anyhow!("model loader vanished"))) {
                     Ok(loaded) => {
-                        ended.served = Some(loaded.served.clone());
+                        ended.loaded = true;
                         reloader.adopt(loaded.guards);
                         announce(ready_tx, loaded.served, &loaded.selftest_failures);
                     }

@@ -77,7 +77,9 @@ pub fn run(args: EvaluateArgs) -> anyhow::Result<Outcome> {
         let name = onnx.file_stem().map_or("candidate".into(), |s| s.to_string_lossy().into_owned());
         configs.push(ModelConfig { name, onnx: Source::File(onnx.clone()), selftest: None, ..mc.clone() });
     } else if let Some(path) = &args.against_config {
-        let other = Config::load(Some(path), &overrides)?;
+        // The station's LINESIDE_SERVER_* / LINESIDE_MODEL_* variables describe the serving
+        // model, not the candidate: a variable setting `onnx` would compare the model with itself.
+        let other = Config::load(Some(path), &crate::config::Overrides { env: Vec::new(), ..overrides.clone() })?;
         configs.push(super::pick_model(&other, args.against_model.as_deref(), "--against-model")?.clone());
     }
     let opts =

@@ -2,8 +2,9 @@
 //!
 //! Read once by the CLI ([`crate::cli::base_overrides`]) and applied to the config file's
 //! TOML before it is validated, so that a value from the environment is checked exactly like
-//! the same value written in the file (and a relative path is relative to the file's folder).
-//! Order: the file, then the environment, then the command line's flags.
+//! the same value written in the file (and a relative path is relative to the file's folder;
+//! with the built-in config, to the working folder). Order: the file, then the environment,
+//! then the command line's flags.
 //!
 //! - `LINESIDE_SERVER_<KEY>`: any `[server]` key, upper-cased (`LINESIDE_SERVER_DRAIN_MS=15000`).
 //! - `LINESIDE_MODEL_<MODEL>_<KEY>`: a key of the model named `<MODEL>` (upper-cased, every
@@ -72,32 +73,46 @@ fn apply_model(table: &mut toml::Table, var: &str, rest: &str, value: &str) -> R
     };
     let names: Vec<String> =
         models.iter().filter_map(|m| m.get("name").and_then(toml::Value::as_str)).map(str::to_owned).collect();
-    // The longest model name that fits: `LINE_2_ONNX` is model "line-2" before model "line".
-    let found = names
+    // Every (model, key) reading of the variable: `LINE_MIN_SCORE` is model "line", key
+    // MIN_SCORE, or model "line-min", key SCORE (no such key: not a reading).
+    let readings: Vec<(usize, &String, &(&str, &[&str]))> = names
         .iter()
         .enumerate()
-        .filter(|(_, n)| rest.strip_prefix(&env_name(n)).is_some_and(|k| k.starts_with('_')))
-        .max_by_key(|(_, n)| n.len());
-    let Some((index, model)) = found else {
-        let known: Vec<String> = names.iter().map(|n| format!("{MODEL_PREFIX}{}_…", env_name(n))).collect();
-        return Err(format!("{var}: names no model of the config (its models: {})", known.join(", ")));
-    };
-    let suffix = &rest[env_name(model).len() + 1..];
-    let Some((_, path)) = MODEL_KEYS.iter().find(|(k, _)| *k == suffix) else {
-        let keys: Vec<&str> = MODEL_KEYS.iter().map(|(k, _)| *k).collect();
-        return Err(format!(
-            "{var}: model {model:?} has no key {suffix:?} that the environment can set; the keys are {}",
-            keys.join(", ")
-        ));
+        .filter_map(|(i, n)| {
+            let suffix = rest.strip_prefix(&env_name(n))?.strip_prefix('_')?;
+            Some((i, n, MODEL_KEYS.iter().find(|(k, _)| *k == suffix)?))
+        })
+        .collect();
+    let (index, model, (_, path)) = match readings.as_slice() {
+        [one] => *one,
+        [] => {
+            let known: Vec<String> = names.iter().map(|n| format!("{MODEL_PREFIX}{}_<KEY>", env_name(n))).collect();
+            let keys: Vec<&str> = MODEL_KEYS.iter().map(|(k, _)| *k).collect();
+            return Err(format!(
+                "{var}: names no model of the config with a key the environment can set (the models: {}; the keys: {})",
+                known.join(", "),
+                keys.join(", ")
+            ));
+        }
+        several => {
+            let models: Vec<&str> = several.iter().map(|(_, n, _)| n.as_str()).collect();
+            return Err(format!(
+                "{var}: fits more than one model ({models:?}: their names differ only in characters other than letters \
+                 and digits, or one name extends another); rename one of them in the config"
+            ));
+        }
     };
     let v = typed::<super::raw::RawModelKeys>(var, path[path.len() - 1], value)?;
     let mut at = models[index].as_table_mut().ok_or_else(|| format!("{var}: model {model:?} is not a table"))?;
     for part in &path[..path.len() - 1] {
-        at = at
-            .entry(*part)
-            .or_insert_with(|| toml::Value::Table(toml::Table::new()))
-            .as_table_mut()
-            .ok_or_else(|| format!("{var}: {part} of model {model:?} is not a table"))?;
+        // The environment moves a folder; it does not turn a self-test or retention on.
+        // (`[models.batching]` is all defaults when absent: creating it changes nothing else.)
+        if *part == "batching" {
+            at.entry(*part).or_insert_with(|| toml::Value::Table(toml::Table::new()));
+        }
+        at = at.get_mut(*part).and_then(toml::Value::as_table_mut).ok_or_else(|| {
+            format!("{var}: model {model:?} has no [models.{part}] in the config file; add it there first")
+        })?;
     }
     at.insert(path[path.len() - 1].to_owned(), v);
     Ok(())

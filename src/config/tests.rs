@@ -226,6 +226,7 @@ fn the_environment_sets_a_models_files_and_keys_checked_like_the_file() {
     let two = format!(
         "{MINIMAL}\n{}",
         MINIMAL[MINIMAL.find("[[models]]").unwrap()..].replacen("name = \"m\"", "name = \"m-2\"", 1)
+            + "[models.selftest]\nsamples = \"samples\"\n"
     );
     let o = with_env(&[
         ("LINESIDE_MODEL_M_2_ONNX", "station7/model.onnx"),
@@ -233,6 +234,7 @@ fn the_environment_sets_a_models_files_and_keys_checked_like_the_file() {
         ("LINESIDE_MODEL_M_2_WATCH", "true"),
         ("LINESIDE_MODEL_M_2_LANES", "3"),
         ("LINESIDE_MODEL_M_2_SELFTEST_SAMPLES", "station7/samples"),
+        ("LINESIDE_MODEL_M_MIN_SCORE", "0.5"),
         ("LINESIDE_MODEL_M_SHA256", &"ab".repeat(32)),
     ]);
     let c = parse_env(&two, &o).unwrap();
@@ -245,6 +247,7 @@ fn the_environment_sets_a_models_files_and_keys_checked_like_the_file() {
     assert_eq!(m2.selftest.as_ref().unwrap().samples.display(), "/base/station7/samples");
     assert_eq!(m.sha256.as_deref(), Some("ab".repeat(32).as_str()));
     assert_eq!(m.onnx.display(), "/base/m.onnx", "model m keeps its file");
+    assert_eq!(m.min_score, Some(0.5), "M_MIN_SCORE is model m's, not a key of m-2");
 }
 
 #[test]
@@ -252,16 +255,74 @@ fn a_variable_that_names_nothing_or_a_wrong_value_is_refused_naming_it() {
     for (var, value, needle) in [
         ("LINESIDE_SERVER_DRAIN_SECONDS", "10", "LINESIDE_SERVER_DRAIN_SECONDS: there is no key \"drain_seconds\""),
         ("LINESIDE_SERVER_DRAIN_MS", "soon", "LINESIDE_SERVER_DRAIN_MS=\"soon\": not a value drain_ms takes"),
-        (
-            "LINESIDE_MODEL_OTHER_ONNX",
-            "x.onnx",
-            "LINESIDE_MODEL_OTHER_ONNX: names no model of the config (its models: LINESIDE_MODEL_M_…)",
-        ),
-        ("LINESIDE_MODEL_M_MINSCORE", "0.5", "model \"m\" has no key \"MINSCORE\""),
+        ("LINESIDE_MODEL_OTHER_ONNX", "x.onnx", "LINESIDE_MODEL_OTHER_ONNX: names no model of the config with a key"),
+        ("LINESIDE_MODEL_M_MINSCORE", "0.5", "(the models: LINESIDE_MODEL_M_<KEY>; the keys: ONNX, LABELS"),
+        ("LINESIDE_MODEL_M_RETAIN_DIR", "frames", "model \"m\" has no [models.retain] in the config file"),
+        ("LINESIDE_MODEL_M_SELFTEST_SAMPLES", "s", "model \"m\" has no [models.selftest] in the config file"),
         ("LINESIDE_MODEL_M_MIN_SCORE", "high", "LINESIDE_MODEL_M_MIN_SCORE=\"high\": not a value min_score takes"),
         ("LINESIDE_MODEL_M_MIN_SCORE", "1.5", "min_score"),
     ] {
         let err = parse_env(MINIMAL, &with_env(&[(var, value)])).unwrap_err();
         assert!(err.contains(needle), "{var}={value}: {err}");
     }
+}
+
+#[test]
+fn every_server_key_from_the_environment_equals_the_same_key_in_the_file() {
+    let models = &MINIMAL[MINIMAL.find("[[models]]").unwrap()..];
+    // Every [server] key, with a value other than its default (env text, the file's TOML).
+    for (key, env, toml) in [
+        ("listen", "0.0.0.0:9001", "\"0.0.0.0:9001\""),
+        ("body_limit_bytes", "1000000", "1000000"),
+        ("max_pixels", "1000000", "1000000"),
+        ("decode_threads", "3", "3"),
+        ("decode_backlog", "17", "17"),
+        ("decode_inline_pixels", "0", "0"),
+        ("http_threads", "2", "2"),
+        ("header_timeout_ms", "1234", "1234"),
+        ("drain_ms", "2345", "2345"),
+        ("deadline_ms", "3456", "3456"),
+        ("body_timeout_ms", "4567", "4567"),
+        ("stall_ms", "5678", "5678"),
+        ("ready_backlog", "0.25", "0.25"),
+        ("admin_token_file", "a.token", "\"a.token\""),
+        ("client_token_file", "c.token", "\"c.token\""),
+        ("session_minutes", "5", "5"),
+        ("tls_cert", "tls/s.pem", "\"tls/s.pem\""),
+        ("tls_key", "tls/s.key", "\"tls/s.key\""),
+        ("tls_client_ca", "tls/ca.pem", "\"tls/ca.pem\""),
+    ] {
+        // TLS keys come as a pair at least (certificate and key), in both.
+        let pair: &[(&str, &str)] =
+            if key.starts_with("tls_") { &[("tls_cert", "pair/s.pem"), ("tls_key", "pair/s.key")] } else { &[] };
+        let pair: Vec<_> = pair.iter().filter(|(k, _)| *k != key).collect();
+        let file_pair: String = pair.iter().map(|(k, v)| format!("{k} = \"{v}\"\n")).collect();
+        let from_file = parse(&format!("[server]\n{key} = {toml}\n{file_pair}{models}")).unwrap();
+        let var = format!("LINESIDE_SERVER_{}", key.to_ascii_uppercase());
+        let mut vars: Vec<(String, &str)> = vec![(var.clone(), env)];
+        vars.extend(pair.iter().map(|(k, v)| (format!("LINESIDE_SERVER_{}", k.to_ascii_uppercase()), *v)));
+        let vars: Vec<(&str, &str)> = vars.iter().map(|(k, v)| (k.as_str(), *v)).collect();
+        let from_env = parse_env(MINIMAL, &with_env(&vars)).unwrap_or_else(|e| panic!("{var}: {e}"));
+        assert_eq!(format!("{:?}", from_env.server), format!("{:?}", from_file.server), "{var}");
+        assert_ne!(
+            format!("{:?}", from_env.server),
+            format!("{:?}", parse(MINIMAL).unwrap().server),
+            "{var} changed nothing"
+        );
+    }
+}
+
+#[test]
+fn a_variable_that_fits_two_models_is_refused_and_one_reading_wins_over_none() {
+    let model = |name: &str| {
+        MINIMAL[MINIMAL.find("[[models]]").unwrap()..].replacen("name = \"m\"", &format!("name = \"{name}\""), 1)
+    };
+    // "line" + MIN_SCORE is the only reading ("line-min" has no key SCORE).
+    let text = format!("{}{}", model("line"), model("line-min"));
+    let c = parse_env(&text, &with_env(&[("LINESIDE_MODEL_LINE_MIN_SCORE", "0.6")])).unwrap();
+    assert_eq!((c.model("line").unwrap().min_score, c.model("line-min").unwrap().min_score), (Some(0.6), None));
+    // "press-1" and "press_1" both read as PRESS_1: refused, naming both.
+    let text = format!("{}{}", model("press-1"), model("press_1"));
+    let err = parse_env(&text, &with_env(&[("LINESIDE_MODEL_PRESS_1_MIN_SCORE", "0.6")])).unwrap_err();
+    assert!(err.contains("fits more than one model") && err.contains("press-1") && err.contains("press_1"), "{err}");
 }

@@ -215,5 +215,11 @@ pub async fn reload(
     find(&served, &name)?;
     drop(served);
     let peer = peer.map_or_else(|| "unknown".to_owned(), |axum::Extension(p)| p.0.to_string());
-    Ok(Json(reloader.reload(&name, crate::reload::Trigger::Route { peer }).await?))
+    // On its own task: a client that leaves (or times out) does not cut the reload short.
+    let trigger = crate::reload::Trigger::Route { peer };
+    let done = tokio::spawn(async move { reloader.reload(&name, trigger).await });
+    let status = done
+        .await
+        .map_err(|e| ApiError::new(ErrorKind::Internal, format!("the reload task ended without an answer: {e}")))??;
+    Ok(Json(status))
 }

@@ -92,7 +92,6 @@ fn serve_reads_its_config_from_the_environment_under_the_flags() {
         ("LINESIDE_CONFIG", config.as_str()),
         ("LINESIDE_MODEL_WASHERS_MIN_SCORE", "0.75"),
         ("LINESIDE_SERVER_LISTEN", "127.0.0.1:1"),
-        ("LINESIDE_SERVER_DEADLINE_MS", "4321"),
     ];
     let (child, port) = crate::util::serve_child_with(&dir, &["serve"], &env);
     let base = format!("http://127.0.0.1:{port}");

@@ -53,9 +53,10 @@ fn replace_atomically(target: &Path, bytes: &[u8]) {
     std::fs::rename(&temp, target).unwrap();
 }
 
-/// Sixteen clients posting the washer samples to `url` until `stop` is set (and at least 20
-/// frames each): every answer must be 200 with the sample's label. Each returns the
-/// versions it was answered by, in order.
+/// Sixteen clients posting the washer samples to `url` until `stop` is set, each having sent
+/// at least 20 frames and been answered by a second version (at most 60 s after `stop`, so a
+/// slow box cannot end a client before the swap reaches it): every answer must be 200 with
+/// the sample's label. Each returns the versions it was answered by, in order.
 fn start_clients(url: &str, stop: &Arc<AtomicBool>) -> Vec<tokio::task::JoinHandle<Vec<String>>> {
     let all = Arc::new(samples());
     (0..16)
@@ -65,7 +66,15 @@ fn start_clients(url: &str, stop: &Arc<AtomicBool>) -> Vec<tokio::task::JoinHand
                 let http = reqwest::Client::new();
                 let mut seen = Vec::new();
                 let mut n = 0;
-                while !stop.load(Ordering::Relaxed) || n < 20 {
+                let mut stopped: Option<std::time::Instant> = None;
+                loop {
+                    if stop.load(Ordering::Relaxed) {
+                        let since = *stopped.get_or_insert_with(std::time::Instant::now);
+                        let swapped = seen.first().is_some_and(|f| seen.last() != Some(f));
+                        if n >= 20 && (swapped || since.elapsed() > Duration::from_secs(60)) {
+                            break;
+                        }
+                    }
                     let s = &all[(i + n) % all.len()];
                     let r = http.post(&url).body(s.bytes.clone()).send().await.unwrap();
                     assert_eq!(r.status(), 200, "every request answered 200 through the reload");

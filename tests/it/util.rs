@@ -413,7 +413,17 @@ pub(crate) fn washer_text_anywhere() -> String {
 /// filled up would block in its next log line: a server under load logs).
 pub(crate) struct ServeChild {
     child: std::process::Child,
-    log: std::thread::JoinHandle<String>,
+    log: Option<std::thread::JoinHandle<String>>,
+}
+
+impl Drop for ServeChild {
+    /// A test that fails before [`stop_child`] must not leave the server running.
+    fn drop(&mut self) {
+        if let Ok(None) = self.child.try_wait() {
+            let _ = self.child.kill();
+            let _ = self.child.wait();
+        }
+    }
 }
 
 impl std::ops::Deref for ServeChild {
@@ -447,7 +457,7 @@ pub(crate) fn serve_child_with(dir: &Path, args: &[&str], env: &[(&str, &str)]) 
         let _ = std::io::Read::read_to_end(&mut stderr, &mut bytes);
         String::from_utf8_lossy(&bytes).into_owned()
     });
-    (ServeChild { child, log }, port)
+    (ServeChild { child, log: Some(log) }, port)
 }
 
 /// Poll `base`/readyz until 200 (bounded at 60 s: a server that never gets ready fails the
@@ -467,5 +477,5 @@ pub(crate) fn stop_child(mut child: ServeChild) -> (Option<i32>, String) {
     let killed = std::process::Command::new("kill").args(["-TERM", &child.id().to_string()]).status().unwrap();
     assert!(killed.success());
     let status = child.child.wait().unwrap();
-    (status.code(), child.log.join().unwrap())
+    (status.code(), child.log.take().map(|l| l.join().unwrap()).unwrap_or_default())
 }
