@@ -112,6 +112,7 @@ async fn a_reload_under_load_swaps_versions_without_a_failed_answer() {
     let server = TestServer::start(config).await;
     let c = reqwest::Client::new();
     let old = version_of(&c, &server).await;
+    let before: serde_json::Value = c.get(server.url("/models/washers")).send().await.unwrap().json().await.unwrap();
     let next = dir.join("next.onnx");
     retagged(&dir.join("classifier.onnx"), &next, "v2");
     let stop = Arc::new(AtomicBool::new(false));
@@ -129,6 +130,14 @@ async fn a_reload_under_load_swaps_versions_without_a_failed_answer() {
     let info: serde_json::Value = c.get(server.url("/models/washers")).send().await.unwrap().json().await.unwrap();
     assert_eq!(info["last_reload"]["outcome"], "ok", "{info}");
     assert_eq!(info["last_reload"]["serving"], new.as_str());
+    // A stacking decision calibrated at load (onnxruntime) is kept, not timed again under
+    // load; on tract the engine decides, as before.
+    let (was, now) = (&before["stacking"], &info["stacking"]);
+    if was["decided_by"] == "calibrated" {
+        assert_eq!((&now["decided_by"], &now["stacked"]), (&serde_json::json!("kept"), &was["stacked"]), "{now}");
+    } else {
+        assert_eq!(now, was);
+    }
     let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
     assert_eq!(crate::util::metric(&m, r#"lineside_reloads_total{model="washers",outcome="ok"}"#), 1.0);
     let info_series = m.keys().filter(|k| k.starts_with("lineside_model_info{")).count();
@@ -168,6 +177,30 @@ async fn broken_files_and_a_pin_mismatch_keep_the_old_version_serving() {
     std::fs::write(dir.join("classes.txt"), "good\ncracked\nburr\nno_hole\nempty\nscratched\n").unwrap();
     let m = crate::util::expect_error(reload().await.unwrap(), 422, "reload_failed").await;
     assert!(m.contains("classes") || m.contains("labels"), "{m}");
+    // A failing self-test: the shipped expectations name another label for one sample.
+    std::fs::write(
+        dir.join("classes.txt"),
+        std::fs::read(crate::util::root().join("models/washers/classes.txt")).unwrap(),
+    )
+    .unwrap();
+    let expected_path = dir.join("samples/expected.json");
+    let expected = std::fs::read_to_string(&expected_path).unwrap();
+    let mut wrong: serde_json::Value = serde_json::from_str(&expected).unwrap();
+    let first = wrong.as_object().unwrap().keys().next().unwrap().clone();
+    let label = if wrong[&first]["label"] == "good" { "cracked" } else { "good" };
+    wrong[&first]["label"] = label.into();
+    std::fs::write(&expected_path, wrong.to_string()).unwrap();
+    let m = crate::util::expect_error(reload().await.unwrap(), 422, "reload_failed").await;
+    assert!(m.contains("self-test failed") && m.contains(&first), "{m}");
+    std::fs::write(&expected_path, &expected).unwrap();
+    // A contract that does not fit: the config's entry now says NHWC, the model is NCHW.
+    let text = std::fs::read_to_string(&config_path).unwrap();
+    std::fs::write(&config_path, text.replace("layout = \"nchw\"", "layout = \"nhwc\"")).unwrap();
+    let m = crate::util::expect_error(reload().await.unwrap(), 422, "reload_failed").await;
+    assert!(m.to_lowercase().contains("nhwc") || m.contains("layout"), "{m}");
+    std::fs::write(&config_path, text).unwrap();
+    let m = parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap());
+    assert_eq!(crate::util::metric(&m, r#"lineside_reloads_total{model="washers",outcome="failed"}"#), 5.0, "{m:?}");
     // Throughout: the old version serves and /readyz is 200.
     assert_eq!(version_of(&c, &server).await, old);
     assert_eq!(c.get(server.url("/readyz")).send().await.unwrap().status(), 200);
