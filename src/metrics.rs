@@ -65,6 +65,8 @@ pub struct Metrics {
     retained_frames: IntGaugeVec,
     retained_bytes: IntGaugeVec,
     in_flight: prometheus::IntGauge,
+    connections_open: prometheus::IntGauge,
+    connections_refused: prometheus::IntCounter,
 }
 
 /// One model's retained-frame counters (`lineside_retained_frames_total` by outcome) and the
@@ -225,11 +227,34 @@ impl Metrics {
                 must(r.register(Box::new(gauge.clone())));
                 gauge
             },
+            connections_open: {
+                let gauge = must(prometheus::IntGauge::new("connections_open", "TCP connections open now."));
+                must(r.register(Box::new(gauge.clone())));
+                gauge
+            },
+            connections_refused: {
+                let counter = must(prometheus::IntCounter::new(
+                    "connections_refused_total",
+                    "Connections answered 503 and closed because max_connections were open.",
+                ));
+                must(r.register(Box::new(counter.clone())));
+                counter
+            },
             registry: r.clone(),
         };
         let build = gauge(&r, "build_info", "Always 1: lineside's version.", &["version"]);
         build.with_label_values(&[env!("CARGO_PKG_VERSION")]).set(1);
         m
+    }
+
+    /// Connections open now (the accept loop's count).
+    pub fn set_connections_open(&self, n: usize) {
+        self.connections_open.set(n as i64);
+    }
+
+    /// One connection refused for `max_connections`.
+    pub fn count_connection_refused(&self) {
+        self.connections_refused.inc();
     }
 
     /// Set the in-flight gauge (the HTTP side reads its count when scraped).

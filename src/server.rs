@@ -83,20 +83,33 @@ pub async fn run(
     state.reloader = Some(Arc::clone(&reloader));
     let in_flight = Arc::clone(&state.in_flight);
     let app = crate::http::router(state);
+    let connections = Connections::new(config.server.max_connections, metrics.clone());
     let mut loaded_rx = spawn_loader(config.clone(), ready_tx.clone(), metrics, options);
     let hangups = spawn_hangup_handler(hangup_signal, Arc::clone(&access), Arc::clone(&reloader));
     let watcher = reloader.spawn_watcher();
 
     let mut builder = Builder::new(TokioExecutor::new());
-    builder.http1().timer(TokioTimer::new()).header_read_timeout(config.server.header_timeout);
+    builder
+        .http1()
+        .timer(TokioTimer::new())
+        .header_read_timeout(config.server.header_timeout)
+        // The parser's buffer: a request line and headers beyond it get hyper's own 431 (no
+        // body) and a close; up to it, the router answers 431 in the API's error shape.
+        .max_buf_size(header_buffer(config.server.max_header_bytes));
+    builder.http2().max_header_list_size(u32::try_from(config.server.max_header_bytes).unwrap_or(u32::MAX));
     let graceful = GracefulShutdown::new();
     let handshake_timeout = config.server.header_timeout;
     let accept = |stream: tokio::net::TcpStream, peer: SocketAddr| {
         let _ = stream.set_nodelay(true);
         let tls = access.tls().map(|t| t.acceptor());
+        let Some(slot) = connections.open() else {
+            tokio::spawn(refuse_connection(stream, tls.is_some(), handshake_timeout));
+            return;
+        };
         let svc = connection_service(app.clone(), peer, tls.is_some());
         let (builder, watcher) = (builder.clone(), graceful.watcher());
         tokio::spawn(async move {
+            let _slot = slot;
             let ended = match tls {
                 None => {
                     watcher.watch(builder.serve_connection_with_upgrades(TokioIo::new(stream), svc).into_owned()).await
@@ -157,6 +170,84 @@ pub async fn run(
         None => {
             tracing::info!("stopped");
             Ok(())
+        }
+    }
+}
+
+/// The connections open now, bounded by `max_connections`.
+struct Connections {
+    open: Arc<std::sync::atomic::AtomicUsize>,
+    max: usize,
+    metrics: Metrics,
+}
+
+/// One open connection's place; given back when dropped (the connection's task ends).
+struct Slot {
+    open: Arc<std::sync::atomic::AtomicUsize>,
+    metrics: Metrics,
+}
+
+impl Connections {
+    fn new(max: usize, metrics: Metrics) -> Connections {
+        Connections { open: Arc::new(std::sync::atomic::AtomicUsize::new(0)), max, metrics }
+    }
+
+    /// A place for one more connection, or `None` when `max` are open (counted as refused).
+    fn open(&self) -> Option<Slot> {
+        use std::sync::atomic::Ordering;
+        // Only the accept loop takes places, so a load and an add cannot overshoot.
+        let now = self.open.load(Ordering::SeqCst);
+        if now >= self.max {
+            self.metrics.count_connection_refused();
+            return None;
+        }
+        self.open.fetch_add(1, Ordering::SeqCst);
+        self.metrics.set_connections_open(now + 1);
+        Some(Slot { open: Arc::clone(&self.open), metrics: self.metrics.clone() })
+    }
+}
+
+impl Drop for Slot {
+    fn drop(&mut self) {
+        let now = self.open.fetch_sub(1, std::sync::atomic::Ordering::SeqCst) - 1;
+        self.metrics.set_connections_open(now);
+    }
+}
+
+/// The parser buffer for requests whose line and headers may take `max_header_bytes`: room
+/// for them and some of the body (hyper's own minimum is 8 KiB).
+fn header_buffer(max_header_bytes: usize) -> usize {
+    (max_header_bytes + 64 * 1024).max(8192)
+}
+
+/// A connection beyond `max_connections`: plain HTTP gets a 503 in the API's error shape
+/// with `Retry-After` and a close; on the HTTPS port the connection is closed (answering
+/// would take a handshake, the work the limit is there to bound).
+async fn refuse_connection(mut stream: tokio::net::TcpStream, tls: bool, timeout: std::time::Duration) {
+    use tokio::io::AsyncWriteExt as _;
+    if !tls {
+        let body = serde_json::json!({"error": {
+            "kind": crate::http::error::ErrorKind::TooManyConnections.as_str(),
+            "message": "server.max_connections connections are open; retry shortly, or close idle connections",
+        }})
+        .to_string();
+        let answer = format!(
+            "HTTP/1.1 503 Service Unavailable\r\ncontent-type: application/json\r\nretry-after: 1\r\nconnection: close\r\n\
+             content-length: {}\r\n\r\n{body}",
+            body.len()
+        );
+        let _ = tokio::time::timeout(timeout, stream.write_all(answer.as_bytes())).await;
+    }
+    let _ = stream.shutdown().await;
+    // Read what the client already sent (a bounded amount, briefly): closing with unread bytes
+    // resets the connection, and a reset can discard the answer before the client reads it.
+    let mut sink = [0u8; 8192];
+    let until = tokio::time::Instant::now() + timeout.min(std::time::Duration::from_secs(1));
+    let mut read = 0;
+    while read < 256 * 1024 {
+        match tokio::time::timeout_at(until, tokio::io::AsyncReadExt::read(&mut stream, &mut sink)).await {
+            Ok(Ok(n)) if n > 0 => read += n,
+            _ => break,
         }
     }
 }
@@ -250,6 +341,7 @@ fn app_state(
         stall: s.stall,
         ready_backlog: s.ready_backlog,
         decode_inline_pixels: s.decode_inline_pixels,
+        max_header_bytes: s.max_header_bytes,
     };
     Ok(AppState {
         readiness,

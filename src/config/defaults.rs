@@ -16,6 +16,11 @@ pub const BODY_TIMEOUT_MS: u64 = 10_000;
 pub const STALL_MS: u64 = 30_000;
 /// `[server] ready_backlog`.
 pub const READY_BACKLOG: f64 = 0.9;
+/// `[server] max_connections`: connections open at once (a line's cameras and PCs need a
+/// few dozen; the rest is room for clients that reconnect).
+pub const MAX_CONNECTIONS: usize = 1024;
+/// `[server] max_header_bytes`: a request's line and headers together.
+pub const MAX_HEADER_BYTES: usize = 16 * 1024;
 /// `[server] drain_ms`.
 pub const DRAIN_MS: u64 = 10_000;
 /// `[server] decode_backlog`.

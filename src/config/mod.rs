@@ -79,6 +79,10 @@ pub struct ServerConfig {
     pub stall: Duration,
     /// `/readyz` turns 503 when a model's backlog holds this share of its size or more.
     pub ready_backlog: f64,
+    /// Connections open at once; one more is answered 503 and closed.
+    pub max_connections: usize,
+    /// Largest request line and headers together; larger gets 431.
+    pub max_header_bytes: usize,
     /// Tokens, page sessions and TLS (docs/security.md).
     pub access: AccessConfig,
 }

@@ -41,6 +41,8 @@ pub(super) struct RawServer {
     pub(super) body_timeout_ms: Option<u64>,
     pub(super) stall_ms: Option<u64>,
     pub(super) ready_backlog: Option<f64>,
+    pub(super) max_connections: Option<usize>,
+    pub(super) max_header_bytes: Option<usize>,
     pub(super) admin_token_file: Option<PathBuf>,
     pub(super) client_token_file: Option<PathBuf>,
     pub(super) session_minutes: Option<u64>,

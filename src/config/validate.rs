@@ -89,7 +89,19 @@ fn server(s: RawServer, resolve: &dyn Fn(&Path) -> Source, overrides: &Overrides
              thread hold it for the whole decode; 0 sends every frame to the decode pool)"
         ));
     }
+    let max_connections = s.max_connections.unwrap_or(defaults::MAX_CONNECTIONS);
+    if !(1..=1 << 20).contains(&max_connections) {
+        return Err(format!("server.max_connections = {max_connections}: expected 1 ..= 1048576"));
+    }
+    let max_header_bytes = s.max_header_bytes.unwrap_or(defaults::MAX_HEADER_BYTES);
+    if !(1024..=1 << 20).contains(&max_header_bytes) {
+        return Err(format!(
+            "server.max_header_bytes = {max_header_bytes}: expected 1024 ..= 1048576 (a request line and its headers)"
+        ));
+    }
     Ok(ServerConfig {
+        max_connections,
+        max_header_bytes,
         listen,
         body_limit_bytes: body_limit as usize,
         max_pixels,

@@ -57,6 +57,10 @@ pub enum ErrorKind {
     Busy,
     /// The new version failed to load, check or self-test; the old one still serves.
     ReloadFailed,
+    /// The request line and headers together exceed `server.max_header_bytes`.
+    HeadersTooLarge,
+    /// `server.max_connections` connections are open: the connection is answered and closed.
+    TooManyConnections,
     /// A fault inside lineside (details in the server log).
     Internal,
 }
@@ -84,6 +88,8 @@ impl ErrorKind {
         ErrorKind::Forbidden,
         ErrorKind::Busy,
         ErrorKind::ReloadFailed,
+        ErrorKind::HeadersTooLarge,
+        ErrorKind::TooManyConnections,
         ErrorKind::Internal,
     ];
 
@@ -106,6 +112,8 @@ impl ErrorKind {
             ErrorKind::Forbidden => StatusCode::FORBIDDEN,
             ErrorKind::Busy => StatusCode::CONFLICT,
             ErrorKind::ReloadFailed => StatusCode::UNPROCESSABLE_ENTITY,
+            ErrorKind::HeadersTooLarge => StatusCode::REQUEST_HEADER_FIELDS_TOO_LARGE,
+            ErrorKind::TooManyConnections => StatusCode::SERVICE_UNAVAILABLE,
             ErrorKind::Internal => StatusCode::INTERNAL_SERVER_ERROR,
         }
     }
@@ -133,6 +141,8 @@ impl ErrorKind {
             ErrorKind::Forbidden => "forbidden",
             ErrorKind::Busy => "busy",
             ErrorKind::ReloadFailed => "reload_failed",
+            ErrorKind::HeadersTooLarge => "headers_too_large",
+            ErrorKind::TooManyConnections => "too_many_connections",
             ErrorKind::Internal => "internal",
         }
     }
@@ -195,7 +205,10 @@ impl IntoResponse for ApiError {
         let body =
             Body { error: Inner { kind: self.kind.as_str(), message: &self.message, details: self.details.as_ref() } };
         let mut resp = (self.kind.status(), Json(body)).into_response();
-        if matches!(self.kind, ErrorKind::Overloaded | ErrorKind::NotReady | ErrorKind::Draining) {
+        if matches!(
+            self.kind,
+            ErrorKind::Overloaded | ErrorKind::NotReady | ErrorKind::Draining | ErrorKind::TooManyConnections
+        ) {
             resp.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from_static("1"));
         }
         if self.kind == ErrorKind::Unauthorized {
@@ -301,6 +314,8 @@ mod tests {
             (ErrorKind::Forbidden, 403, "forbidden"),
             (ErrorKind::Busy, 409, "busy"),
             (ErrorKind::ReloadFailed, 422, "reload_failed"),
+            (ErrorKind::HeadersTooLarge, 431, "headers_too_large"),
+            (ErrorKind::TooManyConnections, 503, "too_many_connections"),
             (ErrorKind::Internal, 500, "internal"),
         ];
         for (kind, status, name) in table {

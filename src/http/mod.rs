@@ -16,7 +16,7 @@ pub mod state;
 use axum::Router;
 use axum::extract::{DefaultBodyLimit, Request};
 use axum::middleware::{self, Next};
-use axum::response::Response;
+use axum::response::{IntoResponse as _, Response};
 use axum::routing::{get, post, put};
 
 use error::{ApiError, ErrorKind, InternalDetail};
@@ -42,6 +42,7 @@ pub fn router(state: AppState) -> Router {
         .fallback(not_found)
         .method_not_allowed_fallback(method_not_allowed)
         .layer(DefaultBodyLimit::max(state.limits.body_limit))
+        .layer(middleware::from_fn_with_state(state.limits.max_header_bytes, limit_headers))
         .layer(middleware::from_fn_with_state(state.request_ids.clone(), request_id))
         .with_state(state)
         .layer(middleware::from_fn(log_internal))
@@ -53,7 +54,6 @@ pub fn router(state: AppState) -> Router {
 pub const OPENAPI: &str = include_str!("openapi.json");
 
 async fn openapi() -> Response {
-    use axum::response::IntoResponse as _;
     ([(axum::http::header::CONTENT_TYPE, "application/json")], OPENAPI).into_response()
 }
 
@@ -108,6 +108,28 @@ async fn request_id(
 }
 
 /// Log the details of internal faults, which the client does not see.
+/// 431 `headers_too_large` for a request whose line and headers, as sent over HTTP/1.1,
+/// exceed `server.max_header_bytes` (heads beyond the parser's buffer never get here: hyper
+/// answers those 431 itself and closes).
+async fn limit_headers(axum::extract::State(max): axum::extract::State<usize>, req: Request, next: Next) -> Response {
+    let size = head_size(&req);
+    if size > max {
+        return ApiError::new(
+            ErrorKind::HeadersTooLarge,
+            format!("the request line and headers take {size} bytes; server.max_header_bytes allows {max}"),
+        )
+        .into_response();
+    }
+    next.run(req).await
+}
+
+/// The bytes of a request's line and headers as HTTP/1.1 writes them.
+fn head_size(req: &Request) -> usize {
+    let line = req.method().as_str().len() + 1 + req.uri().to_string().len() + " HTTP/1.1\r\n".len();
+    let headers: usize = req.headers().iter().map(|(n, v)| n.as_str().len() + 2 + v.len() + 2).sum();
+    line + headers + 2
+}
+
 async fn log_internal(req: Request, next: Next) -> Response {
     let path = req.uri().path().to_owned();
     let resp = next.run(req).await;

@@ -111,6 +111,8 @@ pub struct RequestLimits {
     pub ready_backlog: f64,
     /// `decode_inline_pixels`: frames this small are decoded on the HTTP thread.
     pub decode_inline_pixels: u64,
+    /// `max_header_bytes`: the largest request line and headers together.
+    pub max_header_bytes: usize,
 }
 
 /// A count of classify requests in progress; [`InFlight::enter`] returns a guard that
