@@ -20,7 +20,7 @@ pub const MODEL_PREFIX: &str = "LINESIDE_MODEL_";
 
 /// The per-model keys the environment may set: the variable's suffix and the key's path in
 /// the model's entry.
-pub const MODEL_KEYS: &[(&str, &[&str])] = &[
+pub const MODEL_KEYS: &[ModelKey] = &[
     ("ONNX", &["onnx"]),
     ("LABELS", &["labels"]),
     ("SHA256", &["sha256"]),
@@ -32,6 +32,9 @@ pub const MODEL_KEYS: &[(&str, &[&str])] = &[
     ("SELFTEST_SAMPLES", &["selftest", "samples"]),
     ("RETAIN_DIR", &["retain", "dir"]),
 ];
+
+/// One per-model key: the variable's suffix and the key's path in the model's entry.
+type ModelKey = (&'static str, &'static [&'static str]);
 
 /// Whether an environment variable is one this module reads.
 pub fn is_config_variable(name: &str) -> bool {
@@ -75,7 +78,7 @@ fn apply_model(table: &mut toml::Table, var: &str, rest: &str, value: &str) -> R
         models.iter().filter_map(|m| m.get("name").and_then(toml::Value::as_str)).map(str::to_owned).collect();
     // Every (model, key) reading of the variable: `LINE_MIN_SCORE` is model "line", key
     // MIN_SCORE, or model "line-min", key SCORE (no such key: not a reading).
-    let readings: Vec<(usize, &String, &(&str, &[&str]))> = names
+    let readings: Vec<(usize, &String, &ModelKey)> = names
         .iter()
         .enumerate()
         .filter_map(|(i, n)| {
