@@ -241,10 +241,11 @@ async fn refuse_connection(mut stream: tokio::net::TcpStream, tls: bool, timeout
     let _ = stream.shutdown().await;
     // Read what the client already sent (a bounded amount, briefly): closing with unread bytes
     // resets the connection, and a reset can discard the answer before the client reads it.
-    let mut sink = [0u8; 8192];
+    // A small buffer: a flood of refused connections must stay cheap.
+    let mut sink = [0u8; 1024];
     let until = tokio::time::Instant::now() + timeout.min(std::time::Duration::from_secs(1));
     let mut read = 0;
-    while read < 256 * 1024 {
+    while read < 64 * 1024 {
         match tokio::time::timeout_at(until, tokio::io::AsyncReadExt::read(&mut stream, &mut sink)).await {
             Ok(Ok(n)) if n > 0 => read += n,
             _ => break,

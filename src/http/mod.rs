@@ -125,7 +125,11 @@ async fn limit_headers(axum::extract::State(max): axum::extract::State<usize>, r
 
 /// The bytes of a request's line and headers as HTTP/1.1 writes them.
 fn head_size(req: &Request) -> usize {
-    let line = req.method().as_str().len() + 1 + req.uri().to_string().len() + " HTTP/1.1\r\n".len();
+    // Without formatting the URI (this runs on every request): its parts' lengths.
+    let uri = req.uri();
+    let target = uri.path_and_query().map_or(1, |pq| pq.as_str().len())
+        + uri.authority().map_or(0, |a| a.as_str().len() + uri.scheme_str().map_or(0, |s| s.len() + 3));
+    let line = req.method().as_str().len() + 1 + target + " HTTP/1.1\r\n".len();
     let headers: usize = req.headers().iter().map(|(n, v)| n.as_str().len() + 2 + v.len() + 2).sum();
     line + headers + 2
 }
