@@ -93,16 +93,7 @@ fn step(
                 }
             })
         };
-        let m = loadgen::run_step(
-            &target,
-            bodies,
-            Mode::Open(rate),
-            Duration::from_millis(500),
-            Duration::from_secs_f64(secs),
-            Duration::from_secs(30),
-            &|_| {},
-        )
-        .await;
+        let m = loadgen::bench_step(&target, bodies, Mode::Open(rate), secs).await;
         done.store(true, Ordering::Relaxed);
         reloader.await.unwrap();
         let l = lineside::bench::summarize(&m.samples_us);
@@ -120,17 +111,7 @@ fn bench(model: &str, config: &Path, bodies: &[Bytes], secs: f64, rounds: usize)
     let s = ChildServer::start_exe(Path::new(env!("CARGO_BIN_EXE_lineside")), Some(config), &[])
         .expect("start lineside serve");
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
-    let saturation = rt
-        .block_on(loadgen::run_step(
-            &s.target(model),
-            bodies,
-            Mode::Closed(16),
-            Duration::from_millis(500),
-            Duration::from_secs_f64(secs),
-            Duration::from_secs(30),
-            &|_| {},
-        ))
-        .throughput();
+    let saturation = rt.block_on(loadgen::bench_step(&s.target(model), bodies, Mode::Closed(16), secs)).throughput();
     let rate = saturation / 2.0;
     println!("{model}: saturation {saturation:.0} frames/s (16 closed-loop clients); open loop at {rate:.0} frames/s");
     let rss_before = rss_mb(&s);

@@ -7,7 +7,6 @@
 //! `LINESIDE_BENCH_SECS` sets the step length (default 5).
 
 use std::path::{Path, PathBuf};
-use std::time::Duration;
 
 use axum::body::Bytes;
 use lineside::bench::child::ChildServer;
@@ -34,15 +33,7 @@ fn config(dir: &Path, retain: Option<&Path>) -> PathBuf {
 
 fn throughput(s: &ChildServer, bodies: &[Bytes], secs: f64) -> (f64, u64) {
     let rt = tokio::runtime::Builder::new_current_thread().enable_all().build().unwrap();
-    let m = rt.block_on(loadgen::run_step(
-        &s.target("washers"),
-        bodies,
-        Mode::Closed(16),
-        Duration::from_millis(500),
-        Duration::from_secs_f64(secs),
-        Duration::from_secs(30),
-        &|_| {},
-    ));
+    let m = rt.block_on(loadgen::bench_step(&s.target("washers"), bodies, Mode::Closed(16), secs));
     (m.throughput(), m.errors.values().sum())
 }
 

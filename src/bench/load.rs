@@ -161,6 +161,13 @@ pub async fn get_json(target: &Target, path: &str) -> anyhow::Result<serde_json:
     Ok(serde_json::from_slice(&body)?)
 }
 
+/// A benchmark's step (`benches/`): half a second of warm-up, `secs` recorded, up to 30 s for
+/// the last answers, no progress display.
+pub async fn bench_step(target: &Target, frames: &[Bytes], mode: Mode, secs: f64) -> Measured {
+    let (warmup, grace) = (Duration::from_millis(500), Duration::from_secs(30));
+    run_step(target, frames, mode, warmup, Duration::from_secs_f64(secs), grace, &|_| {}).await
+}
+
 /// Run one step: `warmup` unrecorded, then `duration` recorded; requests due in the recorded
 /// window are waited for (up to `grace` after it) so that none is left out. `progress` is
 /// called about ten times a second with the fraction of the step done.
