@@ -19,7 +19,7 @@ use std::time::{Duration, Instant};
 
 use lineside::config::{Channels, Filter, Layout, Orientation, PreprocessConfig, ResizeMode, defaults};
 use lineside::model::{BatchAxis, Contract, InputType, ScoreTransform};
-use lineside::preprocess::{Pipeline, decode};
+use lineside::preprocess::{DecodeLimits, Pipeline, decode};
 
 /// Median wall time of `f` over `iters` runs after 3 warm-up runs.
 fn median(iters: usize, mut f: impl FnMut()) -> Duration {
@@ -94,6 +94,11 @@ fn pillow(jpeg: &Path, png: &Path) -> Option<serde_json::Value> {
     serde_json::from_slice(&out.stdout).ok()
 }
 
+/// The server's default frame limits.
+fn limits() -> DecodeLimits {
+    DecodeLimits { max_pixels: defaults::MAX_PIXELS, max_decode_bytes: defaults::MAX_DECODE_BYTES }
+}
+
 fn main() {
     // `cargo bench` passes --bench; a filter argument is not supported (the set is small).
     let jpeg_path = root().join("benches/frames/line-1280x1024.jpg");
@@ -104,11 +109,11 @@ fn main() {
 
     let imagenet =
         config(ResizeMode::Crop, Some(256), defaults::IMAGENET_MEAN.to_vec(), defaults::IMAGENET_STD.to_vec());
-    let p224 = Pipeline::new(imagenet, &contract(224), defaults::MAX_PIXELS).unwrap();
+    let p224 = Pipeline::new(imagenet, &contract(224), limits()).unwrap();
     let p96 = Pipeline::new(
         config(ResizeMode::Stretch, None, vec![0.0; 3], vec![1.0; 3]),
         &contract(96),
-        defaults::MAX_PIXELS,
+        limits(),
     )
     .unwrap();
 
@@ -123,7 +128,7 @@ fn main() {
         black_box(image::load_from_memory_with_format(black_box(&jpeg), image::ImageFormat::Jpeg).unwrap());
     });
     // lineside's own JPEG path: header read once by the decoder that decodes, body uncopied.
-    let limits = decode::FrameLimits { max_pixels: defaults::MAX_PIXELS, min_side: 1 };
+    let limits = decode::FrameLimits { max_pixels: defaults::MAX_PIXELS, min_side: 1, max_decode_bytes: u64::MAX };
     let ours = median(n, || {
         let probe = decode::probe(black_box(&jpeg[..]), limits).unwrap();
         black_box(decode::decode(probe, defaults::MAX_PIXELS, Orientation::Exif).unwrap());

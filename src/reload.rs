@@ -528,7 +528,7 @@ impl Reloader {
             .filter(|s| s.model.engine() == mc.engine && s.batching.batch_cap == mc.batching.batch_cap)
             .map(|s| s.model.stacking.clone());
         let opts = LoadOptions {
-            max_pixels: config.server.max_pixels,
+            limits: config.server.decode_limits(),
             models: config.models.len(),
             report: false,
             kept_stacking,

@@ -24,8 +24,8 @@ use crate::selftest;
 /// How a command wants its models loaded.
 #[derive(Debug, Clone)]
 pub struct LoadOptions {
-    /// `[server] max_pixels`: the largest frame the pipeline decodes.
-    pub max_pixels: u64,
+    /// `[server] max_pixels` and `max_decode_bytes`: the frames the pipeline decodes.
+    pub limits: crate::preprocess::DecodeLimits,
     /// Models loaded together, sharing the cores: `lanes = "auto"` gives each its share.
     pub models: usize,
     /// Also build the layer report (`lineside check`).
@@ -37,7 +37,7 @@ pub struct LoadOptions {
 impl LoadOptions {
     /// One model alone on the box, no report, any frame size.
     pub fn single() -> LoadOptions {
-        LoadOptions { max_pixels: u64::MAX, models: 1, report: false, kept_stacking: None }
+        LoadOptions { limits: crate::preprocess::DecodeLimits::NONE, models: 1, report: false, kept_stacking: None }
     }
 }
 
@@ -83,7 +83,7 @@ impl Loaded {
         } else {
             (load::load(&spec).with_context(|| format!("model {name:?}"))?, None)
         };
-        let pipeline = Pipeline::new(mc.preprocess.clone(), &model.contract, opts.max_pixels)
+        let pipeline = Pipeline::new(mc.preprocess.clone(), &model.contract, opts.limits)
             .map_err(|e| anyhow::anyhow!("model {name:?}: {}: {e}", model.file))?;
         let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
         let lanes = match mc.batching.lanes {

@@ -343,6 +343,8 @@ fn app_state(
         ready_backlog: s.ready_backlog,
         decode_inline_pixels: s.decode_inline_pixels,
         max_header_bytes: s.max_header_bytes,
+        max_parts: s.max_parts,
+        max_part_bytes: s.max_part_bytes,
     };
     Ok(AppState {
         readiness,
@@ -552,7 +554,7 @@ fn load_all(config: &Config, metrics: &Metrics, wrap: Option<&StateWrap>) -> any
     let mut guards = Vec::new();
     let mut selftest_failures = Vec::new();
     let opts = LoadOptions {
-        max_pixels: config.server.max_pixels,
+        limits: config.server.decode_limits(),
         models: config.models.len(),
         report: false,
         kept_stacking: None,

@@ -83,7 +83,7 @@ pub fn run(args: EvaluateArgs) -> anyhow::Result<Outcome> {
         configs.push(super::pick_model(&other, args.against_model.as_deref(), "--against-model")?.clone());
     }
     let opts =
-        LoadOptions { max_pixels: config.server.max_pixels, models: configs.len(), report: false, kept_stacking: None };
+        LoadOptions { limits: config.server.decode_limits(), models: configs.len(), report: false, kept_stacking: None };
     let loaded = configs.iter().map(|c| Loaded::load(c, &opts)).collect::<anyhow::Result<Vec<_>>>()?;
     let labels = loaded[0].model.labels.clone();
     if let Some(cand) = loaded.get(1)

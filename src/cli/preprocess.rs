@@ -44,7 +44,7 @@ pub struct PreprocessArgs {
 pub fn run(args: PreprocessArgs) -> anyhow::Result<Outcome> {
     let config = Config::load(args.config.config.as_deref(), &super::base_overrides()?)?;
     let mc = super::pick_model(&config, args.model.as_deref(), "--model")?;
-    let opts = LoadOptions { max_pixels: config.server.max_pixels, ..LoadOptions::single() };
+    let opts = LoadOptions { limits: config.server.decode_limits(), ..LoadOptions::single() };
     let loaded = Loaded::load(mc, &opts)?;
     let (contract, pipeline) = (&loaded.model.contract, &loaded.pipeline);
     let bytes = std::fs::read(&args.image).with_context(|| format!("cannot read {}", args.image.display()))?;

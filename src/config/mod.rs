@@ -57,6 +57,12 @@ pub struct ServerConfig {
     pub body_limit_bytes: usize,
     /// Largest decoded image accepted, in pixels (width x height), checked from the header.
     pub max_pixels: u64,
+    /// Most memory one frame's decode may take, estimated from its header.
+    pub max_decode_bytes: u64,
+    /// Most parts in one multipart request (also at most the model's backlog).
+    pub max_parts: usize,
+    /// Largest part of a multipart request; a larger part gets its own 413 `too_large`.
+    pub max_part_bytes: usize,
     /// Threads that decode and preprocess images (a bounded pool beside the lanes).
     pub decode_threads: usize,
     /// Images waiting for a decode thread before new ones get 503 `overloaded`.
@@ -85,6 +91,13 @@ pub struct ServerConfig {
     pub max_header_bytes: usize,
     /// Tokens, page sessions and TLS (docs/security.md).
     pub access: AccessConfig,
+}
+
+impl ServerConfig {
+    /// The limits every frame's decode runs under.
+    pub fn decode_limits(&self) -> crate::preprocess::DecodeLimits {
+        crate::preprocess::DecodeLimits { max_pixels: self.max_pixels, max_decode_bytes: self.max_decode_bytes }
+    }
 }
 
 /// One model (`[[models]]`).

@@ -69,6 +69,20 @@ fn server(s: RawServer, resolve: &dyn Fn(&Path) -> Source, overrides: &Overrides
     if max_pixels == 0 {
         return Err("server.max_pixels = 0: expected at least 1".into());
     }
+    let max_decode_bytes = s.max_decode_bytes.unwrap_or(defaults::MAX_DECODE_BYTES);
+    if !(1 << 20..=1 << 40).contains(&max_decode_bytes) {
+        return Err(format!(
+            "server.max_decode_bytes = {max_decode_bytes}: expected 1048576 ..= 1099511627776 (1 MiB to 1 TiB)"
+        ));
+    }
+    let max_parts = s.max_parts.unwrap_or(defaults::MAX_PARTS);
+    if !(1..=4096).contains(&max_parts) {
+        return Err(format!("server.max_parts = {max_parts}: expected 1 ..= 4096"));
+    }
+    let max_part_bytes = s.max_part_bytes.unwrap_or(defaults::MAX_PART_BYTES);
+    if max_part_bytes == 0 || max_part_bytes > 1 << 30 {
+        return Err(format!("server.max_part_bytes = {max_part_bytes}: expected 1 ..= 1073741824"));
+    }
     let cores = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1);
     let decode_threads = s.decode_threads.unwrap_or(cores);
     if decode_threads == 0 || decode_threads > 256 {
@@ -105,6 +119,9 @@ fn server(s: RawServer, resolve: &dyn Fn(&Path) -> Source, overrides: &Overrides
         listen,
         body_limit_bytes: body_limit as usize,
         max_pixels,
+        max_decode_bytes,
+        max_parts,
+        max_part_bytes: max_part_bytes as usize,
         decode_threads,
         decode_backlog,
         decode_inline_pixels,

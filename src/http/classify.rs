@@ -9,63 +9,24 @@
 //! runs under its deadline: past it the answer is 504 `deadline`, and a job still queued is
 //! never run.
 
-use std::time::{Duration, Instant};
+use std::time::Instant;
 
 use axum::Json;
 use axum::body::{Body, Bytes};
-use axum::extract::rejection::QueryRejection;
-use axum::extract::{Path, Query, State};
+use axum::extract::{Path, RawQuery, State};
 use axum::http::HeaderMap;
 use axum::response::{IntoResponse, Response};
 use http_body_util::{BodyExt as _, LengthLimitError, Limited};
-use serde::{Deserialize, Serialize};
+use serde::Serialize;
 
 use super::error::{ApiError, ErrorKind};
 use super::multipart;
+use super::request::{self, Ids};
 use super::state::{AppState, ServedModel, find};
 use crate::decision::Verdict;
 use crate::model::top_k;
 use crate::preprocess::pool::CpuPool;
 use crate::retain::{MultipartRef, Reason, Sidecar, TopScore, rfc3339};
-
-/// The request header that may shorten the server's deadline, in milliseconds.
-pub const DEADLINE_HEADER: &str = "x-deadline-ms";
-/// The request header naming the physical part (echoed, and stored with a retained frame).
-pub const PART_ID_HEADER: &str = "x-part-id";
-/// The request header naming the camera that took the frame.
-pub const CAMERA_ID_HEADER: &str = "x-camera-id";
-/// Longest part or camera id.
-pub const MAX_ID_LEN: usize = 64;
-
-/// The part and camera ids a request carries.
-#[derive(Debug, Clone, Default)]
-pub struct Ids {
-    /// `X-Part-Id`.
-    pub part: Option<String>,
-    /// `X-Camera-Id`.
-    pub camera: Option<String>,
-}
-
-/// Read `X-Part-Id` and `X-Camera-Id`: 1 to 64 characters of letters, digits and `-_.:/#`.
-///
-/// # Errors
-/// 400 `bad_request` naming the header and what it may hold.
-pub fn ids(headers: &HeaderMap) -> Result<Ids, ApiError> {
-    let one = |name: &str, shown: &str| -> Result<Option<String>, ApiError> {
-        let Some(v) = headers.get(name) else { return Ok(None) };
-        let ok = v.to_str().ok().filter(|t| {
-            (1..=MAX_ID_LEN).contains(&t.len())
-                && t.bytes().all(|b| b.is_ascii_alphanumeric() || b"-_.:/#".contains(&b))
-        });
-        ok.map(|t| Some(t.to_owned())).ok_or_else(|| {
-            ApiError::new(
-                ErrorKind::BadRequest,
-                format!("{shown}: expected 1 to {MAX_ID_LEN} characters of letters, digits and - _ . : / #"),
-            )
-        })
-    };
-    Ok(Ids { part: one(PART_ID_HEADER, "X-Part-Id")?, camera: one(CAMERA_ID_HEADER, "X-Camera-Id")? })
-}
 
 /// What a frame's retained copy needs to know about its request.
 struct Origin<'a> {
@@ -73,14 +34,6 @@ struct Origin<'a> {
     ids: &'a Ids,
     received: std::time::SystemTime,
     part: Option<(usize, &'a str)>,
-}
-
-/// Query parameters.
-#[derive(Debug, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct Params {
-    /// `?top=K` (1 ..; clamped to the number of labels) or `?top=all`. Default 3.
-    top: Option<String>,
 }
 
 /// One ranked class.
@@ -186,36 +139,8 @@ pub struct MultiAnswer {
 
 use crate::millis as ms;
 
-/// Parse `?top=`: default 3, `all`, or a positive integer clamped to `labels`.
-pub fn parse_top(raw: Option<&str>, labels: usize) -> Result<usize, ApiError> {
-    let k = match raw {
-        None => 3,
-        Some("all") => labels,
-        Some(s) => match s.parse::<usize>() {
-            Ok(0) | Err(_) => {
-                return Err(ApiError::new(
-                    ErrorKind::BadRequest,
-                    format!("top = {s:?}: expected a positive integer or \"all\""),
-                ));
-            }
-            Ok(k) => k,
-        },
-    };
-    Ok(k.min(labels))
-}
-
-/// The request's deadline: the server's `deadline_ms`, shortened by `X-Deadline-Ms`.
-pub fn deadline(headers: &HeaderMap, server: Duration, arrived: Instant) -> Result<Instant, ApiError> {
-    let Some(v) = headers.get(DEADLINE_HEADER) else {
-        return Ok(arrived + server);
-    };
-    let ms = v.to_str().ok().and_then(|s| s.trim().parse::<u64>().ok()).filter(|&ms| ms > 0).ok_or_else(|| {
-        ApiError::new(
-            ErrorKind::BadRequest,
-            format!("X-Deadline-Ms = {v:?}: expected a positive number of milliseconds"),
-        )
-    })?;
-    Ok(arrived + server.min(Duration::from_millis(ms)))
+fn bad_request(message: String) -> ApiError {
+    ApiError::new(ErrorKind::BadRequest, message)
 }
 
 /// The handler.
@@ -224,7 +149,7 @@ pub async fn classify(
     Path(name): Path<String>,
     headers: HeaderMap,
     request_id: Option<axum::Extension<super::RequestId>>,
-    params: Result<Query<Params>, QueryRejection>,
+    RawQuery(query): RawQuery,
     body: Body,
 ) -> Result<Response, ApiError> {
     let arrived = Instant::now();
@@ -241,11 +166,11 @@ pub async fn classify(
     };
     // Counted from here until the answer leaves (or the client goes): the drain waits for it.
     let _in_flight = state.in_flight.enter();
-    let result = match deadline(&headers, state.limits.deadline, arrived) {
-        Err(e) => Err(refuse(&state, body, e).await),
+    let result = match request::deadline(&headers, state.limits.deadline, arrived) {
+        Err(e) => Err(refuse(&state, body, bad_request(e)).await),
         Ok(until) => tokio::time::timeout_at(
             until.into(),
-            answer(&state, m, &headers, params, body, (arrived, until), (&request_id, received)),
+            answer(&state, m, &headers, query.as_deref(), body, (arrived, until), (&request_id, received)),
         )
         .await
         .unwrap_or_else(|_| {
@@ -292,16 +217,15 @@ async fn answer(
     state: &AppState,
     m: &ServedModel,
     headers: &HeaderMap,
-    params: Result<Query<Params>, QueryRejection>,
+    query: Option<&str>,
     body: Body,
     (arrived, until): (Instant, Instant),
     (request_id, received): (&str, std::time::SystemTime),
 ) -> Result<Response, ApiError> {
     // The body first, whatever else is wrong, so that the connection stays usable.
     let body = read_body(state, body).await?;
-    let Query(params) = params.map_err(|e| ApiError::new(ErrorKind::BadRequest, e.body_text()))?;
-    let top = parse_top(params.top.as_deref(), m.model.labels.len())?;
-    let ids = ids(headers)?;
+    let top = request::top(query, m.model.labels.len()).map_err(bad_request)?;
+    let ids = request::ids(headers).map_err(bad_request)?;
     let ids = &ids;
     let content_type = headers.get(axum::http::header::CONTENT_TYPE).and_then(|v| v.to_str().ok()).unwrap_or("");
     let multipart = multipart::boundary(content_type);
@@ -327,13 +251,22 @@ async fn answer(
     };
     let boundary = boundary.map_err(|e| ApiError::new(ErrorKind::BadRequest, e))?;
     let (_, backlog) = m.batcher.depth();
-    let parts = multipart::parse(&body, &boundary, backlog).map_err(|e| ApiError::new(ErrorKind::BadRequest, e))?;
+    let max_parts = state.limits.max_parts.min(backlog);
+    let parts = multipart::parse(&body, &boundary, max_parts).map_err(bad_request)?;
     // Every part goes through the pool, however small (a burst's parts decode in parallel
     // there instead of one after another on the HTTP thread), and joins the backlog at once;
     // answers keep part order.
     let jobs = parts.into_iter().enumerate().map(|(index, part)| async move {
         let origin = Origin { request_id, ids, received, part: Some((index, part.name.as_str())) };
-        let outcome = classify_one(state, m, part.data.clone(), top, (arrived, until), false, &origin).await;
+        let max = state.limits.max_part_bytes;
+        let outcome = if part.data.len() > max {
+            Err(ApiError::new(
+                ErrorKind::TooLarge,
+                format!("part {index} is {} bytes, more than server.max_part_bytes = {max}", part.data.len()),
+            ))
+        } else {
+            classify_one(state, m, part.data.clone(), top, (arrived, until), false, &origin).await
+        };
         let (result, error) = match outcome {
             Ok(c) => (Some(c), None),
             Err(e) => (None, Some(PartError { kind: e.kind.as_str(), message: e.message })),
@@ -448,39 +381,5 @@ fn sidecar(m: &ServedModel, c: &Classified, scores: &[f32], reason: Reason, orig
         kept_because: reason,
         timing_ms: serde_json::to_value(&c.timing_ms).unwrap_or_default(),
         confirmed: None,
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn top_defaults_clamps_and_refuses_zero() {
-        assert_eq!(parse_top(None, 5).unwrap(), 3);
-        assert_eq!(parse_top(None, 2).unwrap(), 2);
-        assert_eq!(parse_top(Some("all"), 5).unwrap(), 5);
-        assert_eq!(parse_top(Some("9"), 5).unwrap(), 5);
-        assert_eq!(parse_top(Some("1"), 5).unwrap(), 1);
-        for bad in ["0", "-1", "two", ""] {
-            let e = parse_top(Some(bad), 5).unwrap_err();
-            assert_eq!(e.kind.as_str(), "bad_request", "{bad}");
-        }
-    }
-
-    #[test]
-    fn deadline_header_may_only_shorten() {
-        let t0 = Instant::now();
-        let server = Duration::from_millis(2000);
-        let mut h = HeaderMap::new();
-        assert_eq!(deadline(&h, server, t0).unwrap(), t0 + server);
-        h.insert(DEADLINE_HEADER, "150".parse().unwrap());
-        assert_eq!(deadline(&h, server, t0).unwrap(), t0 + Duration::from_millis(150));
-        h.insert(DEADLINE_HEADER, "60000".parse().unwrap());
-        assert_eq!(deadline(&h, server, t0).unwrap(), t0 + server);
-        for bad in ["0", "-5", "soon", ""] {
-            h.insert(DEADLINE_HEADER, bad.parse().unwrap());
-            assert_eq!(deadline(&h, server, t0).unwrap_err().kind, ErrorKind::BadRequest, "{bad}");
-        }
     }
 }

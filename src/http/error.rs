@@ -249,7 +249,9 @@ impl From<PreprocessError> for ApiError {
         let kind = match &e {
             PreprocessError::Empty | PreprocessError::BadImage(_) => ErrorKind::BadImage,
             PreprocessError::Unsupported(_) => ErrorKind::UnsupportedFormat,
-            PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. } => ErrorKind::TooLarge,
+            PreprocessError::TooLarge { .. }
+            | PreprocessError::TooLargeUnknown { .. }
+            | PreprocessError::TooCostly { .. } => ErrorKind::TooLarge,
             PreprocessError::TooSmall { .. } => ErrorKind::TooSmall,
             PreprocessError::RoiOutside { .. } => ErrorKind::RoiOutside,
             PreprocessError::Internal(_) => return ApiError::internal(e.to_string()),

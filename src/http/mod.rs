@@ -11,6 +11,7 @@ pub mod error;
 pub mod health;
 pub mod models;
 pub mod multipart;
+pub mod request;
 pub mod state;
 
 use axum::Router;

@@ -8,6 +8,9 @@
 
 use axum::body::Bytes;
 
+/// Longest part name (file name or field name) taken; a longer one refuses the request.
+pub const MAX_NAME_LEN: usize = 255;
+
 /// One part of the body.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Part {
@@ -81,14 +84,19 @@ pub fn parse(body: &Bytes, boundary: &str, max_parts: usize) -> Result<Vec<Part>
         let data_end = find(body, delim.as_bytes(), data_start)
             .ok_or_else(|| format!("multipart part {} is not closed by \"--{boundary}\"", parts.len()))?;
         if parts.len() == max_parts {
-            return Err(format!("more than {max_parts} parts in one request (batching.backlog of the model)"));
+            return Err(format!("more than {max_parts} parts in one request (server.max_parts, and at most the model's batching.backlog)"));
         }
         let headers = String::from_utf8_lossy(&body[head_start..head_end.0]);
         let index = parts.len();
-        parts.push(Part {
-            name: part_name(&headers).unwrap_or_else(|| format!("part-{index}")),
-            data: body.slice(data_start..data_end),
-        });
+        let name = part_name(&headers).unwrap_or_else(|| format!("part-{index}"));
+        // The name is echoed in the answer and kept with a retained frame.
+        if name.len() > MAX_NAME_LEN {
+            return Err(format!(
+                "multipart part {index} has a name of {} bytes: at most {MAX_NAME_LEN} (its filename or name parameter)",
+                name.len()
+            ));
+        }
+        parts.push(Part { name, data: body.slice(data_start..data_end) });
         pos = data_end + delim.len();
     }
     if parts.is_empty() {
@@ -154,5 +162,7 @@ mod tests {
         }
         let many = Bytes::from("--b\r\n\r\nx\r\n".repeat(3) + "--b--");
         assert!(parse(&many, "b", 2).unwrap_err().contains("more than 2 parts"));
+        let long = format!("--b\r\nContent-Disposition: form-data; name=\"{}\"\r\n\r\nx\r\n--b--", "n".repeat(256));
+        assert!(parse(&Bytes::from(long), "b", 2).unwrap_err().contains("name of 256 bytes"));
     }
 }

@@ -113,6 +113,10 @@ pub struct RequestLimits {
     pub decode_inline_pixels: u64,
     /// `max_header_bytes`: the largest request line and headers together.
     pub max_header_bytes: usize,
+    /// `max_parts`: most parts in one multipart request (and at most the model's backlog).
+    pub max_parts: usize,
+    /// `max_part_bytes`: the largest part of a multipart request.
+    pub max_part_bytes: usize,
 }
 
 /// A count of classify requests in progress; [`InFlight::enter`] returns a guard that

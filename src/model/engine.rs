@@ -12,7 +12,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use super::RunError;
+use super::{Input, RunError};
 
 /// Which engine runs a model (`engine = "tract" | "onnxruntime"` in a model's config).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
@@ -66,91 +66,6 @@ impl std::str::FromStr for EngineKind {
             "tract" => Ok(EngineKind::Tract),
             "onnxruntime" => Ok(EngineKind::Onnxruntime),
             other => Err(format!("unknown engine {other:?}: expected \"tract\" or \"onnxruntime\"")),
-        }
-    }
-}
-
-/// One image input, in the element type the model takes.
-#[derive(Debug, Clone, Copy)]
-pub enum Input<'a> {
-    /// Normalised floats.
-    F32(&'a [f32]),
-    /// Raw 8-bit pixels.
-    U8(&'a [u8]),
-}
-
-impl Input<'_> {
-    /// Whether this is the element type `t`.
-    pub fn matches(&self, t: super::InputType) -> bool {
-        matches!((self, t), (Input::F32(_), super::InputType::Float32) | (Input::U8(_), super::InputType::Uint8))
-    }
-
-    /// Values in the input.
-    pub fn len(&self) -> usize {
-        match self {
-            Input::F32(x) => x.len(),
-            Input::U8(x) => x.len(),
-        }
-    }
-
-    /// Whether it has no values.
-    pub fn is_empty(&self) -> bool {
-        self.len() == 0
-    }
-}
-
-impl<'a> From<&'a [f32]> for Input<'a> {
-    fn from(x: &'a [f32]) -> Self {
-        Input::F32(x)
-    }
-}
-
-impl<'a> From<&'a Vec<f32>> for Input<'a> {
-    fn from(x: &'a Vec<f32>) -> Self {
-        Input::F32(x)
-    }
-}
-
-impl<'a> From<&'a Tensor> for Input<'a> {
-    fn from(t: &'a Tensor) -> Self {
-        t.input()
-    }
-}
-
-/// One image's input tensor, owned, in the element type the model takes: a uint8 model's
-/// pixels stay bytes from the decoder to the engine.
-#[derive(Debug, Clone, PartialEq)]
-pub enum Tensor {
-    /// Normalised floats.
-    F32(Vec<f32>),
-    /// Raw 8-bit pixels.
-    U8(Vec<u8>),
-}
-
-impl Tensor {
-    /// Borrowed, for a run.
-    pub fn input(&self) -> Input<'_> {
-        match self {
-            Tensor::F32(x) => Input::F32(x),
-            Tensor::U8(x) => Input::U8(x),
-        }
-    }
-
-    /// Values in the tensor.
-    pub fn len(&self) -> usize {
-        self.input().len()
-    }
-
-    /// Whether it has no values.
-    pub fn is_empty(&self) -> bool {
-        self.len() == 0
-    }
-
-    /// The values as floats (for reports and comparisons; bytes convert exactly).
-    pub fn to_f32(&self) -> Vec<f32> {
-        match self {
-            Tensor::F32(x) => x.clone(),
-            Tensor::U8(x) => x.iter().map(|&v| f32::from(v)).collect(),
         }
     }
 }

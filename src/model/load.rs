@@ -29,7 +29,7 @@ pub struct Spec {
     /// The labels file (`None`: classes named by index, `lineside check model.onnx`).
     pub labels: Option<Source>,
     /// What the config asks of the model's input and output.
-    pub expect: check::Expect,
+    pub expect: super::Expect,
     /// The engine that runs it.
     pub engine: EngineKind,
     /// Where the onnxruntime library comes from, if configured.

@@ -9,6 +9,7 @@
 //! [`Model::runner_with_threads`] once for its own engine state over the shared plan.
 
 pub mod check;
+pub mod contract;
 pub mod engine;
 pub mod labels;
 pub mod load;
@@ -20,8 +21,10 @@ pub mod tract;
 use std::sync::Arc;
 use std::time::Duration;
 
-pub use check::{BatchAxis, Contract, Expect, InputType, Layout, ScoreTransform, ScoresMode};
-pub use engine::{EngineKind, EngineState, Input, Planned, StateWrap, Tensor};
+pub use contract::{
+    BatchAxis, Contract, Expect, Input, InputType, Layout, ScoreTransform, ScoresMode, Tensor, softmax, top_k,
+};
+pub use engine::{EngineKind, EngineState, Planned, StateWrap};
 pub use load::{Library, Spec, StackMode};
 
 /// A loaded, checked and planned model, shared by every lane that serves it.
@@ -271,22 +274,6 @@ impl Runner {
     }
 }
 
-/// Numerically stable softmax.
-pub fn softmax(logits: &[f32]) -> Vec<f32> {
-    let max = logits.iter().copied().fold(f32::NEG_INFINITY, f32::max);
-    let exps: Vec<f32> = logits.iter().map(|&z| (z - max).exp()).collect();
-    let sum: f32 = exps.iter().sum();
-    exps.into_iter().map(|e| e / sum).collect()
-}
-
-/// Indices of the `k` highest scores, highest first (ties keep output order).
-pub fn top_k(scores: &[f32], k: usize) -> Vec<usize> {
-    let mut idx: Vec<usize> = (0..scores.len()).collect();
-    // total_cmp: NaN cannot panic the sort.
-    idx.sort_by(|&a, &b| scores[b].total_cmp(&scores[a]).then(a.cmp(&b)));
-    idx.truncate(k);
-    idx
-}
 
 #[cfg(test)]
 impl Model {

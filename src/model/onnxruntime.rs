@@ -16,7 +16,8 @@ use anyhow::Context as _;
 use ort::session::Session;
 use ort::value::TensorRef;
 
-use super::engine::{EngineKind, EngineState, Input, Planned};
+use super::Input;
+use super::engine::{EngineKind, EngineState, Planned};
 use super::load::Library;
 use super::{Contract, RunError};
 

@@ -15,7 +15,8 @@ use anyhow::Context as _;
 use tract_linalg::multithread::{Executor, multithread_tract_scope};
 use tract_onnx::prelude::*;
 
-use super::engine::{EngineKind, EngineState, Input, Planned};
+use super::Input;
+use super::engine::{EngineKind, EngineState, Planned};
 use super::{InputType, RunError};
 
 /// A concrete plan for one input shape.

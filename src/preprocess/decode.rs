@@ -36,6 +36,9 @@ pub struct FrameLimits {
     pub max_pixels: u64,
     /// Shortest side accepted: shorter is 422 `too_small`.
     pub min_side: u32,
+    /// Most memory one decode may take, estimated from the header ([`decode_bytes`]): more
+    /// is 413 `too_large`.
+    pub max_decode_bytes: u64,
 }
 
 /// What a frame's header says, read once per frame before any pixel is decoded: the format
@@ -51,6 +54,8 @@ pub struct Probe<B: AsRef<[u8]>> {
     pub width: u32,
     /// Height as stored.
     pub height: u32,
+    /// The memory its decode takes at most, estimated from the header ([`decode_bytes`]).
+    pub decode_bytes: u64,
     body: Body<B>,
 }
 
@@ -94,16 +99,56 @@ pub fn probe<B: AsRef<[u8]>>(bytes: B, limits: FrameLimits) -> Result<Probe<B>, 
     let format = image::guess_format(data).map_err(|_| {
         PreprocessError::BadImage("not a recognised image format (expected JPEG, PNG, BMP, TIFF or WebP)".into())
     })?;
-    let (width, height, body) = if format == ImageFormat::Jpeg {
+    let (width, height, per_pixel, body) = if format == ImageFormat::Jpeg {
         let (w, h, decoder) = jpeg_header(bytes)?;
-        (w, h, Body::Jpeg(decoder))
+        let per_pixel = jpeg_bytes_per_pixel(&decoder);
+        (w, h, per_pixel, Body::Jpeg(decoder))
     } else {
-        let (w, h) =
-            reader(data, format, limits.max_pixels).into_dimensions().map_err(|e| classify(e, limits.max_pixels))?;
-        (w, h, Body::Other(bytes))
+        let (w, h, color) = {
+            let decoder =
+                reader(data, format, limits.max_pixels).into_decoder().map_err(|e| classify(e, limits.max_pixels))?;
+            let (w, h) = decoder.dimensions();
+            (w, h, decoder.color_type())
+        };
+        (w, h, bytes_per_pixel(color), Body::Other(bytes))
     };
     check_size(width, height, limits)?;
-    Ok(Probe { format, width, height, body })
+    let decode_bytes = decode_bytes(width, height, per_pixel);
+    if decode_bytes > limits.max_decode_bytes {
+        return Err(PreprocessError::TooCostly { width, height, format, decode_bytes, max: limits.max_decode_bytes });
+    }
+    Ok(Probe { format, width, height, decode_bytes, body })
+}
+
+/// The memory a decode takes at most, from the frame's size and the bytes per pixel its
+/// format and colour type need at the decode's peak ([`bytes_per_pixel`],
+/// [`jpeg_bytes_per_pixel`]). The decoders cannot be interrupted once started, so this is
+/// the one point where a frame that is legal by `max_pixels` but costly (16-bit RGBA, a
+/// progressive JPEG) can still be refused; its time grows with the same bytes.
+pub fn decode_bytes(width: u32, height: u32, per_pixel: u64) -> u64 {
+    (u64::from(width) * u64::from(height)).saturating_mul(per_pixel)
+}
+
+/// Peak bytes per pixel of an `image` decode into the frame lineside keeps: the decoded
+/// image, a second copy when EXIF orientation rotates it, and the plane kept (8-bit levels,
+/// or 4-byte floats per channel from 16-bit samples).
+fn bytes_per_pixel(color: image::ColorType) -> u64 {
+    let decoded = u64::from(color.bytes_per_pixel());
+    let channels = if color.has_color() { 3 } else { 1 };
+    let sample = if color.bytes_per_pixel() / color.channel_count().max(1) >= 2 { 4 } else { 1 };
+    2 * decoded + channels * sample
+}
+
+/// Peak bytes per pixel of a JPEG decode: the output (gray or RGB) and a rotated copy, plus
+/// for a progressive JPEG every component's DCT coefficients (2 bytes each, at full
+/// resolution: an upper bound for subsampled chroma), which it holds until the last scan.
+fn jpeg_bytes_per_pixel<B: AsRef<[u8]>>(decoder: &JpegDecoder<ZCursor<B>>) -> u64 {
+    let gray = matches!(decoder.output_colorspace(), Some(ColorSpace::Luma | ColorSpace::LumaA));
+    let out = if gray { 1 } else { 3 };
+    let info = decoder.info();
+    let progressive = info.as_ref().is_some_and(|i| i.sof.is_progressive());
+    let coefficients = if progressive { 2 * u64::from(info.map_or(3, |i| i.components)) } else { 0 };
+    2 * out + coefficients
 }
 
 /// A JPEG's header, read by the decoder that will decode it.
@@ -171,7 +216,8 @@ fn reader(bytes: &[u8], format: ImageFormat, max_pixels: u64) -> ImageReader<Cur
     let mut lim = Limits::default();
     lim.max_image_width = Some(side);
     lim.max_image_height = Some(side);
-    // 16-bit RGBA is the widest decode target: 8 bytes a pixel, plus decoder scratch.
+    // 16-bit RGBA is the widest decode target: 8 bytes a pixel, plus decoder scratch (a
+    // backstop: `max_decode_bytes` has refused what costs more from the header already).
     lim.max_alloc = Some(max_pixels.saturating_mul(8).saturating_add(64 << 20));
     reader.limits(lim);
     reader

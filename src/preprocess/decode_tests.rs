@@ -4,7 +4,7 @@ use super::*;
 use image::RgbImage;
 
 fn lim(max_pixels: u64) -> FrameLimits {
-    FrameLimits { max_pixels, min_side: 1 }
+    FrameLimits { max_pixels, min_side: 1, max_decode_bytes: u64::MAX }
 }
 
 fn rgb(f: Frame) -> Plane<u8> {
@@ -132,9 +132,9 @@ fn gif_is_recognised_but_unsupported() {
 
 #[test]
 fn side_below_min_side_is_too_small() {
-    let err = decode(&png(40, 7), FrameLimits { max_pixels: 1000, min_side: 8 }, Orientation::Exif).unwrap_err();
+    let err = decode(&png(40, 7), FrameLimits { max_pixels: 1000, min_side: 8, max_decode_bytes: u64::MAX }, Orientation::Exif).unwrap_err();
     assert!(matches!(err, PreprocessError::TooSmall { width: 40, height: 7, min_side: 8 }), "{err:?}");
-    assert!(decode(&png(8, 8), FrameLimits { max_pixels: 1000, min_side: 8 }, Orientation::Exif).is_ok());
+    assert!(decode(&png(8, 8), FrameLimits { max_pixels: 1000, min_side: 8, max_decode_bytes: u64::MAX }, Orientation::Exif).is_ok());
 }
 
 #[test]

@@ -96,6 +96,25 @@ pub enum PreprocessError {
         /// The configured limit.
         min_side: u32,
     },
+    /// Decoding would take more memory than `[server] max_decode_bytes` (from the header).
+    #[error(
+        "decoding this {width}x{height} {format:?} frame takes up to {} MiB of memory, more than \
+         server.max_decode_bytes = {max} ({} MiB); send 8-bit baseline JPEG or PNG, smaller frames, \
+         or raise the limit",
+        decode_bytes.div_ceil(1 << 20), max / (1 << 20)
+    )]
+    TooCostly {
+        /// Width from the header.
+        width: u32,
+        /// Height from the header.
+        height: u32,
+        /// The sniffed format.
+        format: image::ImageFormat,
+        /// The estimate.
+        decode_bytes: u64,
+        /// The configured limit.
+        max: u64,
+    },
     /// The configured region of interest does not fit inside the frame.
     #[error(
         "preprocess.roi = [{}, {}, {}, {}] reaches to ({}, {}), outside the {width}x{height} frame \
@@ -122,7 +141,9 @@ impl PreprocessError {
         match self {
             PreprocessError::Empty | PreprocessError::BadImage(_) => "bad_image",
             PreprocessError::Unsupported(_) => "unsupported_format",
-            PreprocessError::TooLarge { .. } | PreprocessError::TooLargeUnknown { .. } => "too_large",
+            PreprocessError::TooLarge { .. }
+            | PreprocessError::TooLargeUnknown { .. }
+            | PreprocessError::TooCostly { .. } => "too_large",
             PreprocessError::TooSmall { .. } => "too_small",
             PreprocessError::RoiOutside { .. } => "roi_outside",
             PreprocessError::Internal(_) => "internal",
@@ -190,7 +211,7 @@ pub fn geometry(mode: ResizeMode, short_side: Option<u32>, src: (u32, u32), dst:
             let (short, long) = (u64::from(sw.min(sh)), u64::from(sw.max(sh)));
             let new_long = ((s * long) as f64 / short as f64) as u64;
             let (nw, nh) = if sw <= sh { (s, new_long) } else { (new_long, s) };
-            let (nw, nh) = (nw as u32, nh as u32);
+            let (nw, nh) = (u32::try_from(nw).unwrap_or(u32::MAX), u32::try_from(nh).unwrap_or(u32::MAX));
             // nw, nh >= S >= dw for a square input (the model check refuses other crops).
             let x = round_half_even(f64::from(nw.saturating_sub(dw)) / 2.0);
             let y = round_half_even(f64::from(nh.saturating_sub(dh)) / 2.0);
@@ -203,6 +224,20 @@ pub fn geometry(mode: ResizeMode, short_side: Option<u32>, src: (u32, u32), dst:
             Geometry { full_w: nw, full_h: nh, window: whole(nw, nh), left: (dw - nw) / 2, top: (dh - nh) / 2 }
         }
     }
+}
+
+/// The server's limits on one frame (`[server] max_pixels`, `max_decode_bytes`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct DecodeLimits {
+    /// Most pixels.
+    pub max_pixels: u64,
+    /// Most memory one decode may take, estimated from the header.
+    pub max_decode_bytes: u64,
+}
+
+impl DecodeLimits {
+    /// No limit (tools that read the user's own files).
+    pub const NONE: DecodeLimits = DecodeLimits { max_pixels: u64::MAX, max_decode_bytes: u64::MAX };
 }
 
 /// A model's preprocessing, fixed at load from its config and contract.
@@ -222,14 +257,18 @@ impl Pipeline {
     ///
     /// # Errors
     /// Settings that do not fit the model ([`PreprocessConfig::fit`]).
-    pub fn new(cfg: PreprocessConfig, contract: &Contract, max_pixels: u64) -> Result<Pipeline, String> {
+    pub fn new(cfg: PreprocessConfig, contract: &Contract, limits: DecodeLimits) -> Result<Pipeline, String> {
         cfg.fit(contract)?;
         let mut cfg = cfg.follow_model(contract.channels);
         if contract.input_type == InputType::Uint8 {
             let n = cfg.channels.count();
             (cfg.divisor, cfg.mean, cfg.std) = (1.0, vec![0.0; n], vec![1.0; n]);
         }
-        let limits = FrameLimits { max_pixels, min_side: cfg.min_side };
+        let limits = FrameLimits {
+            max_pixels: limits.max_pixels,
+            min_side: cfg.min_side,
+            max_decode_bytes: limits.max_decode_bytes,
+        };
         let (width, height, layout, input_type) =
             (contract.width, contract.height, contract.layout, contract.input_type);
         Ok(Pipeline { cfg, width, height, layout, input_type, limits })
@@ -325,6 +364,18 @@ impl Pipeline {
             frame
         };
         let g = geometry(c.resize, c.short_side, (frame.width, frame.height), (self.width, self.height));
+        // A centre crop resizes the whole frame first: a long thin frame (8 x 5 000 000 is
+        // within max_pixels) would become billions of pixels. Bounded like the frame itself.
+        let full = u64::from(g.full_w) * u64::from(g.full_h);
+        if full > self.limits.max_pixels {
+            return Err(PreprocessError::TooLargeUnknown {
+                max_pixels: self.limits.max_pixels,
+                detail: format!(
+                    "preprocess.resize = \"crop\" scales the {}x{} frame to {}x{} = {full} pixels before its centre crop",
+                    frame.width, frame.height, g.full_w, g.full_h
+                ),
+            });
+        }
         let resized = resize::resize(&frame, g.full_w, g.full_h, g.window, c.filter)?;
         if (g.window.w, g.window.h) == (self.width, self.height) {
             return Ok(resized);

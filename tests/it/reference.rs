@@ -65,7 +65,7 @@ fn preprocessing_matches_pillow_bilinear_exactly() {
     let m = &cfg.models[0];
     let model = load::load(&m.spec()).unwrap();
     assert_eq!(model.contract.layout, Layout::Nchw);
-    let pipeline = Pipeline::new(m.preprocess.clone(), &model.contract, cfg.server.max_pixels).unwrap();
+    let pipeline = Pipeline::new(m.preprocess.clone(), &model.contract, cfg.server.decode_limits()).unwrap();
     let (mut worst, mut total, mut count) = (0i32, 0i64, 0i64);
     for s in samples() {
         let ours = pipeline.run(&s.bytes).unwrap().tensor.to_f32();
