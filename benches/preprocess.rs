@@ -110,12 +110,8 @@ fn main() {
     let imagenet =
         config(ResizeMode::Crop, Some(256), defaults::IMAGENET_MEAN.to_vec(), defaults::IMAGENET_STD.to_vec());
     let p224 = Pipeline::new(imagenet, &contract(224), limits()).unwrap();
-    let p96 = Pipeline::new(
-        config(ResizeMode::Stretch, None, vec![0.0; 3], vec![1.0; 3]),
-        &contract(96),
-        limits(),
-    )
-    .unwrap();
+    let p96 =
+        Pipeline::new(config(ResizeMode::Stretch, None, vec![0.0; 3], vec![1.0; 3]), &contract(96), limits()).unwrap();
 
     let full224 = median(n, || {
         black_box(p224.run(black_box(&jpeg)).unwrap());

@@ -19,7 +19,10 @@ fn input(u: &mut Unstructured<'_>) -> Result<(Vec<usize>, Tensor)> {
     for _ in 0..rank {
         shape.push(u.int_in_range(0..=3)?);
     }
-    let n: usize = shape.iter().product();
+    // At most 65536 elements (a longer shape's product is skipped, not overflowed).
+    let Some(n) = shape.iter().try_fold(1usize, |n, &d| n.checked_mul(d)).filter(|&n| n <= 1 << 16) else {
+        return Err(arbitrary::Error::IncorrectFormat);
+    };
     let tensor = if u.arbitrary()? {
         Tensor::U8((0..n).map(|_| u.arbitrary()).collect::<Result<_>>()?)
     } else {

@@ -8,9 +8,11 @@
 //! | [`engine`] | the engine alone, for the serving-overhead ratio |
 //! | [`report`] | the steps, the settings tried, the verdict, the table and the JSON |
 //! | [`chart`] | the share of frames slower than each latency, with the budget; SVG and HTML |
+//! | [`abuse`] | the mixed-abuse clients of the soak test and benchmark, each with the answer it must get |
 //!
 //! The command itself (child server, steps, settings tried) is in `cli/bench.rs`.
 
+pub mod abuse;
 pub mod chart;
 pub mod child;
 pub mod drive;

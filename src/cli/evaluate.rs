@@ -82,8 +82,12 @@ pub fn run(args: EvaluateArgs) -> anyhow::Result<Outcome> {
         let other = Config::load(Some(path), &crate::config::Overrides { env: Vec::new(), ..overrides.clone() })?;
         configs.push(super::pick_model(&other, args.against_model.as_deref(), "--against-model")?.clone());
     }
-    let opts =
-        LoadOptions { limits: config.server.decode_limits(), models: configs.len(), report: false, kept_stacking: None };
+    let opts = LoadOptions {
+        limits: config.server.decode_limits(),
+        models: configs.len(),
+        report: false,
+        kept_stacking: None,
+    };
     let loaded = configs.iter().map(|c| Loaded::load(c, &opts)).collect::<anyhow::Result<Vec<_>>>()?;
     let labels = loaded[0].model.labels.clone();
     if let Some(cand) = loaded.get(1)

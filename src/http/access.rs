@@ -73,8 +73,7 @@ pub async fn require_client(State(state): State<AppState>, req: Request, next: N
 /// limit and timeout: a client still sending its frame would otherwise see the connection
 /// close under it (a broken pipe) instead of the 401/403 that says what to fix.
 async fn refuse(state: &AppState, req: Request, e: ApiError) -> Response {
-    let limits = state.limits;
-    let _ = tokio::time::timeout(limits.body_timeout, axum::body::to_bytes(req.into_body(), limits.body_limit)).await;
+    super::discard_body(&state.limits, req.into_body()).await;
     e.into_response()
 }
 

@@ -166,11 +166,20 @@ pub async fn classify(
     };
     // Counted from here until the answer leaves (or the client goes): the drain waits for it.
     let _in_flight = state.in_flight.enter();
+    let body_read = std::sync::atomic::AtomicBool::new(false);
     let result = match request::deadline(&headers, state.limits.deadline, arrived) {
         Err(e) => Err(refuse(&state, body, bad_request(e)).await),
         Ok(until) => tokio::time::timeout_at(
             until.into(),
-            answer(&state, m, &headers, query.as_deref(), body, (arrived, until), (&request_id, received)),
+            answer(
+                &state,
+                m,
+                &headers,
+                query.as_deref(),
+                (body, &body_read),
+                (arrived, until),
+                (&request_id, received),
+            ),
         )
         .await
         .unwrap_or_else(|_| {
@@ -185,13 +194,26 @@ pub async fn classify(
         Err(e) => e.kind.as_str(),
     };
     m.metrics.observe_request(outcome, arrived.elapsed().as_secs_f64());
-    result
+    match result {
+        // The deadline passed while the body was still arriving, or the body broke its size or
+        // time limit: the rest of it is unread, so the connection cannot carry another request. Say so (RFC 9112 section 9.6), so that
+        // the client opens a new one instead of sending its next frame into a closing socket.
+        Err(e)
+            if !body_read.load(std::sync::atomic::Ordering::Relaxed)
+                && matches!(e.kind, ErrorKind::Deadline | ErrorKind::TooLarge | ErrorKind::BodyTimeout) =>
+        {
+            let mut resp = e.into_response();
+            resp.headers_mut().insert(axum::http::header::CONNECTION, axum::http::HeaderValue::from_static("close"));
+            Ok(resp)
+        }
+        other => other,
+    }
 }
 
 /// Answer `e` after reading the body (bounded as always), so that the connection stays
 /// usable for the client's next request instead of being closed under a body in flight.
 async fn refuse(state: &AppState, body: Body, e: ApiError) -> ApiError {
-    let _ = read_body(state, body).await;
+    super::discard_body(&state.limits, body).await;
     e
 }
 
@@ -218,12 +240,15 @@ async fn answer(
     m: &ServedModel,
     headers: &HeaderMap,
     query: Option<&str>,
-    body: Body,
+    (body, body_read): (Body, &std::sync::atomic::AtomicBool),
     (arrived, until): (Instant, Instant),
     (request_id, received): (&str, std::time::SystemTime),
 ) -> Result<Response, ApiError> {
     // The body first, whatever else is wrong, so that the connection stays usable.
-    let body = read_body(state, body).await?;
+    let body = read_body(state, body).await;
+    // Read to its end (or refused by its limits, which end the connection anyway).
+    body_read.store(body.is_ok(), std::sync::atomic::Ordering::Relaxed);
+    let body = body?;
     let top = request::top(query, m.model.labels.len()).map_err(bad_request)?;
     let ids = request::ids(headers).map_err(bad_request)?;
     let ids = &ids;
@@ -323,9 +348,20 @@ async fn classify_one(
     let scored = m.batcher.infer(prepared.tensor, until).await?;
 
     let labels = &m.model.labels;
+    // The load checked that the model gives one score per label; checked again here, so that
+    // the indexing below (indices from top_k, below scores.len()) cannot go out of bounds.
+    if scored.scores.len() != labels.len() {
+        return Err(ApiError::internal(format!(
+            "model {} gave {} scores for {} labels",
+            m.model.name,
+            scored.scores.len(),
+            labels.len()
+        )));
+    }
     let order = top_k(&scored.scores, top);
-    // top >= 1 and labels >= 1 (checked at load), so the order has a first entry.
-    let best = order[0];
+    let Some(&best) = order.first() else {
+        return Err(ApiError::internal(format!("no class ranked: top = {top}, {} labels", labels.len())));
+    };
     let score = scored.scores[best];
     let confident = m.min_score.is_none_or(|min| score >= min);
     m.metrics.observe_prediction(&labels[best]);

@@ -44,6 +44,7 @@ pub fn router(state: AppState) -> Router {
         .method_not_allowed_fallback(method_not_allowed)
         .layer(DefaultBodyLimit::max(state.limits.body_limit))
         .layer(middleware::from_fn_with_state(state.limits.max_header_bytes, limit_headers))
+        .layer(middleware::from_fn(catch_panic))
         .layer(middleware::from_fn_with_state(state.request_ids.clone(), request_id))
         .with_state(state)
         .layer(middleware::from_fn(log_internal))
@@ -67,6 +68,34 @@ async fn not_found(req: Request) -> ApiError {
 
 async fn method_not_allowed(req: Request) -> ApiError {
     ApiError::new(ErrorKind::MethodNotAllowed, format!("{} is not allowed on {}", req.method(), req.uri().path()))
+}
+
+/// Read a refused request's body to its end and drop it chunk by chunk, within the body
+/// limit and timeout (nothing is kept: a refused 16 MiB upload costs no memory), so that the
+/// client reads the answer instead of a connection closed under its upload.
+pub(crate) async fn discard_body(limits: &state::RequestLimits, body: axum::body::Body) {
+    use http_body_util::BodyExt as _;
+    let mut body = http_body_util::Limited::new(body, limits.body_limit);
+    let drain = async { while let Some(Ok(_)) = body.frame().await {} };
+    let _ = tokio::time::timeout(limits.body_timeout, drain).await;
+}
+
+/// A backstop: a handler that panics answers 500 `internal` (logged with the request's id)
+/// instead of cutting the connection without an answer. Request data should never get here:
+/// decodes and inference run under their own guards, and the request path has no `unwrap`
+/// on client data; this catches a bug, not an input.
+async fn catch_panic(req: Request, next: Next) -> Response {
+    match futures_util::FutureExt::catch_unwind(std::panic::AssertUnwindSafe(next.run(req))).await {
+        Ok(resp) => resp,
+        Err(panic) => {
+            let what = panic
+                .downcast_ref::<&str>()
+                .map(|s| (*s).to_owned())
+                .or_else(|| panic.downcast_ref::<String>().cloned())
+                .unwrap_or_else(|| "a panic without a message".into());
+            ApiError::internal(format!("the handler panicked: {what}")).into_response()
+        }
+    }
 }
 
 /// The request id header, taken from the client or generated, and echoed in the answer.

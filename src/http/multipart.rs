@@ -84,7 +84,9 @@ pub fn parse(body: &Bytes, boundary: &str, max_parts: usize) -> Result<Vec<Part>
         let data_end = find(body, delim.as_bytes(), data_start)
             .ok_or_else(|| format!("multipart part {} is not closed by \"--{boundary}\"", parts.len()))?;
         if parts.len() == max_parts {
-            return Err(format!("more than {max_parts} parts in one request (server.max_parts, and at most the model's batching.backlog)"));
+            return Err(format!(
+                "more than {max_parts} parts in one request (server.max_parts, and at most the model's batching.backlog)"
+            ));
         }
         let headers = String::from_utf8_lossy(&body[head_start..head_end.0]);
         let index = parts.len();

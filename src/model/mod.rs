@@ -274,7 +274,6 @@ impl Runner {
     }
 }
 
-
 #[cfg(test)]
 impl Model {
     /// A model over a test engine `plan`: one float input of `input_len` values (1 x 1 x 1 x

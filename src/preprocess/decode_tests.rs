@@ -132,9 +132,21 @@ fn gif_is_recognised_but_unsupported() {
 
 #[test]
 fn side_below_min_side_is_too_small() {
-    let err = decode(&png(40, 7), FrameLimits { max_pixels: 1000, min_side: 8, max_decode_bytes: u64::MAX }, Orientation::Exif).unwrap_err();
+    let err = decode(
+        &png(40, 7),
+        FrameLimits { max_pixels: 1000, min_side: 8, max_decode_bytes: u64::MAX },
+        Orientation::Exif,
+    )
+    .unwrap_err();
     assert!(matches!(err, PreprocessError::TooSmall { width: 40, height: 7, min_side: 8 }), "{err:?}");
-    assert!(decode(&png(8, 8), FrameLimits { max_pixels: 1000, min_side: 8, max_decode_bytes: u64::MAX }, Orientation::Exif).is_ok());
+    assert!(
+        decode(
+            &png(8, 8),
+            FrameLimits { max_pixels: 1000, min_side: 8, max_decode_bytes: u64::MAX },
+            Orientation::Exif
+        )
+        .is_ok()
+    );
 }
 
 #[test]

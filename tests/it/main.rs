@@ -20,4 +20,5 @@ mod preprocess;
 mod reference;
 mod reload;
 mod serve;
+mod soak;
 mod util;

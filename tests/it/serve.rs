@@ -776,3 +776,73 @@ async fn connections_beyond_max_connections_get_503_and_a_freed_place_is_used_ag
     assert!(open >= 1.0, "this scrape's own connection is open: {open}");
     server.stop().await.unwrap();
 }
+
+/// A PNG of `w` x `h` pixels of `color` type (contents: a gradient, so it is not all one level).
+fn png_of(w: u32, h: u32, color: image::ExtendedColorType) -> Vec<u8> {
+    use image::ImageEncoder as _;
+    let bytes = color.bits_per_pixel() as usize / 8;
+    let data: Vec<u8> = (0..w as usize * h as usize * bytes).map(|i| (i * 7 % 251) as u8).collect();
+    let mut png = Vec::new();
+    image::codecs::png::PngEncoder::new(&mut png).write_image(&data, w, h, color).unwrap();
+    png
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn decode_cost_part_size_and_part_count_are_bounded_from_headers() {
+    let app = TestApp::start(washer_config_with(&[
+        ("max_decode_bytes = 536870912", "max_decode_bytes = 1048576"),
+        ("max_parts = 64", "max_parts = 2"),
+        ("max_part_bytes = 8388608", "max_part_bytes = 4000"),
+    ]))
+    .await;
+    // 200 x 200 16-bit RGBA: 40 000 pixels x 28 bytes = 1 120 000 > 1 MiB (the estimate:
+    // 8 bytes decoded, again when rotated, 12 bytes of float plane; src/preprocess/decode.rs).
+    let msg =
+        app.post("/classify/washers", png_of(200, 200, image::ExtendedColorType::Rgba16)).await.error(413, "too_large");
+    assert!(msg.contains("200x200") && msg.contains("max_decode_bytes = 1048576"), "{msg}");
+    // The same size in 8-bit RGB is 9 bytes a pixel (360 000): decoded and answered.
+    assert_eq!(app.post("/classify/washers", png_of(200, 200, image::ExtendedColorType::Rgb8)).await.status, 200);
+
+    let small = gray_png(64, 64);
+    let large = png_of(64, 64, image::ExtendedColorType::Rgb8);
+    assert!(small.len() < 4000 && large.len() > 4000, "{} {}", small.len(), large.len());
+    // A multipart body as RFC 7578 lays it out, one file part per frame.
+    let form = |parts: &[&[u8]]| {
+        let mut body = Vec::new();
+        for (i, p) in parts.iter().enumerate() {
+            body.extend_from_slice(
+                format!("--b0\r\nContent-Disposition: form-data; name=\"p{i}\"; filename=\"f{i}.png\"\r\n\r\n")
+                    .as_bytes(),
+            );
+            body.extend_from_slice(p);
+            body.extend_from_slice(b"\r\n");
+        }
+        body.extend_from_slice(b"--b0--\r\n");
+        body
+    };
+    let multipart = [("content-type", "multipart/form-data; boundary=b0")];
+    // Two parts, one above max_part_bytes: that part gets its own 413, the other its answer.
+    let v = app.send_with("POST", "/classify/washers", &multipart, form(&[&small, &large])).await.json();
+    assert!(v["results"][0]["label"].is_string(), "{v}");
+    assert_eq!(v["results"][1]["error"]["kind"], "too_large", "{v}");
+    assert!(v["results"][1]["error"]["message"].as_str().unwrap().contains("max_part_bytes = 4000"), "{v}");
+    // Three parts: more than max_parts = 2 refuses the request.
+    let three = form(&[&small, &small, &small]);
+    let msg = app.send_with("POST", "/classify/washers", &multipart, three).await.error(400, "bad_request");
+    assert!(msg.contains("more than 2 parts") && msg.contains("server.max_parts"), "{msg}");
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_centre_crop_of_a_long_thin_frame_is_refused_before_it_is_resized() {
+    let app = TestApp::start(washer_config_without_selftest(&[
+        ("max_pixels = 40000000", "max_pixels = 1000000"),
+        ("resize = \"stretch\"", "resize = \"crop\""),
+    ]))
+    .await;
+    // 8 x 20 000 = 160 000 pixels, within max_pixels; the crop's short-side resize would make
+    // it 96 x 240 000 = 23 040 000 pixels before cutting the 96 x 96 centre.
+    let msg = app.post("/classify/washers", gray_png(8, 20_000)).await.error(413, "too_large");
+    assert!(msg.contains("crop") && msg.contains("96x240000"), "{msg}");
+    // A camera-shaped frame through the same crop is answered.
+    assert_eq!(app.post("/classify/washers", gray_png(320, 240)).await.status, 200);
+}
