@@ -6,9 +6,9 @@ pub const LISTEN: &str = "127.0.0.1:8080";
 pub const BODY_LIMIT_BYTES: u64 = 16 * 1024 * 1024;
 /// `[server] max_pixels`: 40 megapixels.
 pub const MAX_PIXELS: u64 = 40_000_000;
-/// `[server] max_decode_bytes`: 512 MiB, enough for a 40-megapixel 8-bit frame in any
-/// format lineside decodes (a PNG's estimate is 9 bytes a pixel, a progressive colour JPEG's
-/// 12), not for 16-bit RGBA at that size (28 bytes a pixel).
+/// `[server] max_decode_bytes`: 512 MiB, enough for a 40-megapixel 8-bit PNG or JPEG (an
+/// RGB PNG's estimate is 9 bytes a pixel, RGBA 11, a colour JPEG's 12), not for 16-bit RGBA
+/// (28) or RGB WebP (17) at that size.
 pub const MAX_DECODE_BYTES: u64 = 512 * 1024 * 1024;
 /// `[server] max_parts`: as many as the default backlog holds.
 pub const MAX_PARTS: usize = 64;

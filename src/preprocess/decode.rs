@@ -99,10 +99,13 @@ pub fn probe<B: AsRef<[u8]>>(bytes: B, limits: FrameLimits) -> Result<Probe<B>, 
     let format = image::guess_format(data).map_err(|_| {
         PreprocessError::BadImage("not a recognised image format (expected JPEG, PNG, BMP, TIFF or WebP)".into())
     })?;
-    let (width, height, per_pixel, body) = if format == ImageFormat::Jpeg {
+    if format == ImageFormat::Tiff {
+        refuse_jpeg_in_tiff(data)?;
+    }
+    let (width, height, decode_bytes, body) = if format == ImageFormat::Jpeg {
         let (w, h, decoder) = jpeg_header(bytes)?;
-        let per_pixel = jpeg_bytes_per_pixel(&decoder);
-        (w, h, per_pixel, Body::Jpeg(decoder))
+        let cost = jpeg_decode_bytes(&decoder, w, h);
+        (w, h, cost, Body::Jpeg(decoder))
     } else {
         let (w, h, color) = {
             let decoder =
@@ -110,10 +113,9 @@ pub fn probe<B: AsRef<[u8]>>(bytes: B, limits: FrameLimits) -> Result<Probe<B>, 
             let (w, h) = decoder.dimensions();
             (w, h, decoder.color_type())
         };
-        (w, h, bytes_per_pixel(color), Body::Other(bytes))
+        (w, h, decode_bytes(w, h, bytes_per_pixel(color, format)), Body::Other(bytes))
     };
     check_size(width, height, limits)?;
-    let decode_bytes = decode_bytes(width, height, per_pixel);
     if decode_bytes > limits.max_decode_bytes {
         return Err(PreprocessError::TooCostly { width, height, format, decode_bytes, max: limits.max_decode_bytes });
     }
@@ -131,24 +133,45 @@ pub fn decode_bytes(width: u32, height: u32, per_pixel: u64) -> u64 {
 
 /// Peak bytes per pixel of an `image` decode into the frame lineside keeps: the decoded
 /// image, a second copy when EXIF orientation rotates it, and the plane kept (8-bit levels,
-/// or 4-byte floats per channel from 16-bit samples).
-fn bytes_per_pixel(color: image::ColorType) -> u64 {
+/// or 4-byte floats per channel from 16-bit samples). WebP adds the canvas and frame buffer
+/// an animated file is composed in (4 bytes each).
+fn bytes_per_pixel(color: image::ColorType, format: ImageFormat) -> u64 {
     let decoded = u64::from(color.bytes_per_pixel());
     let channels = if color.has_color() { 3 } else { 1 };
     let sample = if color.bytes_per_pixel() / color.channel_count().max(1) >= 2 { 4 } else { 1 };
-    2 * decoded + channels * sample
+    let composing = if format == ImageFormat::WebP { 8 } else { 0 };
+    2 * decoded + channels * sample + composing
 }
 
-/// Peak bytes per pixel of a JPEG decode: the output (gray or RGB) and a rotated copy, plus
-/// for a progressive JPEG every component's DCT coefficients (2 bytes each, at full
-/// resolution: an upper bound for subsampled chroma), which it holds until the last scan.
-fn jpeg_bytes_per_pixel<B: AsRef<[u8]>>(decoder: &JpegDecoder<ZCursor<B>>) -> u64 {
+/// Peak bytes of a JPEG decode: the output (gray or RGB) and a rotated copy, 1 or 3 bytes a
+/// pixel each; and for a progressive JPEG, or a colour one whose components may arrive in
+/// separate scans, every component's DCT coefficients (2 bytes each at full resolution, an
+/// upper bound for subsampled chroma), on the frame padded to whole MCUs (at most 32 pixels
+/// a side), held until the last scan.
+fn jpeg_decode_bytes<B: AsRef<[u8]>>(decoder: &JpegDecoder<ZCursor<B>>, width: u32, height: u32) -> u64 {
     let gray = matches!(decoder.output_colorspace(), Some(ColorSpace::Luma | ColorSpace::LumaA));
     let out = if gray { 1 } else { 3 };
     let info = decoder.info();
+    let components = u64::from(info.as_ref().map_or(3, |i| i.components));
     let progressive = info.as_ref().is_some_and(|i| i.sof.is_progressive());
-    let coefficients = if progressive { 2 * u64::from(info.map_or(3, |i| i.components)) } else { 0 };
-    2 * out + coefficients
+    let coefficients = if progressive || components > 1 { 2 * components } else { 0 };
+    let padded = |side: u32| u64::from(side).div_ceil(32) * 32;
+    decode_bytes(width, height, 2 * out).saturating_add((padded(width) * padded(height)).saturating_mul(coefficients))
+}
+
+/// Refuse a TIFF whose strips are JPEG (compression 6 or 7): the embedded JPEG is decoded at
+/// its own size, which the TIFF header does not bound (a header saying 8 x 8 could hold a
+/// 16384 x 16384 JPEG), so neither `max_pixels` nor `max_decode_bytes` would hold.
+fn refuse_jpeg_in_tiff(data: &[u8]) -> Result<(), PreprocessError> {
+    let mut tiff =
+        tiff::decoder::Decoder::new(Cursor::new(data)).map_err(|e| PreprocessError::BadImage(format!("TIFF: {e}")))?;
+    match tiff.find_tag_unsigned::<u32>(tiff::tags::Tag::Compression) {
+        Ok(Some(c @ (6 | 7))) => Err(PreprocessError::Unsupported(format!(
+            "TIFF with JPEG compression ({c}): its embedded JPEG's size is not bound by the TIFF header, so it \
+             is refused; send uncompressed, LZW or Deflate TIFF, or the JPEG itself"
+        ))),
+        _ => Ok(()),
+    }
 }
 
 /// A JPEG's header, read by the decoder that will decode it.

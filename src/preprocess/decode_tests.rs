@@ -276,3 +276,41 @@ fn with_exif_orientation(jpeg: &[u8], o: u16) -> Vec<u8> {
     out.extend_from_slice(&jpeg[2..]);
     out
 }
+
+/// The header's estimate of a decode's memory (`decode_bytes`), per format and colour type,
+/// as docs/configuration.md tabulates it.
+#[test]
+fn decode_cost_is_estimated_from_the_header() {
+    let encode = |color: image::ExtendedColorType, format: image::ImageFormat| {
+        let data = vec![9u8; 10 * 10 * color.bits_per_pixel() as usize / 8];
+        let mut out = Vec::new();
+        image::write_buffer_with_format(&mut Cursor::new(&mut out), &data, 10, 10, color, format).unwrap();
+        out
+    };
+    let cost = |bytes: &[u8]| probe(bytes, lim(1000)).unwrap().decode_bytes;
+    use image::ExtendedColorType as C;
+    // PNG: decoded bytes twice (a rotated copy) + the plane kept (1 a channel, 4 from 16 bits).
+    assert_eq!(cost(&encode(C::Rgb8, image::ImageFormat::Png)), 100 * (2 * 3 + 3));
+    assert_eq!(cost(&encode(C::Rgba8, image::ImageFormat::Png)), 100 * (2 * 4 + 3));
+    assert_eq!(cost(&encode(C::L8, image::ImageFormat::Png)), 100 * (2 + 1));
+    assert_eq!(cost(&encode(C::Rgba16, image::ImageFormat::Png)), 100 * (2 * 8 + 12));
+    // JPEG: output twice; a colour one's coefficients (2 bytes x 3 components) on the frame
+    // padded to 32 x 32; a gray baseline one has none.
+    assert_eq!(cost(&encode(C::Rgb8, image::ImageFormat::Jpeg)), 100 * 6 + 32 * 32 * 6);
+    assert_eq!(cost(&encode(C::L8, image::ImageFormat::Jpeg)), 100 * 2);
+    // Over the limit: 413 too_large before any pixel is decoded.
+    let small = FrameLimits { max_pixels: 1000, min_side: 1, max_decode_bytes: 2000 };
+    let e = probe(&encode(C::Rgba16, image::ImageFormat::Png)[..], small).unwrap_err();
+    assert!(matches!(e, PreprocessError::TooCostly { decode_bytes: 2800, max: 2000, .. }), "{e:?}");
+    assert_eq!(e.kind(), "too_large");
+}
+
+/// A TIFF whose strips are JPEG (written by Pillow with libtiff, compression 7): refused,
+/// since its embedded JPEG's size is not the TIFF header's.
+#[test]
+fn jpeg_compressed_tiff_is_refused() {
+    let tif =
+        std::fs::read(concat!(env!("CARGO_MANIFEST_DIR"), "/tests/fixtures/images/jpeg_in_tiff_16x16.tif")).unwrap();
+    let e = probe(&tif[..], lim(1000)).unwrap_err();
+    assert!(matches!(e, PreprocessError::Unsupported(ref m) if m.contains("JPEG compression (7)")), "{e:?}");
+}

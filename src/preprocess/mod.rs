@@ -367,7 +367,7 @@ impl Pipeline {
         // A centre crop resizes the whole frame first: a long thin frame (8 x 5 000 000 is
         // within max_pixels) would become billions of pixels. Bounded like the frame itself.
         let full = u64::from(g.full_w) * u64::from(g.full_h);
-        if full > self.limits.max_pixels {
+        if c.resize == ResizeMode::Crop && full > self.limits.max_pixels {
             return Err(PreprocessError::TooLargeUnknown {
                 max_pixels: self.limits.max_pixels,
                 detail: format!(

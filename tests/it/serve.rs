@@ -846,3 +846,30 @@ async fn a_centre_crop_of_a_long_thin_frame_is_refused_before_it_is_resized() {
     // A camera-shaped frame through the same crop is answered.
     assert_eq!(app.post("/classify/washers", gray_png(320, 240)).await.status, 200);
 }
+
+/// A deadline that passes while the body is still arriving answers 504 `deadline` with
+/// `Connection: close` (RFC 9112 section 9.6: the unread rest of the body leaves the
+/// connection unusable), and the server closes it; so does a body over its limit (413).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_answer_that_leaves_the_body_unread_closes_the_connection_and_says_so() {
+    use tokio::io::AsyncReadExt as _;
+    let server =
+        TestServer::start(washer_config_with(&[("body_limit_bytes = 16777216", "body_limit_bytes = 1000")])).await;
+    for (head, tail, status) in [
+        // 100 of 900 promised bytes, then nothing: the 100 ms deadline passes mid-body.
+        ("x-deadline-ms: 100\r\ncontent-length: 900\r\n", vec![0u8; 100], "504"),
+        // 2000 bytes against body_limit_bytes = 1000.
+        ("content-length: 2000\r\n", vec![0u8; 2000], "413"),
+    ] {
+        let mut s = tokio::net::TcpStream::connect(server.addr).await.unwrap();
+        s.write_all(format!("POST /classify/washers HTTP/1.1\r\nhost: x\r\n{head}\r\n").as_bytes()).await.unwrap();
+        s.write_all(&tail).await.unwrap();
+        let mut out = Vec::new();
+        // The server closes the connection after the answer (bounded wait: 30 s).
+        let closed = tokio::time::timeout(Duration::from_secs(30), s.read_to_end(&mut out)).await;
+        let text = String::from_utf8_lossy(&out).to_ascii_lowercase();
+        assert!(closed.is_ok(), "the connection stayed open after: {text}");
+        assert_eq!(text.get(9..12), Some(status), "{text}");
+        assert!(text.contains("\r\nconnection: close\r\n"), "{text}");
+    }
+}

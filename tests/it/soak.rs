@@ -10,7 +10,7 @@ use lineside::bench::abuse::{self, Setup};
 
 use crate::util::{parse_metrics, samples, serve_child, stop_child, temp_dir, wait_ready_at, washer_text_anywhere};
 
-/// The bound docs/operations.md states: resident memory after the minute at most this much
+/// The bound docs/testing.md states: resident memory after the minute at most this much
 /// above its level after the first 15 s of the same abuse (measured here: +0.6 MB; the
 /// bound leaves room for another machine's allocator arenas; docs/operations.md).
 pub(crate) const SOAK_RSS_BOUND_KB: u64 = 32 * 1024;
@@ -73,15 +73,18 @@ fn soak_a_minute_of_mixed_abuse_leaves_answers_memory_descriptors_and_metrics_in
         let rss_end = rss_kb(pid);
         // Every connection the clients opened is closed by now on their side; the server's
         // side closes as it notices (bounded wait: 30 s).
+        // Then no request is in flight (hang-ups' handlers finish) before /metrics is read.
         let mut fds_after = fds(pid);
+        let mut metrics = String::new();
         for _ in 0..300 {
-            if fds_after <= fds_before {
+            metrics = reqwest::get(format!("{base}/metrics")).await.unwrap().text().await.unwrap();
+            let idle = metrics.lines().any(|l| l == "lineside_requests_in_flight 0");
+            fds_after = fds(pid);
+            if fds_after <= fds_before && idle {
                 break;
             }
             tokio::time::sleep(Duration::from_millis(100)).await;
-            fds_after = fds(pid);
         }
-        let metrics = reqwest::get(format!("{base}/metrics")).await.unwrap().text().await.unwrap();
         (warm, run, (rss_warm, rss_end, fds_before, fds_after, metrics))
     });
     let (rss_warm, rss_end, fds_before, fds_after, metrics) = figures;
@@ -98,7 +101,10 @@ fn soak_a_minute_of_mixed_abuse_leaves_answers_memory_descriptors_and_metrics_in
     // Every answer was one its client may get (no 5xx but 503/504), every 200 right.
     for o in [&warm, &run] {
         assert!(o.wrong.is_empty(), "wrong answers: {:#?}", o.wrong);
-        assert!(o.checked > 0 && o.answered(200) > 0, "good frames were answered");
+        // Most good frames are answered 200 (503 and 504 are allowed, not the rule).
+        let good = o.sent.get("good").copied().unwrap_or(0);
+        let good_ok = o.answers.get(&("good", 200)).copied().unwrap_or(0);
+        assert!(o.checked > 0 && good_ok * 2 > good, "good frames answered 200: {good_ok} of {good}");
         for kind in ["bad_body", "big_header", "bomb", "unknown_route", "slow_body"] {
             assert!(o.answers.keys().any(|(k, s)| *k == kind && *s != 0), "{kind} got answers: {}", o.table());
         }
