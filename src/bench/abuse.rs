@@ -257,8 +257,7 @@ pub async fn run(setup: Setup, duration: Duration) -> Outcome {
     for t in tasks {
         let _ = t.await;
     }
-    let o = shared.lock().unwrap_or_else(|p| p.into_inner()).clone();
-    o
+    shared.lock().unwrap_or_else(|p| p.into_inner()).clone()
 }
 
 /// A multipart body of `frames`, one file part each (RFC 7578).
