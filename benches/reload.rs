@@ -47,18 +47,6 @@ fn resnet_config(dir: &Path, onnx: &Path) -> PathBuf {
     p
 }
 
-/// Resident memory of the server, in MB.
-fn rss_mb(s: &ChildServer) -> f64 {
-    let status = std::fs::read_to_string(format!("/proc/{}/status", s.pid())).unwrap_or_default();
-    let kb: f64 = status
-        .lines()
-        .find(|l| l.starts_with("VmRSS:"))
-        .and_then(|l| l.split_whitespace().nth(1))
-        .and_then(|v| v.parse().ok())
-        .unwrap_or(0.0);
-    kb / 1024.0
-}
-
 struct Step {
     p50_ms: f64,
     p99_ms: f64,
@@ -114,7 +102,7 @@ fn bench(model: &str, config: &Path, bodies: &[Bytes], secs: f64, rounds: usize)
     let saturation = rt.block_on(loadgen::bench_step(&s.target(model), bodies, Mode::Closed(16), secs)).throughput();
     let rate = saturation / 2.0;
     println!("{model}: saturation {saturation:.0} frames/s (16 closed-loop clients); open loop at {rate:.0} frames/s");
-    let rss_before = rss_mb(&s);
+    let rss_before = s.rss_mb();
     let mut ratios = Vec::new();
     let mut reloads = 0;
     for round in 0..rounds {
@@ -151,7 +139,7 @@ fn bench(model: &str, config: &Path, bodies: &[Bytes], secs: f64, rounds: usize)
         ratios[ratios.len() / 2],
         ratios[0],
         ratios[ratios.len() - 1],
-        rss_mb(&s)
+        s.rss_mb()
     );
 }
 

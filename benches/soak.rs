@@ -14,23 +14,15 @@ use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use lineside::bench::abuse::{self, Outcome, Setup};
-use lineside::bench::child::ChildServer;
+use lineside::bench::child::{self, ChildServer};
 
 fn root() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))
 }
 
-/// /proc/PID/status's VmRSS in MB, and the count of /proc/PID/fd (proc(5)).
+/// The server's resident memory in MB and its open descriptors.
 fn rss_mb_and_fds(s: &ChildServer) -> (f64, usize) {
-    let status = std::fs::read_to_string(format!("/proc/{}/status", s.pid())).unwrap_or_default();
-    let kb: f64 = status
-        .lines()
-        .find(|l| l.starts_with("VmRSS:"))
-        .and_then(|l| l.split_whitespace().nth(1))
-        .and_then(|v| v.parse().ok())
-        .unwrap_or(0.0);
-    let fds = std::fs::read_dir(format!("/proc/{}/fd", s.pid())).map(|d| d.count()).unwrap_or(0);
-    (kb / 1024.0, fds)
+    (s.rss_mb(), child::open_fds(s.pid().parse().unwrap_or(0)))
 }
 
 /// The washer config of the soak test: small limits so that every abuse meets one.

@@ -260,18 +260,19 @@ pub async fn run(setup: Setup, duration: Duration) -> Outcome {
     shared.lock().unwrap_or_else(|p| p.into_inner()).clone()
 }
 
-/// A multipart body of `frames`, one file part each (RFC 7578).
-fn multipart(frames: &[&[u8]]) -> Vec<u8> {
+/// A `multipart/form-data` body of `frames` with `boundary`, one file part each, laid out
+/// as RFC 7578 says (part `i` named `cam<i>`, file `f<i>.png`).
+pub fn multipart(boundary: &str, frames: &[&[u8]]) -> Vec<u8> {
     let mut body = Vec::new();
     for (i, f) in frames.iter().enumerate() {
         body.extend_from_slice(
-            format!("--soak\r\nContent-Disposition: form-data; name=\"cam{i}\"; filename=\"f{i}.png\"\r\n\r\n")
+            format!("--{boundary}\r\nContent-Disposition: form-data; name=\"cam{i}\"; filename=\"f{i}.png\"\r\n\r\n")
                 .as_bytes(),
         );
         body.extend_from_slice(f);
         body.extend_from_slice(b"\r\n");
     }
-    body.extend_from_slice(b"--soak--\r\n");
+    body.extend_from_slice(format!("--{boundary}--\r\n").as_bytes());
     body
 }
 
@@ -325,7 +326,7 @@ async fn client(kind: &'static str, seed: usize, setup: &Setup, shared: &Shared,
                 let picks: Vec<usize> = (0..4).map(|i| (n + i) % setup.frames.len()).collect();
                 let parts: Vec<&[u8]> = picks.iter().map(|&i| setup.frames[i].0.as_slice()).collect();
                 let ct = [("content-type", "multipart/form-data; boundary=soak".to_string())];
-                let a = conn.exchange(&request("POST", &all, &ct, &multipart(&parts))).await;
+                let a = conn.exchange(&request("POST", &all, &ct, &multipart("soak", &parts))).await;
                 expect(shared, kind, &a, &[200, 504]);
                 if let Some((200, body)) = &a {
                     let v: serde_json::Value = serde_json::from_slice(body).unwrap_or_default();

@@ -78,6 +78,11 @@ impl ChildServer {
         self.child.id().to_string()
     }
 
+    /// Its resident memory in MB ([`rss_kb`]).
+    pub fn rss_mb(&self) -> f64 {
+        rss_kb(self.child.id()) as f64 / 1024.0
+    }
+
     /// Where to post frames for `model`.
     pub fn target(&self, model: &str) -> Target {
         Target {
@@ -91,4 +96,18 @@ impl ChildServer {
     pub fn url(&self) -> String {
         format!("http://127.0.0.1:{}", self.port)
     }
+}
+
+/// Resident memory of process `pid` in kB (`VmRSS` of /proc/PID/status, proc(5)); 0 when
+/// it cannot be read.
+pub fn rss_kb(pid: u32) -> u64 {
+    let status = std::fs::read_to_string(format!("/proc/{pid}/status")).unwrap_or_default();
+    let line = status.lines().find(|l| l.starts_with("VmRSS:")).unwrap_or_default();
+    line.split_whitespace().nth(1).and_then(|v| v.parse().ok()).unwrap_or(0)
+}
+
+/// Open file descriptors of process `pid` (entries of /proc/PID/fd, proc(5)); 0 when they
+/// cannot be read.
+pub fn open_fds(pid: u32) -> usize {
+    std::fs::read_dir(format!("/proc/{pid}/fd")).map(|d| d.count()).unwrap_or(0)
 }

@@ -210,7 +210,7 @@ impl Runner {
     /// # Errors
     /// A wrong input length, or an engine failure.
     pub fn run_raw<'a>(&mut self, input: impl Into<Input<'a>>) -> Result<Vec<f32>, RunError> {
-        self.run_stacked_raw(&[input.into()]).map(|mut v| v.swap_remove(0))
+        first(self.run_stacked_raw(&[input.into()])?)
     }
 
     /// Run several images as one stacked tensor when the model's passes are stacked, else
@@ -233,7 +233,7 @@ impl Runner {
         } else {
             let mut out = Vec::with_capacity(inputs.len());
             for x in inputs {
-                out.push(self.run_stacked_raw(std::slice::from_ref(x))?.swap_remove(0));
+                out.push(first(self.run_stacked_raw(std::slice::from_ref(x))?)?);
             }
             out
         };
@@ -246,6 +246,8 @@ impl Runner {
     }
 
     fn run_stacked_raw(&mut self, inputs: &[Input<'_>]) -> Result<Vec<Vec<f32>>, RunError> {
+        // (`n * classes` values were checked below, and classes > 0, so one image gives one
+        // output: [`first`] never meets an empty pass.)
         let n = inputs.len();
         if let Some(bad) = inputs.iter().find(|x| x.len() != self.image_len) {
             return Err(RunError::InputSize { expected: self.image_len, found: bad.len() });
@@ -263,7 +265,7 @@ impl Runner {
                 self.state.run(Input::U8(&all.ok_or(RunError::InputType { expected: "uint8" })?.concat()), n)?
             }
         };
-        if raw.len() != n * self.classes {
+        if self.classes == 0 || raw.len() != n * self.classes {
             return Err(RunError::Engine(format!(
                 "output has {} values for {n} image(s), expected {}",
                 raw.len(),
@@ -272,6 +274,11 @@ impl Runner {
         }
         Ok(raw.chunks(self.classes).map(<[f32]>::to_vec).collect())
     }
+}
+
+/// The one image's output of a one-image pass.
+fn first(pass: Vec<Vec<f32>>) -> Result<Vec<f32>, RunError> {
+    pass.into_iter().next().ok_or_else(|| RunError::Engine("a one-image pass gave no output".into()))
 }
 
 #[cfg(test)]

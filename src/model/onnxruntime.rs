@@ -95,7 +95,9 @@ impl EngineState for OrtState {
             }
         }
         .map_err(err)?;
-        let (_, data) = outputs[0].try_extract_tensor::<f32>().map_err(err)?;
+        let first =
+            outputs.values().next().ok_or_else(|| RunError::Engine("the session returned no outputs".into()))?;
+        let (_, data) = first.try_extract_tensor::<f32>().map_err(err)?;
         Ok(data.to_vec())
     }
 }

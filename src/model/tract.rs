@@ -103,7 +103,8 @@ impl EngineState for TractState {
         .map_err(err)?;
         let state = &mut self.state;
         let out = multithread_tract_scope(self.executor.clone(), || state.run(tvec![tensor.into()])).map_err(err)?;
-        let view = out[0].to_plain_array_view::<f32>().map_err(err)?;
+        let first = out.first().ok_or_else(|| RunError::Engine("the plan returned no outputs".into()))?;
+        let view = first.to_plain_array_view::<f32>().map_err(err)?;
         Ok(view.iter().copied().collect())
     }
 }

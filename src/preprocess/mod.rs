@@ -391,7 +391,13 @@ impl Pipeline {
         let row = resized.width as usize * ch;
         for (y, src) in resized.data.chunks_exact(row).enumerate() {
             let start = ((g.top as usize + y) * self.width as usize + g.left as usize) * ch;
-            out.data[start..start + row].copy_from_slice(src);
+            let dst = out.data.get_mut(start..start + row).ok_or_else(|| {
+                PreprocessError::Internal(format!(
+                    "letterbox row {y} does not fit the {}x{} canvas",
+                    self.width, self.height
+                ))
+            })?;
+            dst.copy_from_slice(src);
         }
         Ok(out)
     }

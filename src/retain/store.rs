@@ -169,7 +169,7 @@ impl Store {
         let mut evicted = 0;
         while self.records.len() > self.max_frames || (self.bytes > self.max_bytes && !self.records.is_empty()) {
             let Some(r) = self.records.pop_front() else { break };
-            self.bytes -= r.bytes;
+            self.bytes = self.bytes.saturating_sub(r.bytes);
             remove_if_present(&self.dir.join(format!("{}.json", r.stem)));
             remove_if_present(&self.dir.join(format!("{}.{}", r.stem, r.extension)));
             evicted += 1;

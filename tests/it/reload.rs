@@ -9,6 +9,8 @@ use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::Duration;
 
+use lineside::bench::child::rss_kb;
+
 use crate::util::{TestServer, parse_metrics, samples, temp_dir};
 
 /// The washer bundle copied into `dir` (model, labels, self-test samples), with a config
@@ -342,13 +344,6 @@ async fn a_watched_model_reloads_when_its_file_is_replaced() {
 
 async fn server_metrics(c: &reqwest::Client, server: &TestServer) -> std::collections::HashMap<String, f64> {
     parse_metrics(&c.get(server.url("/metrics")).send().await.unwrap().text().await.unwrap())
-}
-
-/// Resident memory of a process, in kB (`VmRSS` of /proc/PID/status).
-fn rss_kb(pid: u32) -> u64 {
-    let status = std::fs::read_to_string(format!("/proc/{pid}/status")).unwrap();
-    let line = status.lines().find(|l| l.starts_with("VmRSS:")).unwrap();
-    line.split_whitespace().nth(1).unwrap().parse().unwrap()
 }
 
 /// Threads of a process whose name starts with `prefix` (/proc/PID/task/*/comm).

@@ -806,20 +806,7 @@ async fn decode_cost_part_size_and_part_count_are_bounded_from_headers() {
     let small = gray_png(64, 64);
     let large = png_of(64, 64, image::ExtendedColorType::Rgb8);
     assert!(small.len() < 4000 && large.len() > 4000, "{} {}", small.len(), large.len());
-    // A multipart body as RFC 7578 lays it out, one file part per frame.
-    let form = |parts: &[&[u8]]| {
-        let mut body = Vec::new();
-        for (i, p) in parts.iter().enumerate() {
-            body.extend_from_slice(
-                format!("--b0\r\nContent-Disposition: form-data; name=\"p{i}\"; filename=\"f{i}.png\"\r\n\r\n")
-                    .as_bytes(),
-            );
-            body.extend_from_slice(p);
-            body.extend_from_slice(b"\r\n");
-        }
-        body.extend_from_slice(b"--b0--\r\n");
-        body
-    };
+    let form = |parts: &[&[u8]]| lineside::bench::abuse::multipart("b0", parts);
     let multipart = [("content-type", "multipart/form-data; boundary=b0")];
     // Two parts, one above max_part_bytes: that part gets its own 413, the other its answer.
     let v = app.send_with("POST", "/classify/washers", &multipart, form(&[&small, &large])).await.json();

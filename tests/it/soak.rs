@@ -7,6 +7,7 @@ use std::collections::BTreeMap;
 use std::time::Duration;
 
 use lineside::bench::abuse::{self, Setup};
+use lineside::bench::child::{open_fds as fds, rss_kb};
 
 use crate::util::{parse_metrics, samples, serve_child, stop_child, temp_dir, wait_ready_at, washer_text_anywhere};
 
@@ -14,18 +15,6 @@ use crate::util::{parse_metrics, samples, serve_child, stop_child, temp_dir, wai
 /// above its level after the first 15 s of the same abuse (measured here: +0.6 MB; the
 /// bound leaves room for another machine's allocator arenas; docs/operations.md).
 pub(crate) const SOAK_RSS_BOUND_KB: u64 = 32 * 1024;
-
-/// Resident memory of a process, in kB (`VmRSS` of /proc/PID/status, proc(5)).
-fn rss_kb(pid: u32) -> u64 {
-    let status = std::fs::read_to_string(format!("/proc/{pid}/status")).unwrap();
-    let line = status.lines().find(|l| l.starts_with("VmRSS:")).unwrap();
-    line.split_whitespace().nth(1).unwrap().parse().unwrap()
-}
-
-/// Open file descriptors of a process (entries of /proc/PID/fd, proc(5)).
-fn fds(pid: u32) -> usize {
-    std::fs::read_dir(format!("/proc/{pid}/fd")).unwrap().count()
-}
 
 /// A PNG whose header alone gets it refused: `w` x `h` zero pixels of `color` (a few kB).
 fn bomb(w: u32, h: u32, color: image::ExtendedColorType) -> Vec<u8> {
