@@ -25,29 +25,15 @@ fn rss_mb_and_fds(s: &ChildServer) -> (f64, usize) {
     (s.rss_mb(), child::open_fds(s.pid().parse().unwrap_or(0)))
 }
 
-/// The washer config of the soak test: small limits so that every abuse meets one.
+/// The washer config of the soak test ([`abuse::SOAK_CONFIG`]), with `extra` changes.
 fn config(dir: &Path, extra: &[(&str, &str)]) -> PathBuf {
-    let mut text = std::fs::read_to_string(root().join("config/lineside.toml"))
+    let washer = std::fs::read_to_string(root().join("config/lineside.toml"))
         .unwrap()
-        .replace("../models/", &format!("{}/", root().join("models").display()))
-        .replace("max_pixels = 40000000", "max_pixels = 4000000")
-        .replace("max_decode_bytes = 536870912", "max_decode_bytes = 16777216")
-        .replace("body_limit_bytes = 16777216", "body_limit_bytes = 1048576")
-        .replace("header_timeout_ms = 5000", "header_timeout_ms = 1000\nbody_timeout_ms = 1000");
-    for (from, to) in extra {
-        text = text.replace(from, to);
-    }
+        .replace("../models/", &format!("{}/", root().join("models").display()));
+    let text = abuse::SOAK_CONFIG.iter().chain(extra).fold(washer, |t, (from, to)| t.replace(from, to));
     let p = dir.join("soak.toml");
     std::fs::write(&p, text).unwrap();
     p
-}
-
-fn bomb(w: u32, h: u32, color: image::ExtendedColorType) -> Vec<u8> {
-    use image::ImageEncoder as _;
-    let data = vec![0u8; w as usize * h as usize * color.bits_per_pixel() as usize / 8];
-    let mut png = Vec::new();
-    image::codecs::png::PngEncoder::new(&mut png).write_image(&data, w, h, color).unwrap();
-    png
 }
 
 fn frames() -> Vec<Vec<u8>> {
@@ -74,8 +60,8 @@ fn soak(title: &str, extra: &[(&str, &str)], minutes: u64) {
         addr,
         model: "washers".into(),
         frames: frames.into_iter().zip(reference).collect(),
-        body_limit: 1 << 20,
-        bombs: vec![bomb(3000, 3000, image::ExtendedColorType::L8), bomb(1000, 1000, image::ExtendedColorType::Rgba16)],
+        body_limit: abuse::SOAK_BODY_LIMIT,
+        bombs: abuse::soak_bombs(),
     };
     let (rss0, fds0) = rss_mb_and_fds(&s);
     println!("\n{title}: RSS {rss0:.1} MB and {fds0} descriptors after loading");

@@ -224,19 +224,26 @@ fn header_buffer(max_header_bytes: usize) -> usize {
 /// with `Retry-After` and a close; on the HTTPS port the connection is closed (answering
 /// would take a handshake, the work the limit is there to bound).
 async fn refuse_connection(mut stream: tokio::net::TcpStream, tls: bool, timeout: std::time::Duration) {
+    use axum::response::IntoResponse as _;
     use tokio::io::AsyncWriteExt as _;
     if !tls {
-        let body = serde_json::json!({"error": {
-            "kind": crate::http::error::ErrorKind::TooManyConnections.as_str(),
-            "message": "server.max_connections connections are open; retry shortly, or close idle connections",
-        }})
-        .to_string();
-        let answer = format!(
-            "HTTP/1.1 503 Service Unavailable\r\ncontent-type: application/json\r\nretry-after: 1\r\nconnection: close\r\n\
-             content-length: {}\r\n\r\n{body}",
-            body.len()
-        );
-        let _ = tokio::time::timeout(timeout, stream.write_all(answer.as_bytes())).await;
+        // The API's own answer for the kind (status, Retry-After, error body), written by hand:
+        // no HTTP connection is set up for it.
+        let (parts, body) = crate::http::error::ApiError::new(
+            crate::http::error::ErrorKind::TooManyConnections,
+            "server.max_connections connections are open; retry shortly, or close idle connections",
+        )
+        .into_response()
+        .into_parts();
+        let body = axum::body::to_bytes(body, usize::MAX).await.unwrap_or_default();
+        let mut answer = format!("HTTP/1.1 {}\r\n", parts.status);
+        for (name, value) in &parts.headers {
+            answer.push_str(&format!("{name}: {}\r\n", value.to_str().unwrap_or_default()));
+        }
+        answer.push_str(&format!("connection: close\r\ncontent-length: {}\r\n\r\n", body.len()));
+        let mut bytes = answer.into_bytes();
+        bytes.extend_from_slice(&body);
+        let _ = tokio::time::timeout(timeout, stream.write_all(&bytes)).await;
     }
     let _ = stream.shutdown().await;
     // Read what the client already sent (a bounded amount, briefly): closing with unread bytes

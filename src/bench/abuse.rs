@@ -48,6 +48,34 @@ pub const KINDS: [&str; 13] = [
     "cut_answer",
 ];
 
+/// The washer config's lines the soak changes (`config/lineside.toml` text, from -> to): small
+/// limits, so that every kind of abuse meets one; the bombs below are sized against them.
+pub const SOAK_CONFIG: [(&str, &str); 4] = [
+    ("max_pixels = 40000000", "max_pixels = 4000000"),
+    ("max_decode_bytes = 536870912", "max_decode_bytes = 16777216"),
+    ("body_limit_bytes = 16777216", "body_limit_bytes = 1048576"),
+    ("header_timeout_ms = 5000", "header_timeout_ms = 1000\nbody_timeout_ms = 1000"),
+];
+
+/// The soak's `body_limit_bytes` ([`SOAK_CONFIG`]).
+pub const SOAK_BODY_LIMIT: usize = 1 << 20;
+
+/// PNGs the soak config refuses from their header alone: 3000 x 3000 gray (9 M pixels >
+/// max_pixels) and 1000 x 1000 16-bit RGBA (28 MB > max_decode_bytes); a few kB each.
+pub fn soak_bombs() -> Vec<Vec<u8>> {
+    use image::ImageEncoder as _;
+    let bomb = |w: u32, h: u32, color: image::ExtendedColorType| {
+        let data = vec![0u8; w as usize * h as usize * color.bits_per_pixel() as usize / 8];
+        let mut png = Vec::new();
+        let written = image::codecs::png::PngEncoder::new(&mut png).write_image(&data, w, h, color);
+        written.map(|()| png)
+    };
+    [bomb(3000, 3000, image::ExtendedColorType::L8), bomb(1000, 1000, image::ExtendedColorType::Rgba16)]
+        .into_iter()
+        .flatten()
+        .collect()
+}
+
 /// Largest difference allowed between a score under load and the frame's answer alone (a
 /// pass of several frames may run a different kernel than a pass of one).
 pub const SCORE_TOLERANCE: f64 = 1e-4;

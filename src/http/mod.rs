@@ -137,7 +137,6 @@ async fn request_id(
     resp
 }
 
-/// Log the details of internal faults, which the client does not see.
 /// 431 `headers_too_large` for a request whose line and headers, as sent over HTTP/1.1,
 /// exceed `server.max_header_bytes` (heads beyond the parser's buffer never get here: hyper
 /// answers those 431 itself and closes).
@@ -164,6 +163,7 @@ fn head_size(req: &Request) -> usize {
     line + headers + 2
 }
 
+/// Log the details of internal faults, which the client does not see.
 async fn log_internal(req: Request, next: Next) -> Response {
     let path = req.uri().path().to_owned();
     let resp = next.run(req).await;

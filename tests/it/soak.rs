@@ -16,24 +16,11 @@ use crate::util::{parse_metrics, samples, serve_child, stop_child, temp_dir, wai
 /// bound leaves room for another machine's allocator arenas; docs/operations.md).
 pub(crate) const SOAK_RSS_BOUND_KB: u64 = 32 * 1024;
 
-/// A PNG whose header alone gets it refused: `w` x `h` zero pixels of `color` (a few kB).
-fn bomb(w: u32, h: u32, color: image::ExtendedColorType) -> Vec<u8> {
-    use image::ImageEncoder as _;
-    let data = vec![0u8; w as usize * h as usize * color.bits_per_pixel() as usize / 8];
-    let mut png = Vec::new();
-    image::codecs::png::PngEncoder::new(&mut png).write_image(&data, w, h, color).unwrap();
-    png
-}
-
 #[test]
 #[ignore = "a minute at full CPU: tools/test runs it alone after the suite"]
 fn soak_a_minute_of_mixed_abuse_leaves_answers_memory_descriptors_and_metrics_in_order() {
     let dir = temp_dir("soak");
-    let text = washer_text_anywhere()
-        .replace("max_pixels = 40000000", "max_pixels = 4000000")
-        .replace("max_decode_bytes = 536870912", "max_decode_bytes = 16777216")
-        .replace("body_limit_bytes = 16777216", "body_limit_bytes = 1048576")
-        .replace("header_timeout_ms = 5000", "header_timeout_ms = 1000\nbody_timeout_ms = 1000");
+    let text = abuse::SOAK_CONFIG.iter().fold(washer_text_anywhere(), |t, (from, to)| t.replace(from, to));
     std::fs::write(dir.join("lineside.toml"), text).unwrap();
     let (child, port) = serve_child(&dir, &["serve", "--config", "lineside.toml"]);
     let pid = child.id();
@@ -49,12 +36,8 @@ fn soak_a_minute_of_mixed_abuse_leaves_answers_memory_descriptors_and_metrics_in
             addr,
             model: "washers".into(),
             frames: frames.iter().cloned().zip(reference).collect(),
-            body_limit: 1 << 20,
-            // 9 M pixels > max_pixels; 16-bit RGBA 1000 x 1000 = 28 MB > max_decode_bytes.
-            bombs: vec![
-                bomb(3000, 3000, image::ExtendedColorType::L8),
-                bomb(1000, 1000, image::ExtendedColorType::Rgba16),
-            ],
+            body_limit: abuse::SOAK_BODY_LIMIT,
+            bombs: abuse::soak_bombs(),
         };
         let warm = abuse::run(setup.clone(), Duration::from_secs(15)).await;
         let rss_warm = rss_kb(pid);
